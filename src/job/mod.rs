@@ -1,0 +1,100 @@
+//! Requests as bytes in, responses as bytes out: the boundary between the web layer (or the
+//! CLI) and the estimation core. Nothing here knows about HTTP.
+//!
+//! Each entry point parses the request once into a checked model, runs the work and writes
+//! the JSON answer. Failures are [`Problem`]s with JSON Pointers into the request.
+
+// INTERFACE (skeleton): the implementation replaces the bodies below.
+
+use crate::config::Limits;
+use crate::problem::{Problem, ProblemKind};
+use std::sync::atomic::AtomicBool;
+
+/// Counters of one request's filter work, for metrics and logs.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct RunStats {
+    /// `ekf`, `ukf`, `enkf`, or `""` for requests that run no filter.
+    pub method: &'static str,
+    /// Estimates produced (one per measurement line).
+    pub steps: u64,
+    /// Updates applied (lines with at least one accepted reading).
+    pub updates: u64,
+    /// Readings rejected by the gate.
+    pub rejected: u64,
+}
+
+/// A finished request: the JSON body and what it cost.
+#[derive(Debug, Clone)]
+pub struct Done {
+    /// The JSON response body.
+    pub body: Vec<u8>,
+    /// Work counters.
+    pub stats: RunStats,
+}
+
+fn not_yet() -> Problem {
+    Problem::new(ProblemKind::Internal, "not implemented yet")
+}
+
+/// `POST /v1/estimate`: `{model, filter, prior, measurements, output?}`.
+/// `cancel` is polled between steps; when set the work stops early with an error.
+pub fn estimate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+    let _ = (body, limits, cancel);
+    Err(not_yet())
+}
+
+/// `POST /v1/smooth`: same input as estimate, smoothed estimates out.
+pub fn smooth(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+    let _ = (body, limits, cancel);
+    Err(not_yet())
+}
+
+/// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
+pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+    let _ = (body, limits, cancel);
+    Err(not_yet())
+}
+
+/// `POST /v1/check`: `{model, prior?}`.
+pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
+    let _ = (body, limits);
+    Err(not_yet())
+}
+
+/// `GET /v1/info`: version, methods and the limits in force.
+pub fn info(limits: &Limits) -> serde_json::Value {
+    serde_json::json!({
+        "name": "tacit",
+        "version": env!("CARGO_PKG_VERSION"),
+        "methods": ["ekf", "ukf", "enkf"],
+        "limits": limits,
+    })
+}
+
+/// One `POST /v1/estimate/stream` in progress: the header line was accepted, readings
+/// arrive one line at a time and each answer line is appended to the caller's buffer.
+/// Memory does not grow with the number of lines.
+pub struct StreamSession {
+    _private: (),
+}
+
+impl StreamSession {
+    /// Parse the first line `{model, filter, prior, output?}`.
+    pub fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
+        let _ = (header, limits);
+        Err(not_yet())
+    }
+
+    /// Apply one measurement line (1-based `line_no` for error pointers) and append its
+    /// estimate as one NDJSON line (with `\n`) to `out`.
+    pub fn push(&mut self, line: &[u8], line_no: u64, out: &mut Vec<u8>) -> Result<(), Problem> {
+        let _ = (line, line_no, out);
+        Err(not_yet())
+    }
+
+    /// Append the last line `{posterior, summary}` to `out`.
+    pub fn finish(self, out: &mut Vec<u8>) -> Result<RunStats, Problem> {
+        let _ = out;
+        Err(not_yet())
+    }
+}
