@@ -2,11 +2,19 @@
 //!
 //! A request is parsed once into a checked model ([`spec`]), its formulas compiled
 //! ([`formula`]); a filter ([`filter`]) propagates the state between readings
-//! ([`dynamics`]) and updates it with each partial reading; [`job`] turns request bytes
-//! into response bytes, and [`http`] serves them.
+//! ([`dynamics`]) and updates it with each partial reading; [`diagnostics`] judges
+//! consistency and observability; [`simulate`] makes truth and readings for tests and demos;
+//! [`job`] turns request bytes into response bytes for the web layer and the CLI.
+//!
+//! Estimates are advisory: validate them before any use in a safety function, and defer to
+//! local codes and licensed practice.
 
 pub mod config;
+pub mod diagnostics;
 pub mod dynamics;
+pub mod filter;
 pub mod formula;
 pub mod job;
 pub mod problem;
+pub mod simulate;
+pub mod spec;

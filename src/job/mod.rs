@@ -4,10 +4,11 @@
 //! Each entry point parses the request once into a checked model, runs the work and writes
 //! the JSON answer. Failures are [`Problem`]s with JSON Pointers into the request.
 
-// INTERFACE (skeleton): the implementation replaces the bodies below.
-
 use crate::config::Limits;
-use crate::problem::{Problem, ProblemKind};
+mod filtering;
+pub mod write;
+
+use crate::problem::Problem;
 use std::sync::atomic::AtomicBool;
 
 /// Counters of one request's filter work, for metrics and logs.
@@ -32,33 +33,25 @@ pub struct Done {
     pub stats: RunStats,
 }
 
-fn not_yet() -> Problem {
-    Problem::new(ProblemKind::Internal, "not implemented yet")
-}
-
 /// `POST /v1/estimate`: `{model, filter, prior, measurements, output?}`.
 /// `cancel` is polled between steps; when set the work stops early with an error.
 pub fn estimate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    let _ = (body, limits, cancel);
-    Err(not_yet())
+    filtering::run_batch(body, limits, cancel, false)
 }
 
 /// `POST /v1/smooth`: same input as estimate, smoothed estimates out.
 pub fn smooth(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    let _ = (body, limits, cancel);
-    Err(not_yet())
+    filtering::run_batch(body, limits, cancel, true)
 }
 
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    let _ = (body, limits, cancel);
-    Err(not_yet())
+    crate::simulate::run(body, limits, cancel)
 }
 
 /// `POST /v1/check`: `{model, prior?}`.
 pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
-    let _ = (body, limits);
-    Err(not_yet())
+    crate::diagnostics::observability::check_request(body, limits)
 }
 
 /// `GET /v1/info`: version, methods and the limits in force.
@@ -75,26 +68,33 @@ pub fn info(limits: &Limits) -> serde_json::Value {
 /// arrive one line at a time and each answer line is appended to the caller's buffer.
 /// Memory does not grow with the number of lines.
 pub struct StreamSession {
-    _private: (),
+    inner: filtering::Stream,
 }
 
 impl StreamSession {
     /// Parse the first line `{model, filter, prior, output?}`.
     pub fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
-        let _ = (header, limits);
-        Err(not_yet())
+        if header.len()
+            > limits
+                .max_line_bytes
+                .max(limits.max_body_bytes.min(64 << 20))
+        {
+            return Err(Problem::new(
+                crate::problem::ProblemKind::TooLarge,
+                "the header line is too large",
+            ));
+        }
+        filtering::Stream::start(header, limits).map(|inner| Self { inner })
     }
 
     /// Apply one measurement line (1-based `line_no` for error pointers) and append its
     /// estimate as one NDJSON line (with `\n`) to `out`.
     pub fn push(&mut self, line: &[u8], line_no: u64, out: &mut Vec<u8>) -> Result<(), Problem> {
-        let _ = (line, line_no, out);
-        Err(not_yet())
+        self.inner.push(line, line_no, out)
     }
 
     /// Append the last line `{posterior, summary}` to `out`.
     pub fn finish(self, out: &mut Vec<u8>) -> Result<RunStats, Problem> {
-        let _ = out;
-        Err(not_yet())
+        Ok(self.inner.finish(out))
     }
 }

@@ -1,0 +1,6 @@
+//! Consistency and structure diagnostics: chi-square quantiles for gates and NIS bounds,
+//! the run summary's NIS verdict, and observability of the linearised model.
+
+pub mod chi2;
+pub mod nis;
+pub mod observability;

@@ -1,0 +1,395 @@
+//! Ensemble Kalman filter: members (rows of an `N × n` matrix) move through the dynamics,
+//! the interval's process noise is sampled onto them, forecast anomalies are inflated, and
+//! the analysis is either
+//! - `perturbed`: each member is updated with its own perturbed reading z + εⱼ, εⱼ ~ N(0, R),
+//!   with K = C S⁻¹, C = X'Y'ᵀ/(N−1), S = Y'Y'ᵀ/(N−1) + R (Burgers, van Leeuwen & Evensen
+//!   1998, MWR 126), or
+//! - `deterministic`: the ensemble transform (ETKF) in the ensemble space, with
+//!   Ỹ = L_R⁻¹ Y', P̃ = [(N−1) I + ỸᵀỸ]⁻¹, w̄ = P̃ Ỹᵀ L_R⁻¹ (z − ȳ),
+//!   W = [(N−1) P̃]^{1/2} (symmetric square root), Xₐ = x̄ + X'(w̄ + W)
+//!   (Bishop, Etherton & Majumdar 2001, MWR 129; Hunt, Kostelich & Szunyogh 2007,
+//!   Physica D 230, §2.3).
+//!
+//! Every random draw comes from a ChaCha20 stream selected by (seed, step, purpose), so a run
+//! split into requests that carry `members` and `step` continues bit for bit.
+
+use crate::filter::linalg::{cholesky, cholesky_psd, solve_lower, symmetrize};
+use crate::filter::observe::{ObsSpace, PointObserver};
+use crate::filter::predict::Predictor;
+use crate::filter::{Estimator, FilterError};
+use crate::spec::model::{Ensemble, EnsembleUpdate, Integration, Model};
+use crate::spec::reading::Reading;
+use nalgebra::{DMatrix, DVector};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha20Rng;
+use rand_distr::StandardNormal;
+
+/// Which draw a random stream serves.
+#[derive(Clone, Copy)]
+enum Purpose {
+    ProcessNoise = 0,
+    Perturbation = 1,
+    Initial = 2,
+    SidePrediction = 3,
+}
+
+fn stream(seed: u64, step: u64, purpose: Purpose) -> ChaCha20Rng {
+    let mut r = ChaCha20Rng::seed_from_u64(seed);
+    r.set_stream(step.wrapping_mul(4).wrapping_add(purpose as u64));
+    r
+}
+
+/// The ensemble filter's members and buffers.
+#[derive(Debug, Clone)]
+pub struct Enkf {
+    x: DMatrix<f64>,
+    mean: DVector<f64>,
+    cov: DMatrix<f64>,
+    cfg: Ensemble,
+    step: u64,
+    side: bool,
+    pred: Predictor,
+    obs: ObsSpace,
+    pobs: PointObserver,
+    w: Vec<f64>,
+    q: DMatrix<f64>,
+    lq: Vec<f64>,
+    lr: Vec<f64>,
+    ybar: Vec<f64>,
+    eps: Vec<f64>,
+    prev: DMatrix<f64>,
+    prev_mean: DVector<f64>,
+    cross: DMatrix<f64>,
+    // ETKF buffers.
+    yt: DMatrix<f64>,
+    big: DMatrix<f64>,
+    wbar: DVector<f64>,
+    gvec: DVector<f64>,
+    dtil: Vec<f64>,
+    trans: DMatrix<f64>,
+    xa: DMatrix<f64>,
+}
+
+impl Enkf {
+    /// A filter for `model` from given members (rows) or drawn from `(mean, cov)`.
+    pub fn new(
+        model: &Model,
+        integration: Integration,
+        cfg: Ensemble,
+        mean: &DVector<f64>,
+        cov: &DMatrix<f64>,
+        members: Option<DMatrix<f64>>,
+        step: u64,
+    ) -> Result<Self, FilterError> {
+        let (n, nn) = (model.n(), cfg.members);
+        let mm: usize = model.sensors.iter().map(|s| s.dim).sum();
+        let x = match members {
+            Some(x) => x,
+            None => {
+                let mut l = vec![0.0; n * n];
+                cholesky_psd(cov.as_slice(), &mut l, n)
+                    .map_err(|_| FilterError::NotPositive("prior covariance"))?;
+                let mut rng = stream(cfg.seed, step, Purpose::Initial);
+                let mut z = vec![0.0; n];
+                let mut x = DMatrix::zeros(nn, n);
+                for j in 0..nn {
+                    z.iter_mut().for_each(|v| *v = rng.sample(StandardNormal));
+                    for i in 0..n {
+                        x[(j, i)] = mean[i] + (0..=i).map(|k| l[i + k * n] * z[k]).sum::<f64>();
+                    }
+                }
+                x
+            }
+        };
+        let mut f = Self {
+            x,
+            mean: DVector::zeros(n),
+            cov: DMatrix::zeros(n, n),
+            cfg,
+            step,
+            side: false,
+            pred: Predictor::new(model, integration, nn),
+            obs: ObsSpace::new(model),
+            pobs: PointObserver::new(model, nn),
+            w: vec![1.0 / nn as f64; nn],
+            q: DMatrix::zeros(n, n),
+            lq: vec![0.0; n * n],
+            lr: vec![0.0; mm * mm],
+            ybar: vec![0.0; mm],
+            eps: vec![0.0; mm.max(n)],
+            prev: DMatrix::zeros(nn, n),
+            prev_mean: DVector::zeros(n),
+            cross: DMatrix::zeros(n, n),
+            yt: DMatrix::zeros(mm, nn),
+            big: DMatrix::zeros(nn, nn),
+            wbar: DVector::zeros(nn),
+            gvec: DVector::zeros(nn),
+            dtil: vec![0.0; mm],
+            trans: DMatrix::zeros(nn, nn),
+            xa: DMatrix::zeros(nn, n),
+        };
+        f.refresh_moments();
+        Ok(f)
+    }
+
+    /// Ensemble mean and covariance (divisor N − 1) from the members.
+    fn refresh_moments(&mut self) {
+        let (nn, n) = (self.x.nrows(), self.x.ncols());
+        for i in 0..n {
+            self.mean[i] = self.x.column(i).iter().sum::<f64>() / nn as f64;
+        }
+        for j in 0..n {
+            for i in 0..=j {
+                let (mi, mj) = (self.mean[i], self.mean[j]);
+                let s: f64 = (0..nn)
+                    .map(|k| (self.x[(k, i)] - mi) * (self.x[(k, j)] - mj))
+                    .sum::<f64>()
+                    / (nn as f64 - 1.0);
+                self.cov[(i, j)] = s;
+                self.cov[(j, i)] = s;
+            }
+        }
+    }
+
+    fn perturbed(&mut self) {
+        let (nn, n, ma) = (self.x.nrows(), self.x.ncols(), self.obs.ma);
+        let mut rng = stream(self.cfg.seed, self.step, Purpose::Perturbation);
+        let zs = &self.pobs.zs;
+        for j in 0..nn {
+            // dⱼ = z + L_R εⱼ − h(xⱼ) over accepted rows.
+            for a in 0..ma {
+                self.eps[a] = rng.sample(StandardNormal);
+            }
+            for a in (0..ma).rev() {
+                let lre: f64 = (0..=a).map(|b| self.lr[a + b * ma] * self.eps[b]).sum();
+                let row = self.obs.keep[a];
+                self.dtil[a] = self.obs.z[row] + lre - zs[row * nn + j];
+            }
+            for i in 0..n {
+                let inc: f64 = (0..ma)
+                    .map(|a| self.obs.kt[a + i * ma] * self.dtil[a])
+                    .sum();
+                self.x[(j, i)] += inc;
+            }
+        }
+    }
+
+    fn transform(&mut self) -> Result<(), FilterError> {
+        let (nn, n, ma) = (self.x.nrows(), self.x.ncols(), self.obs.ma);
+        let zs = &self.pobs.zs;
+        let nf = nn as f64;
+        // Ỹ = L_R⁻¹ Y' (ma × N) and d̃ = L_R⁻¹ (z − ȳ).
+        for j in 0..nn {
+            for a in 0..ma {
+                let row = self.obs.keep[a];
+                self.eps[a] = zs[row * nn + j] - self.ybar[row];
+            }
+            solve_lower(&self.lr[..ma * ma], ma, &mut self.eps[..ma]);
+            for a in 0..ma {
+                self.yt[(a, j)] = self.eps[a];
+            }
+        }
+        for a in 0..ma {
+            self.dtil[a] = self.obs.nu_acc[a];
+        }
+        solve_lower(&self.lr[..ma * ma], ma, &mut self.dtil[..ma]);
+        // A = (N−1) I + ỸᵀỸ.
+        for j in 0..nn {
+            for i in 0..=j {
+                let s: f64 = (0..ma).map(|a| self.yt[(a, i)] * self.yt[(a, j)]).sum();
+                let v = s + if i == j { nf - 1.0 } else { 0.0 };
+                self.big[(i, j)] = v;
+                self.big[(j, i)] = v;
+            }
+        }
+        let eig = self.big.clone().symmetric_eigen();
+        if eig.eigenvalues.iter().any(|l| !(*l > 0.0)) {
+            return Err(FilterError::NotPositive("ensemble transform matrix"));
+        }
+        // w̄ = V Λ⁻¹ Vᵀ Ỹᵀ d̃ ; W = √(N−1) V Λ^{-1/2} Vᵀ.
+        let v = &eig.eigenvectors;
+        for k in 0..nn {
+            let ytd: f64 = (0..nn)
+                .map(|j| v[(j, k)] * (0..ma).map(|a| self.yt[(a, j)] * self.dtil[a]).sum::<f64>())
+                .sum();
+            self.gvec[k] = ytd / eig.eigenvalues[k];
+        }
+        for j in 0..nn {
+            self.wbar[j] = (0..nn).map(|k| v[(j, k)] * self.gvec[k]).sum();
+        }
+        let c = (nf - 1.0).sqrt();
+        for j in 0..nn {
+            for i in 0..nn {
+                self.trans[(i, j)] = c
+                    * (0..nn)
+                        .map(|k| v[(i, k)] * v[(j, k)] / eig.eigenvalues[k].sqrt())
+                        .sum::<f64>()
+                    + self.wbar[i];
+            }
+        }
+        // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j).
+        for j in 0..nn {
+            for i in 0..n {
+                self.xa[(j, i)] = self.mean[i]
+                    + (0..nn)
+                        .map(|k| (self.x[(k, i)] - self.mean[i]) * self.trans[(k, j)])
+                        .sum::<f64>();
+            }
+        }
+        self.x.copy_from(&self.xa);
+        Ok(())
+    }
+}
+
+impl Estimator for Enkf {
+    fn predict(
+        &mut self,
+        model: &Model,
+        u: &[f64],
+        t0: f64,
+        dt: f64,
+        keep_cross: bool,
+    ) -> Result<(), FilterError> {
+        if keep_cross {
+            self.prev.copy_from(&self.x);
+            self.prev_mean.copy_from(&self.mean);
+        }
+        let noisy =
+            self.pred
+                .predict_points(model, &mut self.x, &self.w, u, t0, dt, &mut self.q)?;
+        if noisy {
+            let n = self.x.ncols();
+            symmetrize(&mut self.q);
+            cholesky_psd(self.q.as_slice(), &mut self.lq, n)
+                .map_err(|_| FilterError::NotPositive("process noise covariance"))?;
+            let purpose = if self.side {
+                Purpose::SidePrediction
+            } else {
+                Purpose::ProcessNoise
+            };
+            let mut rng = stream(self.cfg.seed, self.step, purpose);
+            for j in 0..self.x.nrows() {
+                for k in 0..n {
+                    self.eps[k] = rng.sample(StandardNormal);
+                }
+                for i in 0..n {
+                    let add: f64 = (0..=i).map(|k| self.lq[i + k * n] * self.eps[k]).sum();
+                    self.x[(j, i)] += add;
+                }
+            }
+        }
+        self.refresh_moments();
+        if keep_cross {
+            let (nn, n) = (self.x.nrows(), self.x.ncols());
+            for j in 0..n {
+                for i in 0..n {
+                    self.cross[(i, j)] = (0..nn)
+                        .map(|k| {
+                            (self.prev[(k, i)] - self.prev_mean[i])
+                                * (self.x[(k, j)] - self.mean[j])
+                        })
+                        .sum::<f64>()
+                        / (nn as f64 - 1.0);
+                }
+            }
+        }
+        if !self.x.iter().all(|v| v.is_finite()) {
+            return Err(FilterError::NonFinite("forecast members"));
+        }
+        Ok(())
+    }
+
+    fn update(
+        &mut self,
+        model: &Model,
+        reading: &Reading,
+        u: &[f64],
+        t: f64,
+        gate: Option<&[f64]>,
+    ) -> Result<bool, FilterError> {
+        let (nn, n) = (self.x.nrows(), self.x.ncols());
+        // Multiplicative inflation of the forecast anomalies.
+        if self.cfg.inflation != 1.0 {
+            for i in 0..n {
+                let m = self.mean[i];
+                for j in 0..nn {
+                    self.x[(j, i)] = m + self.cfg.inflation * (self.x[(j, i)] - m);
+                }
+            }
+            self.refresh_moments();
+        }
+        self.obs.begin(model, reading);
+        self.pobs.eval(model, &self.obs.checks, &self.x, u, t);
+        let m = self.obs.m;
+        let zs = &self.pobs.zs;
+        let nf = nn as f64;
+        for r in 0..m {
+            self.ybar[r] = (0..nn).map(|k| zs[r * nn + k]).sum::<f64>() / nf;
+            self.obs.zhat[r] = self.ybar[r];
+        }
+        for c in 0..m {
+            for r in 0..m {
+                self.obs.s[r + c * m] = (0..nn)
+                    .map(|k| (zs[r * nn + k] - self.ybar[r]) * (zs[c * nn + k] - self.ybar[c]))
+                    .sum::<f64>()
+                    / (nf - 1.0);
+            }
+            for i in 0..n {
+                self.obs.c[i + c * n] = (0..nn)
+                    .map(|k| (self.x[(k, i)] - self.mean[i]) * (zs[c * nn + k] - self.ybar[c]))
+                    .sum::<f64>()
+                    / (nf - 1.0);
+            }
+        }
+        if !self.obs.gate(gate)? {
+            return Ok(false);
+        }
+        self.obs.gain()?;
+        let ma = self.obs.ma;
+        cholesky(&self.obs.r_acc[..ma * ma], &mut self.lr[..ma * ma], ma)
+            .map_err(|_| FilterError::NotPositive("reading noise"))?;
+        match self.cfg.update {
+            EnsembleUpdate::Perturbed => self.perturbed(),
+            EnsembleUpdate::Deterministic => self.transform()?,
+        }
+        self.refresh_moments();
+        if !self.x.iter().all(|v| v.is_finite()) {
+            return Err(FilterError::NonFinite("analysis members"));
+        }
+        Ok(true)
+    }
+
+    fn obs(&self) -> &ObsSpace {
+        &self.obs
+    }
+
+    fn mean(&self) -> &DVector<f64> {
+        &self.mean
+    }
+
+    fn covariance(&self) -> &DMatrix<f64> {
+        &self.cov
+    }
+
+    fn cross(&self) -> &DMatrix<f64> {
+        &self.cross
+    }
+
+    fn members(&self) -> Option<&DMatrix<f64>> {
+        Some(&self.x)
+    }
+
+    fn advance_step(&mut self) {
+        self.step += 1;
+    }
+
+    fn step(&self) -> u64 {
+        self.step
+    }
+
+    fn clone_box(&self) -> Box<dyn Estimator> {
+        let mut c = self.clone();
+        c.side = true;
+        Box::new(c)
+    }
+}

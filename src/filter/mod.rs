@@ -1,0 +1,95 @@
+//! The filters: extended, unscented and ensemble Kalman filters behind one [`Estimator`]
+//! trait, with their shared propagation ([`predict`]), update machinery ([`observe`]),
+//! dense kernels ([`linalg`]), the run loop ([`run`]) and the RTS smoother ([`smoother`]).
+
+pub mod ekf;
+pub mod enkf;
+pub mod linalg;
+pub mod observe;
+pub mod predict;
+pub mod run;
+pub mod smoother;
+pub mod ukf;
+
+use crate::spec::model::Model;
+use crate::spec::reading::Reading;
+use nalgebra::{DMatrix, DVector};
+use observe::ObsSpace;
+
+/// Why a filter step could not go on. The run loop adds the step and time.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum FilterError {
+    /// A non-finite value appeared in the named quantity.
+    NonFinite(&'static str),
+    /// The named covariance lost positive (semi-)definiteness.
+    NotPositive(&'static str),
+    /// The integrator gave up, for the stated reason.
+    Integration(&'static str),
+}
+
+impl std::fmt::Display for FilterError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            FilterError::NonFinite(what) => write!(f, "a non-finite value appeared in the {what}"),
+            FilterError::NotPositive(what) => {
+                write!(f, "the {what} is no longer positive definite")
+            }
+            FilterError::Integration(why) => write!(f, "integration failed: {why}"),
+        }
+    }
+}
+
+/// One filter's belief and its two steps. Implementations preallocate everything in their
+/// constructor: `predict` and `update` allocate nothing.
+pub trait Estimator: Send {
+    /// Propagate over `dt > 0` from time `t0` with held inputs `u`. With `keep_cross`, the
+    /// cross covariance between the previous and the predicted state is kept (for smoothing).
+    fn predict(
+        &mut self,
+        model: &Model,
+        u: &[f64],
+        t0: f64,
+        dt: f64,
+        keep_cross: bool,
+    ) -> Result<(), FilterError>;
+
+    /// Update with the sensors present on `reading` (its time is `t`), judging each against
+    /// `gate` (per-sensor NIS thresholds). Returns whether any reading was used.
+    fn update(
+        &mut self,
+        model: &Model,
+        reading: &Reading,
+        u: &[f64],
+        t: f64,
+        gate: Option<&[f64]>,
+    ) -> Result<bool, FilterError>;
+
+    /// The update buffers of the last update (innovations, NIS, acceptance).
+    fn obs(&self) -> &ObsSpace;
+
+    /// Current mean over all states.
+    fn mean(&self) -> &DVector<f64>;
+
+    /// Current covariance over all states.
+    fn covariance(&self) -> &DMatrix<f64>;
+
+    /// Cov(x_prev, x_pred) of the last prediction (valid after `predict(.., true)`).
+    fn cross(&self) -> &DMatrix<f64>;
+
+    /// Ensemble members (rows), for the ensemble filter.
+    fn members(&self) -> Option<&DMatrix<f64>> {
+        None
+    }
+
+    /// Note that one more measurement line was processed (random streams derive from it).
+    fn advance_step(&mut self) {}
+
+    /// The step counter carried in the posterior.
+    fn step(&self) -> u64 {
+        0
+    }
+
+    /// A copy for side predictions (`output.at`), which must not disturb the main run.
+    fn clone_box(&self) -> Box<dyn Estimator>;
+}

@@ -1,0 +1,299 @@
+//! What every filter's update shares: stacking the sensors present on a line, per-sensor
+//! gating on NIS, compaction to the accepted rows, and the Kalman gain.
+//!
+//! Given the predicted reading ẑ, its covariance S = Cov(z) (with R) and the cross
+//! covariance C = Cov(x, z), the update is K = C S⁻¹, x⁺ = x + K (z − ẑ) (Kalman 1960;
+//! in this cross-covariance form it covers the extended, unscented and ensemble filters,
+//! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6). Each sensor reading j
+//! is judged by NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4).
+
+use crate::filter::linalg::{cholesky, cholesky_solve, mahalanobis};
+use crate::filter::FilterError;
+use crate::spec::model::Model;
+use crate::spec::reading::Reading;
+
+/// One sensor's innovation on a line.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct SensorCheck {
+    /// Sensor index in the model.
+    pub sensor: usize,
+    /// First row of this sensor in the stacked reading.
+    pub row: usize,
+    /// Components.
+    pub dim: usize,
+    /// NIS of this reading alone against the predicted state.
+    pub nis: f64,
+    /// Whether it passed the gate and went into the update.
+    pub accepted: bool,
+}
+
+/// Preallocated buffers for one update; sized for every sensor at once.
+#[derive(Debug, Clone)]
+pub struct ObsSpace {
+    n: usize,
+    /// Stacked rows on the current line.
+    pub m: usize,
+    /// Rows accepted by the gate.
+    pub ma: usize,
+    /// Sensors present on the line.
+    pub checks: Vec<SensorCheck>,
+    /// Stacked reading.
+    pub z: Vec<f64>,
+    /// Predicted reading ẑ (filled by the filter).
+    pub zhat: Vec<f64>,
+    /// Innovation z − ẑ.
+    pub nu: Vec<f64>,
+    /// Innovation covariance S, `m × m` (filled by the filter without R; R is added here).
+    pub s: Vec<f64>,
+    /// Reading noise R, `m × m`.
+    pub r: Vec<f64>,
+    /// Cross covariance C = Cov(x, z), `n × m` (filled by the filter).
+    pub c: Vec<f64>,
+    /// Accepted row indices into the stacked reading.
+    pub keep: Vec<usize>,
+    /// Compacted S, ν, C and R over accepted rows.
+    pub s_acc: Vec<f64>,
+    /// Compacted innovation.
+    pub nu_acc: Vec<f64>,
+    /// Compacted cross covariance, `n × ma`.
+    pub c_acc: Vec<f64>,
+    /// Compacted reading noise.
+    pub r_acc: Vec<f64>,
+    /// Cholesky factor of `s_acc`.
+    pub l_acc: Vec<f64>,
+    /// Gain transposed, `Kᵀ = S⁻¹ Cᵀ`, `ma × n`.
+    pub kt: Vec<f64>,
+    /// NIS of all accepted rows jointly.
+    pub joint_nis: f64,
+    tmp: Vec<f64>,
+    block: Vec<f64>,
+    block_l: Vec<f64>,
+}
+
+impl ObsSpace {
+    /// Buffers for `model`.
+    pub fn new(model: &Model) -> Self {
+        let n = model.n();
+        let mm: usize = model.sensors.iter().map(|s| s.dim).sum();
+        let bm = model.sensors.iter().map(|s| s.dim).max().unwrap_or(1);
+        Self {
+            n,
+            m: 0,
+            ma: 0,
+            checks: Vec::with_capacity(model.sensors.len()),
+            z: vec![0.0; mm],
+            zhat: vec![0.0; mm],
+            nu: vec![0.0; mm],
+            s: vec![0.0; mm * mm],
+            r: vec![0.0; mm * mm],
+            c: vec![0.0; n * mm],
+            keep: Vec::with_capacity(mm),
+            s_acc: vec![0.0; mm * mm],
+            nu_acc: vec![0.0; mm],
+            c_acc: vec![0.0; n * mm],
+            r_acc: vec![0.0; mm * mm],
+            l_acc: vec![0.0; mm * mm],
+            kt: vec![0.0; mm * n],
+            joint_nis: 0.0,
+            tmp: vec![0.0; mm.max(n)],
+            block: vec![0.0; bm * bm],
+            block_l: vec![0.0; bm * bm],
+        }
+    }
+
+    /// Stack the sensors present on `reading` and their noise (per-reading overrides win).
+    pub fn begin(&mut self, model: &Model, reading: &Reading) {
+        self.checks.clear();
+        let mut row = 0;
+        for &(si, off) in &reading.sensors {
+            let dim = model.sensors[si].dim;
+            self.z[row..row + dim].copy_from_slice(&reading.z[off..off + dim]);
+            self.checks.push(SensorCheck {
+                sensor: si,
+                row,
+                dim,
+                nis: 0.0,
+                accepted: true,
+            });
+            row += dim;
+        }
+        self.m = row;
+        let m = row;
+        self.r[..m * m].iter_mut().for_each(|x| *x = 0.0);
+        for ck in &self.checks {
+            let over = reading.std_overrides.iter().find(|(s, _)| *s == ck.sensor);
+            let rs = &model.sensors[ck.sensor].r;
+            for a in 0..ck.dim {
+                for b in 0..ck.dim {
+                    let v = match over {
+                        Some(&(_, o)) if a == b => reading.std[o + a] * reading.std[o + a],
+                        Some(_) => 0.0,
+                        None => rs[(a, b)],
+                    };
+                    self.r[(ck.row + a) + (ck.row + b) * m] = v;
+                }
+            }
+        }
+    }
+
+    /// Add R to S, form ν = z − ẑ, judge each sensor against `thresholds` (per model sensor),
+    /// and compact the accepted rows. Returns whether anything was accepted.
+    pub fn gate(&mut self, thresholds: Option<&[f64]>) -> Result<bool, FilterError> {
+        let m = self.m;
+        for i in 0..m * m {
+            self.s[i] += self.r[i];
+        }
+        for i in 0..m {
+            self.nu[i] = self.z[i] - self.zhat[i];
+        }
+        if !self.nu[..m].iter().all(|x| x.is_finite())
+            || !self.s[..m * m].iter().all(|x| x.is_finite())
+        {
+            return Err(FilterError::NonFinite("predicted reading"));
+        }
+        for ck in self.checks.iter_mut() {
+            let d = ck.dim;
+            for a in 0..d {
+                for b in 0..d {
+                    self.block[a + b * d] = self.s[(ck.row + a) + (ck.row + b) * m];
+                }
+            }
+            cholesky(&self.block[..d * d], &mut self.block_l[..d * d], d)
+                .map_err(|_| FilterError::NotPositive("innovation covariance"))?;
+            ck.nis = mahalanobis(
+                &self.block_l[..d * d],
+                d,
+                &self.nu[ck.row..ck.row + d],
+                &mut self.tmp,
+            );
+            ck.accepted = thresholds.is_none_or(|t| ck.nis <= t[ck.sensor]);
+        }
+        self.keep.clear();
+        for ck in &self.checks {
+            if ck.accepted {
+                self.keep.extend(ck.row..ck.row + ck.dim);
+            }
+        }
+        let ma = self.keep.len();
+        self.ma = ma;
+        let n = self.n;
+        for (a, &ra) in self.keep.iter().enumerate() {
+            self.nu_acc[a] = self.nu[ra];
+            for (b, &rb) in self.keep.iter().enumerate() {
+                self.s_acc[a + b * ma] = self.s[ra + rb * m];
+                self.r_acc[a + b * ma] = self.r[ra + rb * m];
+            }
+            for i in 0..n {
+                self.c_acc[i + a * n] = self.c[i + ra * n];
+            }
+        }
+        Ok(ma > 0)
+    }
+
+    /// Factor S over the accepted rows, form Kᵀ = S⁻¹ Cᵀ and the joint NIS.
+    pub fn gain(&mut self) -> Result<(), FilterError> {
+        let (ma, n) = (self.ma, self.n);
+        cholesky(&self.s_acc[..ma * ma], &mut self.l_acc[..ma * ma], ma)
+            .map_err(|_| FilterError::NotPositive("innovation covariance"))?;
+        self.joint_nis = mahalanobis(
+            &self.l_acc[..ma * ma],
+            ma,
+            &self.nu_acc[..ma],
+            &mut self.tmp,
+        );
+        // Kᵀ (ma × n) = S⁻¹ Cᵀ: column i of Kᵀ solves S k = row i of C.
+        for i in 0..n {
+            for a in 0..ma {
+                self.kt[a + i * ma] = self.c_acc[i + a * n];
+            }
+        }
+        cholesky_solve(&self.l_acc[..ma * ma], ma, &mut self.kt[..ma * n], n);
+        Ok(())
+    }
+
+    /// `x += K ν` for a state vector `x` of length n.
+    pub fn apply_gain(&self, x: &mut [f64]) {
+        let ma = self.ma;
+        for (i, xi) in x.iter_mut().enumerate() {
+            let mut s = 0.0;
+            for a in 0..ma {
+                s += self.kt[a + i * ma] * self.nu_acc[a];
+            }
+            *xi += s;
+        }
+    }
+
+    /// `p −= K Cᵀ` (= C S⁻¹ Cᵀ), the covariance update in cross-covariance form; the caller
+    /// symmetrises.
+    pub fn subtract_gain_cross(&self, p: &mut [f64]) {
+        let (ma, n) = (self.ma, self.n);
+        for j in 0..n {
+            for i in 0..n {
+                let mut s = 0.0;
+                for a in 0..ma {
+                    s += self.kt[a + i * ma] * self.c_acc[j + a * n];
+                }
+                p[i + j * n] -= s;
+            }
+        }
+    }
+}
+
+/// Evaluates sensors at many points at once (sigma points or members).
+#[derive(Debug, Clone)]
+pub struct PointObserver {
+    points: usize,
+    bvars: Vec<f64>,
+    sws: Vec<crate::formula::BatchWorkspace>,
+    /// Predicted readings, stacked rows × points: `zs[row * points + j]`.
+    pub zs: Vec<f64>,
+}
+
+impl PointObserver {
+    /// Buffers for `model` over `points` points.
+    pub fn new(model: &Model, points: usize) -> Self {
+        let mm: usize = model.sensors.iter().map(|s| s.dim).sum();
+        Self {
+            points,
+            bvars: vec![0.0; (model.n() + model.nu() + 1) * points],
+            sws: model
+                .sensors
+                .iter()
+                .map(|s| s.program.batch_workspace(points))
+                .collect(),
+            zs: vec![0.0; mm * points],
+        }
+    }
+
+    /// Evaluate the sensors in `checks` at the rows of `x` (`points × n`) with inputs `u` at
+    /// time `t`, filling `zs` in stacked order.
+    pub fn eval(
+        &mut self,
+        model: &Model,
+        checks: &[SensorCheck],
+        x: &nalgebra::DMatrix<f64>,
+        u: &[f64],
+        t: f64,
+    ) {
+        let (n, nu, mp) = (model.n(), model.nu(), self.points);
+        self.bvars[..n * mp].copy_from_slice(x.as_slice());
+        for (j, uj) in u.iter().enumerate() {
+            self.bvars[(n + j) * mp..(n + j + 1) * mp]
+                .iter_mut()
+                .for_each(|v| *v = *uj);
+        }
+        self.bvars[(n + nu) * mp..(n + nu + 1) * mp]
+            .iter_mut()
+            .for_each(|v| *v = t);
+        for ck in checks {
+            let sensor = &model.sensors[ck.sensor];
+            let slots = sensor.program.slots();
+            sensor.program.eval_batch(
+                &self.bvars[..slots * mp],
+                mp,
+                &mut self.sws[ck.sensor],
+                &mut self.zs[ck.row * mp..(ck.row + ck.dim) * mp],
+            );
+        }
+    }
+}

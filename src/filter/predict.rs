@@ -1,0 +1,561 @@
+//! Time propagation of a filter's belief between two readings, for every kind of dynamics.
+//!
+//! - Gaussian form (EKF): mean and covariance. Linear models use the exact discretisation
+//!   (Φ = e^{AΔ}, Q by Van Loan 1978); `next` maps use m⁺ = g(m), P⁺ = G P Gᵀ + Q with the
+//!   exact Jacobian G (Jazwinski 1970, *Stochastic Processes and Filtering Theory*, §8.3);
+//!   `rates` integrate ṁ = f(m), Ṗ = F P + P Fᵀ + Qc together (the continuous-discrete
+//!   EKF, same source, §9.3), optionally with Φ̇ = F Φ for the smoother.
+//! - Point form (UKF sigma points, EnKF members): every point moves through the same
+//!   deterministic flow in one batched evaluation per stage; the process noise over the
+//!   interval, Q = ∫ Φ(Δ,s) Qc Φ(Δ,s)ᵀ ds, comes from Q̇ = F Q + Q Fᵀ + Qc along the
+//!   weighted mean of the points (exact for linear models; Särkkä 2013, §5.2 for the idea).
+//!
+//! Everything is preallocated at construction; a prediction allocates nothing.
+
+use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
+use crate::filter::linalg::{congruence_plus, symmetrize};
+use crate::filter::FilterError;
+use crate::formula::{BatchWorkspace, Program, Workspace};
+use crate::spec::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
+use nalgebra::{DMatrix, DVector};
+
+/// Classic fixed-step fourth-order Runge–Kutta with its own buffers.
+#[derive(Debug, Clone)]
+struct Rk4 {
+    k: [Vec<f64>; 4],
+    tmp: Vec<f64>,
+}
+
+impl Rk4 {
+    fn new(dim: usize) -> Self {
+        Self {
+            k: std::array::from_fn(|_| vec![0.0; dim]),
+            tmp: vec![0.0; dim],
+        }
+    }
+
+    /// Integrate from 0 to `span` in equal steps no longer than `h_max`.
+    fn integrate<F: FnMut(f64, &[f64], &mut [f64])>(
+        &mut self,
+        mut f: F,
+        span: f64,
+        h_max: f64,
+        y: &mut [f64],
+    ) -> Result<(), OdeError> {
+        let steps = (span / h_max).ceil().max(1.0) as usize;
+        let h = span / steps as f64;
+        let d = y.len();
+        for s in 0..steps {
+            let t = s as f64 * h;
+            let [k1, k2, k3, k4] = &mut self.k;
+            f(t, y, &mut k1[..d]);
+            for i in 0..d {
+                self.tmp[i] = y[i] + 0.5 * h * k1[i];
+            }
+            f(t + 0.5 * h, &self.tmp[..d], &mut k2[..d]);
+            for i in 0..d {
+                self.tmp[i] = y[i] + 0.5 * h * k2[i];
+            }
+            f(t + 0.5 * h, &self.tmp[..d], &mut k3[..d]);
+            for i in 0..d {
+                self.tmp[i] = y[i] + h * k3[i];
+            }
+            f(t + h, &self.tmp[..d], &mut k4[..d]);
+            for i in 0..d {
+                y[i] += h / 6.0 * (k1[i] + 2.0 * k2[i] + 2.0 * k3[i] + k4[i]);
+            }
+            if !y.iter().all(|x| x.is_finite()) {
+                return Err(OdeError::NonFinite { t: t + h });
+            }
+        }
+        Ok(())
+    }
+}
+
+fn ode_error(e: OdeError) -> FilterError {
+    match e {
+        OdeError::NonFinite { .. } => FilterError::NonFinite("state during integration"),
+        OdeError::StepTooSmall { .. } => FilterError::Integration(
+            "the step size collapsed (the dynamics may be stiff or blow up)",
+        ),
+        OdeError::TooManySteps { .. } => FilterError::Integration(
+            "too many integration steps (set integration.max_step larger, or check the dynamics)",
+        ),
+    }
+}
+
+/// Whether a continuous density is all zeros (so the noise integral can be skipped).
+fn is_zero(m: &DMatrix<f64>) -> bool {
+    m.iter().all(|x| *x == 0.0)
+}
+
+/// Buffers of the single-point formula evaluations.
+#[derive(Debug, Clone)]
+struct PointEval {
+    vars: Vec<f64>,
+    ws: Option<Workspace>,
+    fx: Vec<f64>,
+    jac: Vec<f64>,
+    f_full: Vec<f64>,
+    fp: Vec<f64>,
+}
+
+impl PointEval {
+    /// `vars = [x, u, t, dt]`, evaluate the dynamics program with its Jacobian over states,
+    /// and fill the full `n × n` Jacobian (parameters have zero rate / identity map).
+    fn jacobian(&mut self, program: &Program, n: usize, n_model: usize, identity_params: bool) {
+        let slots = program.slots();
+        let ws = self
+            .ws
+            .as_mut()
+            .expect("workspace exists for formula dynamics");
+        program.eval_jacobian(&self.vars[..slots], n, ws, &mut self.fx, &mut self.jac);
+        self.f_full.iter_mut().for_each(|x| *x = 0.0);
+        for k in 0..n_model {
+            for j in 0..n {
+                self.f_full[k + j * n] = self.jac[k * n + j];
+            }
+        }
+        if identity_params {
+            for k in n_model..n {
+                self.f_full[k + k * n] = 1.0;
+            }
+        }
+    }
+}
+
+/// dP = F P + P Fᵀ + Qc (also used for Q̇), all `n × n` column-major; `fp` is scratch.
+fn lyapunov_rate(f: &[f64], p: &[f64], qc: &[f64], fp: &mut [f64], dp: &mut [f64], n: usize) {
+    for j in 0..n {
+        for i in 0..n {
+            let mut s = 0.0;
+            for l in 0..n {
+                s += f[i + l * n] * p[l + j * n];
+            }
+            fp[i + j * n] = s;
+        }
+    }
+    for j in 0..n {
+        for i in 0..n {
+            dp[i + j * n] = fp[i + j * n] + fp[j + i * n] + qc[i + j * n];
+        }
+    }
+}
+
+/// Propagates beliefs of one model; owns every buffer it needs.
+#[derive(Debug, Clone)]
+pub struct Predictor {
+    n: usize,
+    nu: usize,
+    n_model: usize,
+    points: usize,
+    integration: Integration,
+    pe: PointEval,
+    // Linear models.
+    disc: Option<Discretiser>,
+    dcache: Option<Discrete>,
+    cached_dt: f64,
+    // Noise.
+    qc: DMatrix<f64>,
+    q_step: DMatrix<f64>,
+    drift: DVector<f64>,
+    q_zero: bool,
+    // Integrators and their state vectors.
+    ode_g: Dopri5,
+    ode_g_phi: Dopri5,
+    rk_g: Rk4,
+    y_g: Vec<f64>,
+    ode_p: Dopri5,
+    rk_p: Rk4,
+    y_p: Vec<f64>,
+    // Batched evaluation over points.
+    bws: Option<BatchWorkspace>,
+    bvars: Vec<f64>,
+    bout: Vec<f64>,
+    weights: Vec<f64>,
+    // Scratch.
+    tmp: DMatrix<f64>,
+    tmp2: DMatrix<f64>,
+    g: DMatrix<f64>,
+    xm: DMatrix<f64>,
+    vtmp: DVector<f64>,
+}
+
+impl Predictor {
+    /// Buffers for `model`, propagating up to `points` points at once (0 for the EKF).
+    pub fn new(model: &Model, integration: Integration, points: usize) -> Self {
+        let (n, nu, n_model) = (model.n(), model.nu(), model.n_model);
+        let program = match &model.dynamics {
+            Dynamics::Rates(p) | Dynamics::Next(p) => Some(p),
+            Dynamics::Linear { .. } => None,
+        };
+        let (qc, q_step, drift) = match &model.noise {
+            ProcessNoise::Density(q) => (q.clone(), DMatrix::zeros(n, n), DVector::zeros(n)),
+            ProcessNoise::PerStep { q, drift } => (DMatrix::zeros(n, n), q.clone(), drift.clone()),
+        };
+        let q_zero = is_zero(&qc) && is_zero(&q_step) && drift.iter().all(|d| *d == 0.0);
+        let (disc, dcache) = match &model.dynamics {
+            Dynamics::Linear {
+                time: LinearTime::Continuous,
+                ..
+            } => {
+                let d = Discretiser::new(n, nu);
+                let out = d.output();
+                (Some(d), Some(out))
+            }
+            _ => (None, None),
+        };
+        let g_dim = n + 2 * n * n;
+        let p_dim = n * points + if q_zero { 0 } else { n * n };
+        let slots = model.slot_count();
+        Self {
+            n,
+            nu,
+            n_model,
+            points,
+            integration,
+            pe: PointEval {
+                vars: vec![0.0; slots],
+                ws: program.map(|p| p.workspace()),
+                fx: vec![0.0; n_model],
+                jac: vec![0.0; n_model * n],
+                f_full: vec![0.0; n * n],
+                fp: vec![0.0; n * n],
+            },
+            disc,
+            dcache,
+            cached_dt: f64::NAN,
+            qc,
+            q_step,
+            drift,
+            q_zero,
+            ode_g: Self::dopri(n + n * n, &integration),
+            ode_g_phi: Self::dopri(g_dim, &integration),
+            rk_g: Rk4::new(g_dim),
+            y_g: vec![0.0; g_dim],
+            ode_p: Self::dopri(p_dim.max(1), &integration),
+            rk_p: Rk4::new(p_dim.max(1)),
+            y_p: vec![0.0; p_dim.max(1)],
+            bws: program
+                .filter(|_| points > 0)
+                .map(|p| p.batch_workspace(points)),
+            bvars: vec![0.0; slots * points],
+            bout: vec![0.0; n_model * points],
+            weights: vec![0.0; points],
+            tmp: DMatrix::zeros(n, n),
+            tmp2: DMatrix::zeros(n, n),
+            g: DMatrix::zeros(n, n),
+            xm: DMatrix::zeros(points, n),
+            vtmp: DVector::zeros(n),
+        }
+    }
+
+    fn dopri(dim: usize, integration: &Integration) -> Dopri5 {
+        let mut d = Dopri5::new(dim);
+        d.rtol = integration.rtol;
+        d.atol = integration.atol;
+        d.max_step = integration.max_step;
+        d
+    }
+
+    /// Exact discretisation for linear continuous models, cached for repeated steps.
+    fn discretise(&mut self, model: &Model, dt: f64) {
+        if let (Some(d), Some(out), Dynamics::Linear { matrix, b, .. }) =
+            (self.disc.as_mut(), self.dcache.as_mut(), &model.dynamics)
+        {
+            if self.cached_dt.to_bits() != dt.to_bits() {
+                d.discretise(matrix, b, &self.qc, dt, out);
+                self.cached_dt = dt;
+            }
+        }
+    }
+
+    /// Per-step discrete noise `q + diag(drift)·dt` into `out`.
+    fn step_noise(&self, dt: f64, out: &mut DMatrix<f64>) {
+        out.copy_from(&self.q_step);
+        for i in 0..self.n {
+            out[(i, i)] += self.drift[i] * dt;
+        }
+    }
+
+    /// Number of grid steps for a discrete linear model over a gap `dt`.
+    fn grid_steps(dt: f64, grid: f64) -> usize {
+        (dt / grid).round().max(0.0) as usize
+    }
+
+    /// Gaussian prediction over `dt > 0` from time `t0` with inputs `u`. When `phi` is
+    /// given it receives the state transition matrix of the step (for the smoother).
+    pub fn predict_gaussian(
+        &mut self,
+        model: &Model,
+        mean: &mut DVector<f64>,
+        cov: &mut DMatrix<f64>,
+        u: &[f64],
+        t0: f64,
+        dt: f64,
+        mut phi: Option<&mut DMatrix<f64>>,
+    ) -> Result<(), FilterError> {
+        let n = self.n;
+        match &model.dynamics {
+            Dynamics::Linear {
+                time: LinearTime::Continuous,
+                ..
+            } => {
+                self.discretise(model, dt);
+                let d = self.dcache.as_ref().expect("linear cache");
+                d.phi.mul_to(mean, &mut self.vtmp);
+                mean.copy_from(&self.vtmp);
+                for (i, mi) in mean.iter_mut().enumerate() {
+                    for (j, uj) in u.iter().enumerate() {
+                        *mi += d.gamma[(i, j)] * uj;
+                    }
+                }
+                congruence_plus(&d.phi, cov, &d.q, &mut self.tmp);
+                if let Some(p) = phi.as_deref_mut() {
+                    p.copy_from(&d.phi);
+                }
+            }
+            Dynamics::Linear {
+                time: LinearTime::Discrete { dt: grid },
+                matrix,
+                b,
+            } => {
+                let k = Self::grid_steps(dt, *grid);
+                let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
+                self.step_noise(*grid, &mut q);
+                if let Some(p) = phi.as_deref_mut() {
+                    p.fill_with_identity();
+                }
+                for _ in 0..k {
+                    matrix.mul_to(mean, &mut self.vtmp);
+                    mean.copy_from(&self.vtmp);
+                    for (i, mi) in mean.iter_mut().enumerate() {
+                        for (j, uj) in u.iter().enumerate() {
+                            *mi += b[(i, j)] * uj;
+                        }
+                    }
+                    congruence_plus(matrix, cov, &q, &mut self.tmp);
+                    if let Some(p) = phi.as_deref_mut() {
+                        matrix.mul_to(p, &mut self.tmp);
+                        p.copy_from(&self.tmp);
+                    }
+                }
+                self.tmp2 = q;
+            }
+            Dynamics::Next(program) => {
+                self.fill_vars(mean.as_slice(), u, t0, dt);
+                self.pe.jacobian(program, n, self.n_model, true);
+                for k in 0..self.n_model {
+                    mean[k] = self.pe.fx[k];
+                }
+                let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
+                self.step_noise(dt, &mut q);
+                self.g.as_mut_slice().copy_from_slice(&self.pe.f_full);
+                congruence_plus(&self.g, cov, &q, &mut self.tmp);
+                if let Some(p) = phi.as_deref_mut() {
+                    p.copy_from(&self.g);
+                }
+                self.tmp2 = q;
+            }
+            Dynamics::Rates(program) => {
+                let want_phi = phi.is_some();
+                let dim = n + n * n + if want_phi { n * n } else { 0 };
+                let y = &mut self.y_g[..dim];
+                y[..n].copy_from_slice(mean.as_slice());
+                y[n..n + n * n].copy_from_slice(cov.as_slice());
+                if want_phi {
+                    for j in 0..n {
+                        for i in 0..n {
+                            y[n + n * n + i + j * n] = if i == j { 1.0 } else { 0.0 };
+                        }
+                    }
+                }
+                let (nm, nu) = (self.n_model, self.nu);
+                let pe = &mut self.pe;
+                let qc = self.qc.as_slice();
+                let rhs = |s: f64, y: &[f64], dy: &mut [f64]| {
+                    pe.vars[..n].copy_from_slice(&y[..n]);
+                    pe.vars[n..n + nu].copy_from_slice(u);
+                    pe.vars[n + nu] = t0 + s;
+                    pe.jacobian(program, n, nm, false);
+                    dy[..nm].copy_from_slice(&pe.fx);
+                    dy[nm..n].iter_mut().for_each(|x| *x = 0.0);
+                    let (dp, dphi) = dy[n..].split_at_mut(n * n);
+                    lyapunov_rate(&pe.f_full, &y[n..n + n * n], qc, &mut pe.fp, dp, n);
+                    if want_phi {
+                        let phi_y = &y[n + n * n..];
+                        for j in 0..n {
+                            for i in 0..n {
+                                let mut acc = 0.0;
+                                for l in 0..n {
+                                    acc += pe.f_full[i + l * n] * phi_y[l + j * n];
+                                }
+                                dphi[i + j * n] = acc;
+                            }
+                        }
+                    }
+                };
+                match self.integration.fixed_step {
+                    Some(h) => self.rk_g.integrate(rhs, dt, h, y),
+                    None if want_phi => self.ode_g_phi.integrate(rhs, 0.0, dt, y).map(|_| ()),
+                    None => self.ode_g.integrate(rhs, 0.0, dt, y).map(|_| ()),
+                }
+                .map_err(ode_error)?;
+                mean.as_mut_slice().copy_from_slice(&y[..n]);
+                cov.as_mut_slice().copy_from_slice(&y[n..n + n * n]);
+                symmetrize(cov);
+                if let Some(p) = phi {
+                    p.as_mut_slice().copy_from_slice(&y[n + n * n..dim]);
+                }
+            }
+        }
+        if !mean.iter().all(|x| x.is_finite()) || !cov.iter().all(|x| x.is_finite()) {
+            return Err(FilterError::NonFinite("predicted state"));
+        }
+        Ok(())
+    }
+
+    fn fill_vars(&mut self, x: &[f64], u: &[f64], t0: f64, dt: f64) {
+        let (n, nu) = (self.n, self.nu);
+        self.pe.vars[..n].copy_from_slice(x);
+        self.pe.vars[n..n + nu].copy_from_slice(u);
+        self.pe.vars[n + nu] = t0;
+        self.pe.vars[n + nu + 1] = dt;
+    }
+
+    /// Move the points (rows of `x`, `points × n`) over `dt > 0` and put the process noise
+    /// covariance of the interval in `q`. `weights` give the mean along which the noise of a
+    /// nonlinear continuous model is integrated. Returns whether `q` is non-zero.
+    pub fn predict_points(
+        &mut self,
+        model: &Model,
+        x: &mut DMatrix<f64>,
+        weights: &[f64],
+        u: &[f64],
+        t0: f64,
+        dt: f64,
+        q: &mut DMatrix<f64>,
+    ) -> Result<bool, FilterError> {
+        let (n, nu, nm, mp) = (self.n, self.nu, self.n_model, self.points);
+        debug_assert_eq!(x.nrows(), mp);
+        match &model.dynamics {
+            Dynamics::Linear {
+                time: LinearTime::Continuous,
+                ..
+            } => {
+                self.discretise(model, dt);
+                let d = self.dcache.as_ref().expect("linear cache");
+                // X ← X Φᵀ + 1 (Γ u)ᵀ
+                crate::filter::linalg::mul_abt(x, &d.phi, &mut self.xm);
+                for i in 0..n {
+                    self.vtmp[i] = (0..nu).map(|j| d.gamma[(i, j)] * u[j]).sum();
+                }
+                for i in 0..n {
+                    for j in 0..mp {
+                        x[(j, i)] = self.xm[(j, i)] + self.vtmp[i];
+                    }
+                }
+                q.copy_from(&d.q);
+            }
+            Dynamics::Linear {
+                time: LinearTime::Discrete { dt: grid },
+                matrix,
+                b,
+            } => {
+                let k = Self::grid_steps(dt, *grid);
+                let mut qs = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
+                self.step_noise(*grid, &mut qs);
+                q.fill(0.0);
+                for i in 0..n {
+                    self.vtmp[i] = (0..nu).map(|j| b[(i, j)] * u[j]).sum();
+                }
+                for _ in 0..k {
+                    crate::filter::linalg::mul_abt(x, matrix, &mut self.xm);
+                    for i in 0..n {
+                        for j in 0..mp {
+                            x[(j, i)] = self.xm[(j, i)] + self.vtmp[i];
+                        }
+                    }
+                    congruence_plus(matrix, q, &qs, &mut self.tmp);
+                }
+                self.tmp2 = qs;
+            }
+            Dynamics::Next(program) => {
+                let slots = program.slots();
+                self.bvars[..n * mp].copy_from_slice(x.as_slice());
+                for (j, uj) in u.iter().enumerate() {
+                    self.bvars[(n + j) * mp..(n + j + 1) * mp]
+                        .iter_mut()
+                        .for_each(|v| *v = *uj);
+                }
+                self.bvars[(n + nu) * mp..(n + nu + 1) * mp]
+                    .iter_mut()
+                    .for_each(|v| *v = t0);
+                self.bvars[(n + nu + 1) * mp..(n + nu + 2) * mp]
+                    .iter_mut()
+                    .for_each(|v| *v = dt);
+                let bws = self.bws.as_mut().expect("batch workspace");
+                program.eval_batch(&self.bvars[..slots * mp], mp, bws, &mut self.bout);
+                x.as_mut_slice()[..nm * mp].copy_from_slice(&self.bout[..nm * mp]);
+                self.step_noise(dt, q);
+            }
+            Dynamics::Rates(program) => {
+                self.weights[..mp].copy_from_slice(weights);
+                let with_q = !self.q_zero;
+                let dim = n * mp + if with_q { n * n } else { 0 };
+                let y = &mut self.y_p[..dim];
+                y[..n * mp].copy_from_slice(x.as_slice());
+                if with_q {
+                    y[n * mp..].iter_mut().for_each(|v| *v = 0.0);
+                }
+                for (j, uj) in u.iter().enumerate() {
+                    self.bvars[(n + j) * mp..(n + j + 1) * mp]
+                        .iter_mut()
+                        .for_each(|v| *v = *uj);
+                }
+                let slots = program.slots();
+                let bvars = &mut self.bvars;
+                let bout = &mut self.bout;
+                let bws = self.bws.as_mut().expect("batch workspace");
+                let pe = &mut self.pe;
+                let w = &self.weights[..mp];
+                let qc = self.qc.as_slice();
+                let rhs = |s: f64, y: &[f64], dy: &mut [f64]| {
+                    bvars[..n * mp].copy_from_slice(&y[..n * mp]);
+                    bvars[(n + nu) * mp..(n + nu + 1) * mp]
+                        .iter_mut()
+                        .for_each(|v| *v = t0 + s);
+                    program.eval_batch(&bvars[..slots * mp], mp, bws, bout);
+                    dy[..nm * mp].copy_from_slice(&bout[..nm * mp]);
+                    dy[nm * mp..n * mp].iter_mut().for_each(|v| *v = 0.0);
+                    if with_q {
+                        for i in 0..n {
+                            pe.vars[i] = (0..mp).map(|j| w[j] * y[i * mp + j]).sum();
+                        }
+                        pe.vars[n..n + nu].copy_from_slice(u);
+                        pe.vars[n + nu] = t0 + s;
+                        pe.jacobian(program, n, nm, false);
+                        let (_, dq) = dy.split_at_mut(n * mp);
+                        lyapunov_rate(&pe.f_full, &y[n * mp..], qc, &mut pe.fp, dq, n);
+                    }
+                };
+                match self.integration.fixed_step {
+                    Some(h) => self.rk_p.integrate(rhs, dt, h, y),
+                    None => self.ode_p.integrate(rhs, 0.0, dt, y).map(|_| ()),
+                }
+                .map_err(ode_error)?;
+                x.as_mut_slice().copy_from_slice(&y[..n * mp]);
+                if with_q {
+                    q.as_mut_slice().copy_from_slice(&y[n * mp..dim]);
+                    symmetrize(q);
+                } else {
+                    q.fill(0.0);
+                }
+            }
+        }
+        if !x.iter().all(|v| v.is_finite()) || !q.iter().all(|v| v.is_finite()) {
+            return Err(FilterError::NonFinite("predicted points"));
+        }
+        Ok(!self.q_zero)
+    }
+}

@@ -1,0 +1,221 @@
+//! Hand-written JSON output for estimates, posteriors and summaries: names are escaped once
+//! per request, numbers go through `ryu` (shortest round-trip form, so a posterior sent back
+//! as a prior is read to the same bits), and nothing is built as a tree first.
+
+use crate::diagnostics::nis::NisSummary;
+use crate::filter::observe::ObsSpace;
+use crate::filter::run::Counts;
+use crate::spec::model::{CovarianceOutput, Model, OutputConfig};
+use crate::spec::time::{Instant, TimeMode};
+use nalgebra::{DMatrix, DVector};
+
+/// Writes the pieces of responses for one model.
+pub struct Writer {
+    state_keys: Vec<Vec<u8>>,
+    sensor_keys: Vec<Vec<u8>>,
+    input_keys: Vec<Vec<u8>>,
+    states_json: Vec<u8>,
+    mode: TimeMode,
+    out: OutputConfig,
+}
+
+fn key(name: &str) -> Vec<u8> {
+    let mut v = serde_json::to_vec(name).unwrap_or_default();
+    v.push(b':');
+    v
+}
+
+/// Append a finite number (callers have checked finiteness; a stray non-finite becomes null).
+pub fn num(buf: &mut Vec<u8>, x: f64) {
+    if x.is_finite() {
+        let mut b = ryu::Buffer::new();
+        buf.extend_from_slice(b.format_finite(x).as_bytes());
+    } else {
+        buf.extend_from_slice(b"null");
+    }
+}
+
+impl Writer {
+    /// A writer for `model`'s names, times in `mode`, with response options `out`.
+    pub fn new(model: &Model, mode: TimeMode, out: OutputConfig) -> Self {
+        Self {
+            state_keys: model.states.iter().map(|s| key(s)).collect(),
+            sensor_keys: model.sensors.iter().map(|s| key(&s.name)).collect(),
+            input_keys: model.inputs.iter().map(|s| key(s)).collect(),
+            states_json: serde_json::to_vec(&model.states).unwrap_or_default(),
+            mode,
+            out,
+        }
+    }
+
+    /// The response options.
+    pub fn output(&self) -> &OutputConfig {
+        &self.out
+    }
+
+    /// `"states":[...]`
+    pub fn states(&self, buf: &mut Vec<u8>) {
+        buf.extend_from_slice(b"\"states\":");
+        buf.extend_from_slice(&self.states_json);
+    }
+
+    /// A time in the request's form.
+    pub fn time(&self, buf: &mut Vec<u8>, t: &Instant) {
+        match self.mode {
+            TimeMode::Seconds => num(buf, t.secs),
+            TimeMode::Stamp => {
+                buf.push(b'"');
+                buf.extend_from_slice(t.to_rfc3339().as_bytes());
+                buf.push(b'"');
+            }
+        }
+    }
+
+    fn vector(&self, buf: &mut Vec<u8>, keys: &[Vec<u8>], v: impl Iterator<Item = f64>) {
+        buf.push(b'{');
+        for (i, (k, x)) in keys.iter().zip(v).enumerate() {
+            if i > 0 {
+                buf.push(b',');
+            }
+            buf.extend_from_slice(k);
+            num(buf, x);
+        }
+        buf.push(b'}');
+    }
+
+    fn matrix(&self, buf: &mut Vec<u8>, m: &DMatrix<f64>) {
+        buf.push(b'[');
+        for i in 0..m.nrows() {
+            if i > 0 {
+                buf.push(b',');
+            }
+            buf.push(b'[');
+            for j in 0..m.ncols() {
+                if j > 0 {
+                    buf.push(b',');
+                }
+                num(buf, m[(i, j)]);
+            }
+            buf.push(b']');
+        }
+        buf.push(b']');
+    }
+
+    /// One estimate object; `obs` carries the innovations of the line's update, if any.
+    pub fn estimate(
+        &self,
+        buf: &mut Vec<u8>,
+        t: &Instant,
+        mean: &DVector<f64>,
+        cov: &DMatrix<f64>,
+        obs: Option<&ObsSpace>,
+    ) {
+        buf.extend_from_slice(b"{\"t\":");
+        self.time(buf, t);
+        buf.extend_from_slice(b",\"mean\":");
+        self.vector(buf, &self.state_keys, mean.iter().copied());
+        if self.out.covariance != CovarianceOutput::None {
+            buf.extend_from_slice(b",\"std\":");
+            self.vector(
+                buf,
+                &self.state_keys,
+                (0..mean.len()).map(|i| cov[(i, i)].max(0.0).sqrt()),
+            );
+        }
+        if self.out.covariance == CovarianceOutput::Full {
+            buf.extend_from_slice(b",\"covariance\":");
+            self.matrix(buf, cov);
+        }
+        if let Some(obs) = obs.filter(|o| self.out.innovations && !o.checks.is_empty()) {
+            buf.extend_from_slice(b",\"innovations\":{");
+            let m = obs.m;
+            for (i, ck) in obs.checks.iter().enumerate() {
+                if i > 0 {
+                    buf.push(b',');
+                }
+                buf.extend_from_slice(&self.sensor_keys[ck.sensor]);
+                buf.extend_from_slice(b"{\"residual\":");
+                let rows = ck.row..ck.row + ck.dim;
+                self.scalar_or_list(buf, rows.clone().map(|r| obs.nu[r]));
+                buf.extend_from_slice(b",\"std\":");
+                self.scalar_or_list(buf, rows.map(|r| obs.s[r + r * m].max(0.0).sqrt()));
+                buf.extend_from_slice(b",\"nis\":");
+                num(buf, ck.nis);
+                buf.extend_from_slice(if ck.accepted {
+                    b",\"accepted\":true}"
+                } else {
+                    b",\"accepted\":false}"
+                });
+            }
+            buf.push(b'}');
+        }
+        buf.push(b'}');
+    }
+
+    fn scalar_or_list(&self, buf: &mut Vec<u8>, xs: impl ExactSizeIterator<Item = f64>) {
+        if xs.len() == 1 {
+            for x in xs {
+                num(buf, x);
+            }
+            return;
+        }
+        buf.push(b'[');
+        for (i, x) in xs.enumerate() {
+            if i > 0 {
+                buf.push(b',');
+            }
+            num(buf, x);
+        }
+        buf.push(b']');
+    }
+
+    /// `"posterior":{...}`: full covariance always, so it can be sent back exactly.
+    #[allow(clippy::too_many_arguments)]
+    pub fn posterior(
+        &self,
+        buf: &mut Vec<u8>,
+        t: &Instant,
+        mean: &DVector<f64>,
+        cov: &DMatrix<f64>,
+        members: Option<&DMatrix<f64>>,
+        step: u64,
+        inputs: &DVector<f64>,
+    ) {
+        buf.extend_from_slice(b"\"posterior\":{\"t\":");
+        self.time(buf, t);
+        buf.extend_from_slice(b",\"mean\":");
+        self.vector(buf, &self.state_keys, mean.iter().copied());
+        buf.extend_from_slice(b",\"covariance\":");
+        self.matrix(buf, cov);
+        if !self.input_keys.is_empty() {
+            buf.extend_from_slice(b",\"inputs\":");
+            self.vector(buf, &self.input_keys, inputs.iter().copied());
+        }
+        if let Some(x) = members {
+            buf.extend_from_slice(b",\"members\":");
+            self.matrix(buf, x);
+            buf.extend_from_slice(b",\"step\":");
+            buf.extend_from_slice(itoa::Buffer::new().format(step).as_bytes());
+        }
+        buf.push(b'}');
+    }
+
+    /// `"summary":{...}`.
+    pub fn summary(&self, buf: &mut Vec<u8>, counts: &Counts) {
+        #[derive(serde::Serialize)]
+        struct Summary {
+            steps: u64,
+            updates: u64,
+            rejected: u64,
+            nis: NisSummary,
+        }
+        buf.extend_from_slice(b"\"summary\":");
+        let s = Summary {
+            steps: counts.steps,
+            updates: counts.updates,
+            rejected: counts.rejected,
+            nis: counts.nis.summary(),
+        };
+        buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
+    }
+}

@@ -1,0 +1,278 @@
+//! The checked model and run settings: what the filters consume. Everything here has
+//! been validated once (dimensions agree, covariances are symmetric PSD, names resolve,
+//! formulas compiled), so the filters never re-check.
+
+use crate::formula::Program;
+use crate::spec::time::{Instant, TimeMode};
+use nalgebra::{DMatrix, DVector};
+
+/// A parameter estimated jointly with the state (an extra, random-walk state).
+#[derive(Debug, Clone)]
+pub struct EstimatedParameter {
+    /// Name, as reported among the states.
+    pub name: String,
+    /// Prior mean.
+    pub initial: f64,
+    /// Prior standard deviation.
+    pub std: f64,
+    /// Random-walk spectral density (variance per unit time).
+    pub drift: f64,
+}
+
+/// Whether a linear model is continuous or discrete in time.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum LinearTime {
+    /// `x' = A x + B u`.
+    Continuous,
+    /// `x_{k+1} = F x_k + B u_k` on a fixed grid of step `dt`.
+    Discrete {
+        /// Grid step.
+        dt: f64,
+    },
+}
+
+/// How the state moves between readings.
+#[derive(Debug, Clone)]
+pub enum Dynamics {
+    /// Continuous rates `x' = f(x, u, t)`: one output per model state; slots `[x, u, t]`.
+    Rates(Program),
+    /// Discrete map `x⁺ = g(x, u, t, dt)`: one output per model state; slots `[x, u, t, dt]`.
+    Next(Program),
+    /// Linear dynamics over all states (estimated parameters have zero rate / identity map).
+    Linear {
+        /// Continuous or discrete.
+        time: LinearTime,
+        /// `A` (continuous) or `F` (discrete), `n × n`.
+        matrix: DMatrix<f64>,
+        /// Input matrix, `n × nu`.
+        b: DMatrix<f64>,
+    },
+}
+
+impl Dynamics {
+    /// Whether time is continuous (densities apply) rather than discrete.
+    pub fn is_continuous(&self) -> bool {
+        matches!(
+            self,
+            Dynamics::Rates(_)
+                | Dynamics::Linear {
+                    time: LinearTime::Continuous,
+                    ..
+                }
+        )
+    }
+}
+
+/// Process noise over all `n` states.
+#[derive(Debug, Clone)]
+pub enum ProcessNoise {
+    /// Continuous white noise with spectral density matrix `Qc` (variance per unit time);
+    /// estimated parameters' drift sits on their diagonal.
+    Density(DMatrix<f64>),
+    /// Discrete noise: `q` per application of the map (model states), plus `drift · dt`
+    /// on each estimated parameter's diagonal.
+    PerStep {
+        /// Covariance added per step, `n × n` (zero rows/columns for parameters).
+        q: DMatrix<f64>,
+        /// Drift density per state (zero for model states).
+        drift: DVector<f64>,
+    },
+}
+
+/// One sensor: a (vector) formula of the state and its noise.
+#[derive(Debug, Clone)]
+pub struct Sensor {
+    /// Name, as used in readings.
+    pub name: String,
+    /// Compiled formulas, one output per component; slots `[x, u, t]`.
+    pub program: Program,
+    /// Number of components.
+    pub dim: usize,
+    /// Noise covariance, `dim × dim`, positive definite.
+    pub r: DMatrix<f64>,
+}
+
+/// The model a filter runs on.
+#[derive(Debug, Clone)]
+pub struct Model {
+    /// Every state name: the model's states, then estimated parameters.
+    pub states: Vec<String>,
+    /// How many of `states` are the model's own (the rest are parameters).
+    pub n_model: usize,
+    /// Input names.
+    pub inputs: Vec<String>,
+    /// Parameters estimated as states, in order.
+    pub estimated: Vec<EstimatedParameter>,
+    /// Dynamics.
+    pub dynamics: Dynamics,
+    /// Process noise.
+    pub noise: ProcessNoise,
+    /// Sensors in the order given.
+    pub sensors: Vec<Sensor>,
+}
+
+impl Model {
+    /// Total number of states `n`.
+    pub fn n(&self) -> usize {
+        self.states.len()
+    }
+
+    /// Number of inputs.
+    pub fn nu(&self) -> usize {
+        self.inputs.len()
+    }
+
+    /// Length of the variable vector `[x, u, t, dt]` that programs read from.
+    pub fn slot_count(&self) -> usize {
+        self.n() + self.nu() + 2
+    }
+
+    /// Index of the `t` slot.
+    pub fn t_slot(&self) -> usize {
+        self.n() + self.nu()
+    }
+
+    /// Index of the sensor called `name`.
+    pub fn sensor_index(&self, name: &str) -> Option<usize> {
+        self.sensors.iter().position(|s| s.name == name)
+    }
+
+    /// Index of the input called `name`.
+    pub fn input_index(&self, name: &str) -> Option<usize> {
+        self.inputs.iter().position(|s| s == name)
+    }
+}
+
+/// Which filter runs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Method {
+    /// Extended Kalman filter.
+    Ekf,
+    /// Unscented Kalman filter.
+    Ukf,
+    /// Ensemble Kalman filter.
+    Enkf,
+}
+
+impl Method {
+    /// The name used in requests and metrics.
+    pub fn name(self) -> &'static str {
+        match self {
+            Method::Ekf => "ekf",
+            Method::Ukf => "ukf",
+            Method::Enkf => "enkf",
+        }
+    }
+}
+
+/// Scaled unscented transform parameters.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Unscented {
+    /// Spread of the sigma points.
+    pub alpha: f64,
+    /// Prior-knowledge weight on the centre point's covariance (2 is optimal for Gaussians).
+    pub beta: f64,
+    /// Secondary scaling.
+    pub kappa: f64,
+}
+
+/// Ensemble analysis variants.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EnsembleUpdate {
+    /// Stochastic update with perturbed observations.
+    Perturbed,
+    /// Deterministic ensemble transform (ETKF).
+    Deterministic,
+}
+
+/// Ensemble settings.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Ensemble {
+    /// Number of members.
+    pub members: usize,
+    /// Seed of every random draw.
+    pub seed: u64,
+    /// Multiplicative inflation of forecast anomalies.
+    pub inflation: f64,
+    /// Analysis variant.
+    pub update: EnsembleUpdate,
+}
+
+/// Integration settings for continuous nonlinear models.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Integration {
+    /// Largest step of the adaptive integrator.
+    pub max_step: f64,
+    /// Relative tolerance of the adaptive integrator.
+    pub rtol: f64,
+    /// Absolute tolerance of the adaptive integrator.
+    pub atol: f64,
+    /// When set, classic fixed-step RK4 with at most this step instead of adaptive steps.
+    pub fixed_step: Option<f64>,
+}
+
+/// Every filter setting of a request.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FilterConfig {
+    /// Which filter.
+    pub method: Method,
+    /// UKF parameters.
+    pub unscented: Unscented,
+    /// EnKF parameters.
+    pub ensemble: Ensemble,
+    /// Integrator settings.
+    pub integration: Integration,
+    /// Gate probability (`None` when every reading is used).
+    pub gate: Option<f64>,
+}
+
+/// The starting point of a run: a Gaussian (and for the ensemble, optionally its members).
+#[derive(Debug, Clone)]
+pub struct Prior {
+    /// Time of the prior.
+    pub t: Instant,
+    /// Whether times are seconds or timestamps.
+    pub mode: TimeMode,
+    /// Mean over all states.
+    pub mean: DVector<f64>,
+    /// Covariance over all states (symmetric PSD).
+    pub cov: DMatrix<f64>,
+    /// Ensemble members as rows (`members × n`), when resuming an ensemble run.
+    pub members: Option<DMatrix<f64>>,
+    /// Ensemble step counter (random streams are derived from seed and step).
+    pub step: u64,
+    /// Inputs held at the prior's time.
+    pub inputs: DVector<f64>,
+}
+
+/// How much covariance each estimate carries.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CovarianceOutput {
+    /// `std` and the full `covariance`.
+    Full,
+    /// `std` only.
+    Std,
+    /// Neither.
+    None,
+}
+
+/// Response options.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutputConfig {
+    /// Covariance detail.
+    pub covariance: CovarianceOutput,
+    /// Whether innovations are reported.
+    pub innovations: bool,
+    /// Extra prediction-only times.
+    pub at: Vec<Instant>,
+}
+
+impl Default for OutputConfig {
+    fn default() -> Self {
+        Self {
+            covariance: CovarianceOutput::Full,
+            innovations: true,
+            at: Vec::new(),
+        }
+    }
+}
