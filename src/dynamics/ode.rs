@@ -221,6 +221,10 @@ impl Dopri5 {
             let last = dir * (t + 1.01 * h - t1) >= 0.0;
             if last {
                 h = t1 - t;
+            } else if h.abs() <= 4.0 * f64::EPSILON * t.abs().max(t1.abs()) {
+                // t + h would barely differ from t: the solution is changing faster than
+                // floating-point time can follow.
+                return Err(OdeError::StepTooSmall { t });
             }
 
             for i in 0..n {
@@ -290,9 +294,6 @@ impl Dopri5 {
                 // NaN-free: err > 1 (possibly infinite) gives a factor in [0.2, 0.9).
                 h *= (SAFETY * err.powf(-0.2)).max(SHRINK);
                 just_rejected = true;
-                if h.abs() <= 4.0 * f64::EPSILON * t.abs().max(t1.abs()) || h == 0.0 {
-                    return Err(OdeError::StepTooSmall { t });
-                }
             }
         }
     }
@@ -375,7 +376,10 @@ where
     } else {
         (0.01 / dmax).powf(0.2)
     };
-    Ok((100.0 * h0).min(h1).min(max_step).min(span))
+    let h = (100.0 * h0).min(h1).min(max_step).min(span);
+    // Overflow in d2 can drive the guess to zero; the error control recovers from a
+    // guess that is too large, never from one that is zero.
+    Ok(if h > 0.0 { h } else { span.min(max_step) })
 }
 
 #[cfg(test)]
@@ -666,6 +670,28 @@ mod tests {
         assert_eq!(s1, s2);
         assert_eq!(first.map(f64::to_bits), second.map(f64::to_bits));
         assert!(s1.accepted > 10);
+    }
+
+    #[test]
+    fn tiny_and_far_from_zero_spans_finish() {
+        // One ulp of time, and a minute span at a large time origin (a clock in seconds
+        // since an epoch), must both finish, with y' = −y giving y ≈ 1 − span.
+        for &(t0, t1) in &[
+            (0.0, 1e-300),
+            (1.7e9, 1.7e9 + 60.0),
+            (1.7e9, f64::from_bits(1.7e9f64.to_bits() + 1)),
+        ] {
+            let mut ode = Dopri5::new(1);
+            let mut y = [1.0];
+            ode.integrate(|_, y, dy| dy[0] = -y[0], t0, t1, &mut y)
+                .unwrap();
+            let span: f64 = t1 - t0;
+            assert!(
+                (y[0] - (-span).exp()).abs() < 1e-8,
+                "{t0} -> {t1}: {}",
+                y[0]
+            );
+        }
     }
 
     #[test]
