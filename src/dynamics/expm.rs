@@ -8,7 +8,8 @@ use super::dense;
 use nalgebra::DMatrix;
 
 /// Padé degrees tried in order, with the largest 1-norm each handles to unit roundoff
-/// (Higham 2005, Table 2.3, values θ_m for IEEE double).
+/// (Higham 2005, Table 2.3, values θ_m for IEEE double; digits from memory, and only
+/// their size matters: a θ slightly off changes the degree chosen, not correctness).
 const DEGREES: [(usize, f64); 5] = [
     (3, 1.495_585_217_958_292e-2),
     (5, 2.539_398_330_063_23e-1),
@@ -19,7 +20,7 @@ const DEGREES: [(usize, f64); 5] = [
 
 /// Numerator coefficients `b_0..b_m` of the diagonal `[m/m]` Padé approximant of `e^x`,
 /// scaled so that `b_m = 1`: `b_j = (2m−j)! / (j! (m−j)!)` up to a common factor
-/// (Higham 2005, eq. 2.2; these are the integers of his Algorithm 2.3).
+/// (Higham 2005, §2; the integers of his Algorithm 2.3). A test rederives them.
 const B3: [f64; 4] = [120.0, 60.0, 12.0, 1.0];
 const B5: [f64; 6] = [30240.0, 15120.0, 3360.0, 420.0, 30.0, 1.0];
 const B7: [f64; 8] = [
@@ -302,7 +303,8 @@ mod tests {
 
     #[test]
     fn pade_coefficients_follow_their_formula() {
-        // b_j ∝ (2m−j)! / (j! (m−j)!), normalised so b_m = 1 (Higham 2005, eq. 2.2).
+        // b_j ∝ (2m−j)! / (j! (m−j)!), normalised so b_m = 1 (the
+        // classical [m/m] Padé numerator of e^x, Higham 2005, §2; formula from memory).
         fn fact(k: u128) -> u128 {
             (1..=k).product()
         }
