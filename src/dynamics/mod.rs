@@ -1,6 +1,7 @@
 //! Time propagation between readings: matrix exponential, exact discretisation of linear
 //! continuous models (Van Loan), and an adaptive embedded Runge–Kutta integrator.
 
+mod dense;
 mod expm;
 mod ode;
 mod van_loan;

@@ -1,6 +1,8 @@
 //! Adaptive Dormand–Prince 5(4) integration with a preallocated workspace.
-
-// INTERFACE (skeleton): the implementation replaces the bodies below.
+//!
+//! Nonlinear rate models (formulas) are propagated between readings by this integrator.
+//! It controls its own error, so the prediction error stays far below the reported
+//! standard deviations, and it allocates nothing once built.
 
 /// Why an integration stopped early.
 #[derive(Debug, Clone, PartialEq)]
@@ -22,6 +24,25 @@ pub enum OdeError {
     },
 }
 
+impl std::fmt::Display for OdeError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Self::NonFinite { t } => write!(f, "the rate model gave a non-finite value at t = {t}"),
+            Self::StepTooSmall { t } => {
+                write!(
+                    f,
+                    "the integration step collapsed at t = {t} (the model may blow up there)"
+                )
+            }
+            Self::TooManySteps { t } => {
+                write!(f, "the integration needed too many steps and stopped at t = {t} (the model may be stiff)")
+            }
+        }
+    }
+}
+
+impl std::error::Error for OdeError {}
+
 /// Counters of one integration.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub struct OdeStats {
@@ -33,7 +54,76 @@ pub struct OdeStats {
     pub evaluations: usize,
 }
 
+// Dormand & Prince (1980), "A family of embedded Runge–Kutta formulae",
+// J. Comput. Appl. Math. 6(1), the RK5(4)7M pair; also Hairer, Nørsett & Wanner,
+// Solving Ordinary Differential Equations I, 2nd ed., §II.5. Digits from memory; the
+// order-condition test checks every one of them.
+const C2: f64 = 1.0 / 5.0;
+const C3: f64 = 3.0 / 10.0;
+const C4: f64 = 4.0 / 5.0;
+const C5: f64 = 8.0 / 9.0;
+const A21: f64 = 1.0 / 5.0;
+const A31: f64 = 3.0 / 40.0;
+const A32: f64 = 9.0 / 40.0;
+const A41: f64 = 44.0 / 45.0;
+const A42: f64 = -56.0 / 15.0;
+const A43: f64 = 32.0 / 9.0;
+const A51: f64 = 19372.0 / 6561.0;
+const A52: f64 = -25360.0 / 2187.0;
+const A53: f64 = 64448.0 / 6561.0;
+const A54: f64 = -212.0 / 729.0;
+const A61: f64 = 9017.0 / 3168.0;
+const A62: f64 = -355.0 / 33.0;
+const A63: f64 = 46732.0 / 5247.0;
+const A64: f64 = 49.0 / 176.0;
+const A65: f64 = -5103.0 / 18656.0;
+// The fifth-order weights double as the last stage (first same as last): k7 = f(t+h, y⁺).
+const A71: f64 = 35.0 / 384.0;
+const A73: f64 = 500.0 / 1113.0;
+const A74: f64 = 125.0 / 192.0;
+const A75: f64 = -2187.0 / 6784.0;
+const A76: f64 = 11.0 / 84.0;
+// Fifth- minus fourth-order weights: the local error estimate.
+const E1: f64 = 71.0 / 57600.0;
+const E3: f64 = -71.0 / 16695.0;
+const E4: f64 = 71.0 / 1920.0;
+const E5: f64 = -17253.0 / 339200.0;
+const E6: f64 = 22.0 / 525.0;
+const E7: f64 = -1.0 / 40.0;
+
+/// Step-size controller: `h_new = h · clamp(SAFETY · err^(−1/5), SHRINK, GROW)`.
+const SAFETY: f64 = 0.9;
+const SHRINK: f64 = 0.2;
+const GROW: f64 = 5.0;
+
 /// Dormand–Prince 5(4) integrator for systems of a fixed dimension.
+///
+/// # Method
+///
+/// The 7-stage embedded pair of Dormand & Prince (1980, J. Comput. Appl. Math. 6(1)),
+/// advancing with the fifth-order solution and using its last stage as the next step's
+/// first (FSAL, six evaluations per step). The local error estimate is measured as
+/// `‖err‖ = sqrt(mean_i (err_i / (atol + rtol · max(|y_i|, |y⁺_i|)))²)` and a step is
+/// accepted when `‖err‖ ≤ 1`; the next step is `h · clamp(0.9 ‖err‖^(−1/5), 0.2, 5)`,
+/// never growing right after a rejection (Hairer, Nørsett & Wanner, *Solving ODEs I*,
+/// §II.4). The first step comes from the same section's starting-step algorithm. Steps
+/// are capped at `max_step`, and the last one is stretched or clipped to land exactly
+/// on `t1`.
+///
+/// The result depends only on the arguments and the public fields: the workspace
+/// carries no state between calls, so repeated runs are bit-identical.
+///
+/// # Failure
+///
+/// A non-finite value inside a step fails that step like a huge error estimate, so an
+/// overlong trial step (an overflowing exponential, a square root of a negative
+/// overshoot) shrinks and recovers. The call ends with [`OdeError::NonFinite`] (time of
+/// the failing evaluation) when the initial state or `f(t0, y0)` is non-finite, or when
+/// steps keep failing that way until they cannot shrink further; with
+/// [`OdeError::StepTooSmall`] when the step falls below the resolution of `t` for error
+/// control alone (a solution blowing up); with [`OdeError::TooManySteps`] after
+/// `max_steps` attempted steps (typically a stiff model). On error `y` holds the last
+/// accepted state.
 #[derive(Debug, Clone)]
 pub struct Dopri5 {
     dim: usize,
@@ -41,10 +131,17 @@ pub struct Dopri5 {
     pub rtol: f64,
     /// Absolute tolerance (default 1e-9).
     pub atol: f64,
-    /// Largest step allowed (`f64::INFINITY` for none).
+    /// Largest step allowed (`f64::INFINITY` for none; a value that is not positive is
+    /// treated as none).
     pub max_step: f64,
     /// Most steps in one call before giving up.
     pub max_steps: usize,
+    /// Stages k1..k7.
+    k: [Vec<f64>; 7],
+    /// Argument of the intermediate stages.
+    y_stage: Vec<f64>,
+    /// Candidate fifth-order solution.
+    y_new: Vec<f64>,
 }
 
 impl Dopri5 {
@@ -56,14 +153,30 @@ impl Dopri5 {
             atol: 1e-9,
             max_step: f64::INFINITY,
             max_steps: 1_000_000,
+            k: std::array::from_fn(|_| vec![0.0; dim]),
+            y_stage: vec![0.0; dim],
+            y_new: vec![0.0; dim],
         }
     }
 
+    /// The system dimension this workspace was built for.
+    pub fn dim(&self) -> usize {
+        self.dim
+    }
+
     /// Integrate `y' = f(t, y)` from `t0` to `t1` (`t1 >= t0`), updating `y` in place.
-    /// `f(t, y, dy)` must fill `dy`; a non-finite `dy` ends the integration.
+    /// `f(t, y, dy)` must fill `dy`; a non-finite `dy` fails the current step, and ends the
+    /// integration with [`OdeError::NonFinite`] once no shorter step avoids it (see the
+    /// type's doc).
+    ///
+    /// `t1 == t0` returns at once without calling `f`. (`t1 < t0` integrates backwards.)
+    ///
+    /// # Panics
+    ///
+    /// If `y.len()` differs from [`Dopri5::dim`] (a programming error, not bad input).
     pub fn integrate<F>(
         &mut self,
-        f: F,
+        mut f: F,
         t0: f64,
         t1: f64,
         y: &mut [f64],
@@ -71,7 +184,604 @@ impl Dopri5 {
     where
         F: FnMut(f64, &[f64], &mut [f64]),
     {
-        let _ = (f, t0, t1, y, self.dim);
-        todo!()
+        assert_eq!(y.len(), self.dim, "dopri5: state has the wrong length");
+        let mut stats = OdeStats::default();
+        if !t0.is_finite() {
+            return Err(OdeError::NonFinite { t: t0 });
+        }
+        if !t1.is_finite() {
+            return Err(OdeError::NonFinite { t: t1 });
+        }
+        if t1 == t0 || self.dim == 0 {
+            return Ok(stats);
+        }
+        if !all_finite(y) {
+            return Err(OdeError::NonFinite { t: t0 });
+        }
+        let (rtol, atol, max_steps) = (self.rtol, self.atol, self.max_steps);
+        let max_step = if self.max_step > 0.0 {
+            self.max_step
+        } else {
+            f64::INFINITY
+        };
+        let dir = if t1 > t0 { 1.0 } else { -1.0 };
+        let n = self.dim;
+        let Self {
+            k, y_stage, y_new, ..
+        } = self;
+        let [k1, k2, k3, k4, k5, k6, k7] = k;
+
+        eval(&mut f, t0, y, k1, &mut stats)?;
+        let mut h = dir
+            * initial_step(
+                &mut f, t0, t1, y, k1, y_stage, k2, rtol, atol, max_step, &mut stats,
+            );
+        let mut t = t0;
+        let mut steps = 0usize;
+        let mut just_rejected = false;
+        // Why the latest attempt failed, if a stage was non-finite.
+        let mut failure: Option<OdeError> = None;
+        loop {
+            if steps >= max_steps {
+                return Err(failure.unwrap_or(OdeError::TooManySteps { t }));
+            }
+            steps += 1;
+            // Stretch a step that would leave a sliver behind, clip one that overshoots.
+            let last = dir * (t + 1.01 * h - t1) >= 0.0;
+            if last {
+                h = t1 - t;
+            } else if h.abs() <= 4.0 * f64::EPSILON * t.abs().max(t1.abs()) {
+                // t + h would barely differ from t: the solution is changing faster than
+                // floating-point time can follow, or the model breaks down just ahead.
+                return Err(failure.unwrap_or(OdeError::StepTooSmall { t }));
+            }
+            let t_new = if last { t1 } else { t + h };
+
+            // A non-finite stage value fails the step like a huge error: a step that was
+            // too long (an exponential overflowing) recovers by shrinking. Only when the
+            // step has shrunk to nothing is the non-finite value reported.
+            let err = 'step: {
+                for i in 0..n {
+                    y_stage[i] = y[i] + h * (A21 * k1[i]);
+                }
+                if let Err(e) = eval(&mut f, t + C2 * h, y_stage, k2, &mut stats) {
+                    break 'step Err(e);
+                }
+                for i in 0..n {
+                    y_stage[i] = y[i] + h * (A31 * k1[i] + A32 * k2[i]);
+                }
+                if let Err(e) = eval(&mut f, t + C3 * h, y_stage, k3, &mut stats) {
+                    break 'step Err(e);
+                }
+                for i in 0..n {
+                    y_stage[i] = y[i] + h * (A41 * k1[i] + A42 * k2[i] + A43 * k3[i]);
+                }
+                if let Err(e) = eval(&mut f, t + C4 * h, y_stage, k4, &mut stats) {
+                    break 'step Err(e);
+                }
+                for i in 0..n {
+                    y_stage[i] = y[i] + h * (A51 * k1[i] + A52 * k2[i] + A53 * k3[i] + A54 * k4[i]);
+                }
+                if let Err(e) = eval(&mut f, t + C5 * h, y_stage, k5, &mut stats) {
+                    break 'step Err(e);
+                }
+                for i in 0..n {
+                    y_stage[i] = y[i]
+                        + h * (A61 * k1[i] + A62 * k2[i] + A63 * k3[i] + A64 * k4[i] + A65 * k5[i]);
+                }
+                if let Err(e) = eval(&mut f, t_new, y_stage, k6, &mut stats) {
+                    break 'step Err(e);
+                }
+                for i in 0..n {
+                    y_new[i] = y[i]
+                        + h * (A71 * k1[i] + A73 * k3[i] + A74 * k4[i] + A75 * k5[i] + A76 * k6[i]);
+                }
+                if !all_finite(y_new) {
+                    break 'step Err(OdeError::NonFinite { t: t_new });
+                }
+                if let Err(e) = eval(&mut f, t_new, y_new, k7, &mut stats) {
+                    break 'step Err(e);
+                }
+                let mut sum = 0.0;
+                for i in 0..n {
+                    let e = h
+                        * (E1 * k1[i]
+                            + E3 * k3[i]
+                            + E4 * k4[i]
+                            + E5 * k5[i]
+                            + E6 * k6[i]
+                            + E7 * k7[i]);
+                    let scale =
+                        (atol + rtol * y[i].abs().max(y_new[i].abs())).max(f64::MIN_POSITIVE);
+                    sum += (e / scale) * (e / scale);
+                }
+                Ok((sum / n as f64).sqrt())
+            };
+            let err = match err {
+                Ok(err) => {
+                    failure = None;
+                    err
+                }
+                Err(e) => {
+                    failure = Some(e);
+                    f64::INFINITY
+                }
+            };
+
+            if err <= 1.0 {
+                stats.accepted += 1;
+                y.copy_from_slice(y_new);
+                std::mem::swap(k1, k7);
+                if last {
+                    return Ok(stats);
+                }
+                t = t_new;
+                let mut factor = (SAFETY * err.powf(-0.2)).clamp(SHRINK, GROW);
+                if just_rejected {
+                    factor = factor.min(1.0);
+                }
+                h = dir * (h.abs() * factor).min(max_step);
+                just_rejected = false;
+            } else {
+                stats.rejected += 1;
+                // NaN-free: err > 1 (possibly infinite) gives a factor in [0.2, 0.9).
+                h *= (SAFETY * err.powf(-0.2)).max(SHRINK);
+                just_rejected = true;
+            }
+        }
+    }
+}
+
+fn all_finite(v: &[f64]) -> bool {
+    v.iter().all(|x| x.is_finite())
+}
+
+/// One right-hand-side evaluation, counted and checked.
+fn eval<F>(
+    f: &mut F,
+    t: f64,
+    y: &[f64],
+    dy: &mut [f64],
+    stats: &mut OdeStats,
+) -> Result<(), OdeError>
+where
+    F: FnMut(f64, &[f64], &mut [f64]),
+{
+    f(t, y, dy);
+    stats.evaluations += 1;
+    if all_finite(dy) {
+        Ok(())
+    } else {
+        Err(OdeError::NonFinite { t })
+    }
+}
+
+/// Weighted RMS norm `sqrt(mean (v_i / sc_i)²)`, `sc_i = atol + rtol |y_i|`.
+fn weighted_rms(v: impl Iterator<Item = f64>, y: &[f64], rtol: f64, atol: f64) -> f64 {
+    let mut sum = 0.0;
+    for (vi, yi) in v.zip(y) {
+        let r = vi / (atol + rtol * yi.abs()).max(f64::MIN_POSITIVE);
+        sum += r * r;
+    }
+    (sum / y.len() as f64).sqrt()
+}
+
+/// Size (positive) of the first step: Hairer, Nørsett & Wanner, *Solving ODEs I*,
+/// §II.4, "Starting step size", with order 5. Uses one extra evaluation; `f0` holds
+/// `f(t0, y0)`, and `y1`, `f1` are scratch.
+#[allow(clippy::too_many_arguments)]
+fn initial_step<F>(
+    f: &mut F,
+    t0: f64,
+    t1: f64,
+    y0: &[f64],
+    f0: &[f64],
+    y1: &mut [f64],
+    f1: &mut [f64],
+    rtol: f64,
+    atol: f64,
+    max_step: f64,
+    stats: &mut OdeStats,
+) -> f64
+where
+    F: FnMut(f64, &[f64], &mut [f64]),
+{
+    let span = (t1 - t0).abs();
+    let dir = if t1 > t0 { 1.0 } else { -1.0 };
+    let d0 = weighted_rms(y0.iter().copied(), y0, rtol, atol);
+    let d1 = weighted_rms(f0.iter().copied(), y0, rtol, atol);
+    // A first guess making the explicit Euler increment about 1 % of the state.
+    let mut h0 = if d0 < 1e-5 || d1 < 1e-5 {
+        1e-6
+    } else {
+        0.01 * d0 / d1
+    };
+    h0 = h0.min(max_step).min(span);
+    for i in 0..y0.len() {
+        y1[i] = y0[i] + dir * h0 * f0[i];
+    }
+    // A non-finite trial only says h0 is already too long; the step control shrinks it.
+    if !all_finite(y1) || eval(f, t0 + dir * h0, y1, f1, stats).is_err() {
+        return h0;
+    }
+    let d2 = weighted_rms(f1.iter().zip(f0).map(|(a, b)| a - b), y0, rtol, atol) / h0;
+    // Choose h1 so that h1⁵ · max(d1, d2) = 0.01, the local error of the next order.
+    let dmax = d1.max(d2);
+    let h1 = if dmax <= 1e-15 {
+        (h0 * 1e-3).max(1e-6)
+    } else {
+        (0.01 / dmax).powf(0.2)
+    };
+    let h = (100.0 * h0).min(h1).min(max_step).min(span);
+    // Overflow in d2 can drive the guess to zero; the error control recovers from a
+    // guess that is too large, never from one that is zero.
+    if h > 0.0 {
+        h
+    } else if h0 > 0.0 {
+        h0
+    } else {
+        span.min(max_step)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The Butcher tableau as arrays, for the order-condition checks.
+    fn tableau() -> ([[f64; 7]; 7], [f64; 7], [f64; 7], [f64; 7]) {
+        let a = [
+            [0.0; 7],
+            [A21, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0],
+            [A31, A32, 0.0, 0.0, 0.0, 0.0, 0.0],
+            [A41, A42, A43, 0.0, 0.0, 0.0, 0.0],
+            [A51, A52, A53, A54, 0.0, 0.0, 0.0],
+            [A61, A62, A63, A64, A65, 0.0, 0.0],
+            [A71, 0.0, A73, A74, A75, A76, 0.0],
+        ];
+        let c = [0.0, C2, C3, C4, C5, 1.0, 1.0];
+        let b = a[6];
+        let e = [E1, 0.0, E3, E4, E5, E6, E7];
+        let b_hat: [f64; 7] = std::array::from_fn(|i| b[i] - e[i]);
+        (a, c, b, b_hat)
+    }
+
+    fn dot(x: &[f64; 7], y: &[f64; 7]) -> f64 {
+        x.iter().zip(y).map(|(a, b)| a * b).sum()
+    }
+
+    fn apply(a: &[[f64; 7]; 7], v: &[f64; 7]) -> [f64; 7] {
+        std::array::from_fn(|i| dot(&a[i], v))
+    }
+
+    fn times(x: &[f64; 7], y: &[f64; 7]) -> [f64; 7] {
+        std::array::from_fn(|i| x[i] * y[i])
+    }
+
+    #[test]
+    fn tableau_satisfies_its_order_conditions() {
+        // Row sums c_i = Σ_j a_ij, and the Butcher order conditions (one per rooted tree,
+        // Hairer, Nørsett & Wanner, Solving ODEs I, §II.2, Table 2.2): all 17 up to
+        // order 5 for the propagated weights b, the 8 up to order 4 for the embedded b̂.
+        let (a, c, b, b_hat) = tableau();
+        let one = [1.0; 7];
+        let rows = apply(&a, &one);
+        for i in 0..7 {
+            assert!((rows[i] - c[i]).abs() < 1e-14, "row {i}");
+        }
+        let c2 = times(&c, &c);
+        let c3 = times(&c2, &c);
+        let ac = apply(&a, &c);
+        let ac2 = apply(&a, &c2);
+        let aac = apply(&a, &ac);
+        let up_to_4 = |w: &[f64; 7]| {
+            [
+                (dot(w, &one), 1.0),
+                (dot(w, &c), 1.0 / 2.0),
+                (dot(w, &c2), 1.0 / 3.0),
+                (dot(w, &ac), 1.0 / 6.0),
+                (dot(w, &c3), 1.0 / 4.0),
+                (dot(w, &times(&c, &ac)), 1.0 / 8.0),
+                (dot(w, &ac2), 1.0 / 12.0),
+                (dot(w, &aac), 1.0 / 24.0),
+            ]
+        };
+        let order5 = [
+            (dot(&b, &times(&c3, &c)), 1.0 / 5.0),
+            (dot(&b, &times(&c2, &ac)), 1.0 / 10.0),
+            (dot(&b, &times(&c, &ac2)), 1.0 / 15.0),
+            (dot(&b, &times(&c, &aac)), 1.0 / 30.0),
+            (dot(&b, &times(&ac, &ac)), 1.0 / 20.0),
+            (dot(&b, &apply(&a, &c3)), 1.0 / 20.0),
+            (dot(&b, &apply(&a, &times(&c, &ac))), 1.0 / 40.0),
+            (dot(&b, &apply(&a, &ac2)), 1.0 / 60.0),
+            (dot(&b, &apply(&a, &aac)), 1.0 / 120.0),
+        ];
+        for (k, (got, want)) in up_to_4(&b).into_iter().chain(order5).enumerate() {
+            assert!(
+                (got - want).abs() < 1e-14,
+                "b condition {k}: {got} vs {want}"
+            );
+        }
+        for (k, (got, want)) in up_to_4(&b_hat).into_iter().enumerate() {
+            assert!(
+                (got - want).abs() < 1e-14,
+                "b̂ condition {k}: {got} vs {want}"
+            );
+        }
+        // The conditions fix the error weights only up to a factor; the published
+        // fourth-order weights (Dormand & Prince 1980, from memory) pin it.
+        let published = [
+            5179.0 / 57600.0,
+            0.0,
+            7571.0 / 16695.0,
+            393.0 / 640.0,
+            -92097.0 / 339200.0,
+            187.0 / 2100.0,
+            1.0 / 40.0,
+        ];
+        for i in 0..7 {
+            assert!((b_hat[i] - published[i]).abs() < 1e-15, "b̂[{i}]");
+        }
+        // The embedded solution must really be a different (lower-order) formula.
+        assert!((dot(&b_hat, &times(&c3, &c)) - 0.2).abs() > 1e-6);
+    }
+
+    /// x'' + 2ζω x' + ω² x = 0 as a first-order system.
+    fn oscillator(zeta: f64, omega: f64) -> impl FnMut(f64, &[f64], &mut [f64]) {
+        move |_t, y, dy| {
+            dy[0] = y[1];
+            dy[1] = -2.0 * zeta * omega * y[1] - omega * omega * y[0];
+        }
+    }
+
+    /// Underdamped closed form from x(0) = 1, v(0) = 0 (any mechanics text; common
+    /// practice): x = e^{−ζωt}(cos ω_d t + ζω/ω_d sin ω_d t), v = −ω²/ω_d e^{−ζωt} sin ω_d t.
+    fn oscillator_exact(zeta: f64, omega: f64, t: f64) -> [f64; 2] {
+        let wd = omega * (1.0 - zeta * zeta).sqrt();
+        let decay = (-zeta * omega * t).exp();
+        let (s, c) = (wd * t).sin_cos();
+        [
+            decay * (c + zeta * omega / wd * s),
+            -omega * omega / wd * decay * s,
+        ]
+    }
+
+    #[test]
+    fn damped_oscillator_matches_closed_form_tightly() {
+        // R10: ω = 2, ζ = 0.1, to t = 10 in one call and in ten calls of 1.
+        let (zeta, omega) = (0.1, 2.0);
+        let mut ode = Dopri5::new(2);
+        ode.rtol = 1e-9;
+        ode.atol = 1e-12;
+        let mut y = [1.0, 0.0];
+        ode.integrate(oscillator(zeta, omega), 0.0, 10.0, &mut y)
+            .unwrap();
+        let exact = oscillator_exact(zeta, omega, 10.0);
+        assert!(
+            (y[0] - exact[0]).abs() < 1e-7 && (y[1] - exact[1]).abs() < 1e-7,
+            "{y:?} vs {exact:?}"
+        );
+
+        let mut y = [1.0, 0.0];
+        for step in 0..10 {
+            let (a, b) = (step as f64, step as f64 + 1.0);
+            ode.integrate(oscillator(zeta, omega), a, b, &mut y)
+                .unwrap();
+            let exact = oscillator_exact(zeta, omega, b);
+            assert!(
+                (y[0] - exact[0]).abs() < 1e-7 && (y[1] - exact[1]).abs() < 1e-7,
+                "t = {b}"
+            );
+        }
+    }
+
+    #[test]
+    fn damped_oscillator_with_default_tolerances() {
+        // R10 at the default rtol 1e-6: the error must stay below 1e-5 everywhere.
+        let (zeta, omega) = (0.1, 2.0);
+        let mut ode = Dopri5::new(2);
+        let mut y = [1.0, 0.0];
+        for step in 0..20 {
+            let (a, b) = (0.5 * step as f64, 0.5 * (step + 1) as f64);
+            ode.integrate(oscillator(zeta, omega), a, b, &mut y)
+                .unwrap();
+            let exact = oscillator_exact(zeta, omega, b);
+            assert!(
+                (y[0] - exact[0]).abs() < 1e-5 && (y[1] - exact[1]).abs() < 1e-5,
+                "t = {b}"
+            );
+        }
+    }
+
+    #[test]
+    fn exponential_decay_forward_and_back() {
+        // y' = −y: y(t) = y(0) e^{−t} (common practice); integrating back recovers y(0).
+        let mut ode = Dopri5::new(1);
+        ode.rtol = 1e-10;
+        ode.atol = 1e-14;
+        let mut y = [2.0];
+        let stats = ode
+            .integrate(|_, y, dy| dy[0] = -y[0], 0.0, 5.0, &mut y)
+            .unwrap();
+        assert!((y[0] - 2.0 * (-5.0f64).exp()).abs() < 1e-9 * 2.0 * (-5.0f64).exp());
+        // FSAL: six evaluations per attempted step, plus the first and the starting guess.
+        assert_eq!(stats.evaluations, 6 * (stats.accepted + stats.rejected) + 2);
+        ode.integrate(|_, y, dy| dy[0] = -y[0], 5.0, 0.0, &mut y)
+            .unwrap();
+        assert!((y[0] - 2.0).abs() < 1e-8);
+    }
+
+    #[test]
+    fn max_step_is_respected() {
+        // A smooth problem would take a few big steps; the cap forces at least span/max_step.
+        let mut ode = Dopri5::new(1);
+        ode.max_step = 0.1;
+        let mut y = [1.0];
+        let mut times = Vec::new();
+        let stats = ode
+            .integrate(
+                |t, y, dy| {
+                    times.push(t);
+                    dy[0] = -0.01 * y[0];
+                },
+                0.0,
+                10.0,
+                &mut y,
+            )
+            .unwrap();
+        assert!(stats.accepted >= 100, "{stats:?}");
+        // No stage may reach further than one capped step past the last step start.
+        let mut furthest = 0.0f64;
+        for w in times.windows(2) {
+            furthest = furthest.max(w[1] - w[0]);
+        }
+        assert!(furthest <= 0.1 * (1.0 + 1e-12), "{furthest}");
+        assert!((y[0] - (-0.1f64).exp()).abs() < 1e-8);
+    }
+
+    #[test]
+    fn equal_times_do_nothing() {
+        // t1 == t0: no step, no evaluation, state untouched.
+        let mut ode = Dopri5::new(2);
+        let mut y = [3.0, -4.0];
+        let stats = ode
+            .integrate(|_, _, _| panic!("must not be called"), 7.5, 7.5, &mut y)
+            .unwrap();
+        assert_eq!(stats, OdeStats::default());
+        assert_eq!(y, [3.0, -4.0]);
+    }
+
+    #[test]
+    fn nan_from_the_model_is_reported() {
+        // A rate that turns NaN after t = 0.3 must stop the call there.
+        let mut ode = Dopri5::new(1);
+        let mut y = [1.0];
+        let result = ode.integrate(
+            |t, y, dy| dy[0] = if t > 0.3 { f64::NAN } else { -y[0] },
+            0.0,
+            1.0,
+            &mut y,
+        );
+        match result {
+            Err(OdeError::NonFinite { t }) => assert!(t > 0.3 && t <= 1.0, "{t}"),
+            other => panic!("expected NonFinite, got {other:?}"),
+        }
+        assert!(y[0].is_finite());
+        let mut bad = [f64::NAN];
+        assert_eq!(
+            ode.integrate(|_, y, dy| dy[0] = -y[0], 0.0, 1.0, &mut bad),
+            Err(OdeError::NonFinite { t: 0.0 })
+        );
+    }
+
+    #[test]
+    fn overlong_trial_step_shrinks_instead_of_failing() {
+        // A model defined only for y ≥ 0 (a square root or logarithm of a level, say)
+        // returns NaN outside; y' = −y stays positive, but a long trial step overshoots
+        // below zero. The step must shrink, not end the run; y(t) = e^{−t} (common practice).
+        let mut ode = Dopri5::new(1);
+        ode.rtol = 1e-3;
+        let mut y = [1.0];
+        let mut trial_overshoots = 0;
+        ode.integrate(
+            |_, y, dy| {
+                if y[0] < 0.0 {
+                    trial_overshoots += 1;
+                    dy[0] = f64::NAN;
+                } else {
+                    dy[0] = -y[0];
+                }
+            },
+            0.0,
+            40.0,
+            &mut y,
+        )
+        .unwrap();
+        assert!(
+            trial_overshoots > 0,
+            "the test did not exercise an overshoot"
+        );
+        assert!(y[0] >= 0.0 && y[0] < 1e-8, "{}", y[0]);
+    }
+
+    #[test]
+    fn blow_up_collapses_the_step() {
+        // y' = y², y(0) = 1 has y = 1/(1 − t), infinite at t = 1 (common practice).
+        let mut ode = Dopri5::new(1);
+        let mut y = [1.0];
+        match ode.integrate(|_, y, dy| dy[0] = y[0] * y[0], 0.0, 2.0, &mut y) {
+            // Near t = 1 the step needed to follow y falls below the spacing of doubles
+            // while y² (about 1e30) is still finite, so the step collapses first.
+            Err(OdeError::StepTooSmall { t }) => assert!((t - 1.0).abs() < 1e-3, "{t}"),
+            other => panic!("expected a collapse near t = 1, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn stiff_problem_hits_the_step_limit() {
+        // y' = −1e6 (y − cos t): explicit stability needs |h| ≲ 3.3e-6, so 0..10 needs
+        // millions of steps (stability interval of the pair about [−3.3, 0], from memory).
+        let mut ode = Dopri5::new(1);
+        ode.max_steps = 500;
+        let mut y = [1.0];
+        match ode.integrate(
+            |t, y, dy| dy[0] = -1e6 * (y[0] - t.cos()),
+            0.0,
+            10.0,
+            &mut y,
+        ) {
+            Err(OdeError::TooManySteps { t }) => assert!(t < 10.0),
+            other => panic!("expected TooManySteps, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn repeat_runs_are_bit_identical() {
+        // Van der Pol oscillator, μ = 2: a nonlinear run with rejections must repeat
+        // exactly, on a fresh workspace and on one used for something else first.
+        let vdp = |_t: f64, y: &[f64], dy: &mut [f64]| {
+            dy[0] = y[1];
+            dy[1] = 2.0 * (1.0 - y[0] * y[0]) * y[1] - y[0];
+        };
+        let mut first = [2.0, 0.0];
+        let s1 = Dopri5::new(2)
+            .integrate(vdp, 0.0, 20.0, &mut first)
+            .unwrap();
+        let mut reused = Dopri5::new(2);
+        let mut other = [0.5, 0.5];
+        reused.integrate(vdp, 0.0, 3.0, &mut other).unwrap();
+        let mut second = [2.0, 0.0];
+        let s2 = reused.integrate(vdp, 0.0, 20.0, &mut second).unwrap();
+        assert_eq!(s1, s2);
+        assert_eq!(first.map(f64::to_bits), second.map(f64::to_bits));
+        assert!(s1.accepted > 10);
+    }
+
+    #[test]
+    fn tiny_and_far_from_zero_spans_finish() {
+        // One ulp of time, and a minute span at a large time origin (a clock in seconds
+        // since an epoch), must both finish, with y' = −y giving y ≈ 1 − span.
+        for &(t0, t1) in &[
+            (0.0, 1e-300),
+            (1.7e9, 1.7e9 + 60.0),
+            (1.7e9, f64::from_bits(1.7e9f64.to_bits() + 1)),
+        ] {
+            let mut ode = Dopri5::new(1);
+            let mut y = [1.0];
+            ode.integrate(|_, y, dy| dy[0] = -y[0], t0, t1, &mut y)
+                .unwrap();
+            let span: f64 = t1 - t0;
+            assert!(
+                (y[0] - (-span).exp()).abs() < 1e-8,
+                "{t0} -> {t1}: {}",
+                y[0]
+            );
+        }
+    }
+
+    #[test]
+    fn dimension_is_reported() {
+        assert_eq!(Dopri5::new(4).dim(), 4);
     }
 }
