@@ -203,7 +203,7 @@ mod tests {
         // χ²(2) is exponential with mean 2: F(x) = 1 − e^{−x/2}, so x_p = −2 ln(1 − p)
         // (common practice).
         for p in [1e-6, 0.025, 0.5, 0.9, 0.975, 0.9999, 1.0 - 1e-9] {
-            let want = -2.0 * (1.0 - p).ln();
+            let want = -2.0 * (1.0_f64 - p).ln();
             let got = quantile(p, 2.0);
             assert!(
                 (got - want).abs() <= 1e-9 * want.max(1.0),

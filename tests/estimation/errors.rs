@@ -1,0 +1,295 @@
+//! Bad requests are refused with the right status and a JSON Pointer to the bad field;
+//! the observability check names what cannot be recovered.
+
+use super::support::{check, estimate};
+use serde_json::{json, Value};
+
+fn good() -> Value {
+    json!({
+        "model": {
+            "states": ["pos", "vel"],
+            "inputs": ["force"],
+            "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "drift": 1e-4}},
+            "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel*abs(vel))/mass"}},
+            "process_noise": {"density": {"vel": 0.05}},
+            "sensors": {
+                "encoder": {"measures": "pos", "std": 0.002},
+                "range": {"measures": "sqrt(pos^2 + 4)", "std": 0.05},
+                "pair": {"measures": ["pos", "vel"], "covariance": [[1e-4, 0], [0, 1e-2]]}
+            }
+        },
+        "filter": {"method": "ukf"},
+        "prior": {"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 1.0, "vel": 5.0}},
+        "measurements": [
+            {"t": 0.10, "values": {"encoder": 0.0123}, "inputs": {"force": 2.5}},
+            {"t": 0.15, "values": {"encoder": 0.0131, "pair": [0.013, 0.2]}, "std": {"encoder": 0.01}},
+            {"t": 0.20, "inputs": {"force": 0.0}}
+        ]
+    })
+}
+
+fn expect(mutate: impl FnOnce(&mut Value), status: u16, pointer: &str) {
+    let mut b = good();
+    mutate(&mut b);
+    let p = estimate(&b).expect_err("request should be refused");
+    assert_eq!(p.status, status, "{p}");
+    if !pointer.is_empty() {
+        assert!(
+            p.errors.iter().any(|e| e.pointer == pointer),
+            "no error at {pointer}: {p}"
+        );
+    }
+}
+
+#[test]
+fn the_contract_example_runs() {
+    let out = estimate(&good()).unwrap_or_else(|p| panic!("{p}"));
+    assert_eq!(out["states"], json!(["pos", "vel", "drag"]));
+    assert_eq!(out["estimates"].as_array().unwrap().len(), 3);
+    assert!(
+        out["estimates"][2].get("innovations").is_none(),
+        "a line without readings has no innovations"
+    );
+    assert_eq!(out["summary"]["steps"], json!(3));
+    assert_eq!(out["posterior"]["inputs"]["force"], json!(0.0));
+}
+
+#[test]
+fn invalid_fields_point_at_themselves() {
+    expect(
+        |b| b["model"]["dynamics"]["rates"]["vel"] = json!("(force - drag*vell)/mass"),
+        422,
+        "/model/dynamics/rates/vel",
+    );
+    expect(
+        |b| b["model"]["sensors"]["encoder"]["measures"] = json!("pos +"),
+        422,
+        "/model/sensors/encoder/measures",
+    );
+    expect(
+        |b| b["model"]["sensors"]["encoder"]["std"] = json!(-1.0),
+        422,
+        "/model/sensors/encoder/std",
+    );
+    expect(
+        |b| b["model"]["sensors"]["pair"]["covariance"] = json!([[1.0, 2.0], [2.0, 1.0]]),
+        422,
+        "/model/sensors/pair/covariance",
+    );
+    expect(
+        |b| b["model"]["sensors"]["pair"]["covariance"] = json!([[1.0, 0.1], [0.2, 1.0]]),
+        422,
+        "/model/sensors/pair/covariance",
+    );
+    expect(
+        |b| b["model"]["sensors"]["pair"]["covariance"] = json!([[1.0, 0.0]]),
+        422,
+        "/model/sensors/pair/covariance",
+    );
+    expect(
+        |b| b["model"]["states"] = json!(["pos", "pos"]),
+        422,
+        "/model/states/1",
+    );
+    expect(
+        |b| b["model"]["states"] = json!(["pos", "t"]),
+        422,
+        "/model/states/1",
+    );
+    expect(
+        |b| b["model"]["dynamics"] = json!({"rates": {}, "next": {}}),
+        422,
+        "/model/dynamics",
+    );
+    expect(
+        |b| b["model"]["dynamics"]["rates"]["speed"] = json!("1"),
+        422,
+        "/model/dynamics/rates/speed",
+    );
+    expect(
+        |b| b["model"]["process_noise"] = json!({"covariance": [[1.0, 0.0], [0.0, 1.0]]}),
+        422,
+        "/model/process_noise/covariance",
+    );
+    expect(
+        |b| b["model"]["parameters"]["drag"]["std"] = json!(0),
+        422,
+        "/model/parameters/drag/std",
+    );
+    expect(
+        |b| b["model"]["colour"] = json!("red"),
+        422,
+        "/model/colour",
+    );
+    expect(
+        |b| b["filter"]["method"] = json!("kalman"),
+        422,
+        "/filter/method",
+    );
+    expect(|b| b["filter"] = json!({}), 422, "/filter/method");
+    expect(
+        |b| b["filter"]["ensemble"] = json!({"members": 0}),
+        422,
+        "/filter/ensemble/members",
+    );
+    expect(
+        |b| b["filter"]["ensemble"] = json!({"members": 100000000}),
+        422,
+        "/filter/ensemble/members",
+    );
+    expect(
+        |b| b["filter"]["gate"] = json!({"probability": 1.5}),
+        422,
+        "/filter/gate/probability",
+    );
+    expect(
+        |b| b["prior"]["std"]["vel"] = json!("five"),
+        422,
+        "/prior/std/vel",
+    );
+    expect(
+        |b| b["prior"]["mean"] = json!({"pos": 0.0}),
+        422,
+        "/prior/mean/vel",
+    );
+    expect(|b| b["prior"]["t"] = json!("yesterday"), 422, "/prior/t");
+    expect(
+        |b| b["measurements"][1]["t"] = json!(0.05),
+        422,
+        "/measurements/1/t",
+    );
+    expect(
+        |b| b["measurements"][0]["values"]["encoderr"] = json!(1.0),
+        422,
+        "/measurements/0/values/encoderr",
+    );
+    expect(
+        |b| b["measurements"][1]["values"]["pair"] = json!([1.0]),
+        422,
+        "/measurements/1/values/pair",
+    );
+    expect(
+        |b| b["measurements"][1]["values"]["encoder"] = json!("1.0"),
+        422,
+        "/measurements/1/values/encoder",
+    );
+    expect(
+        |b| b["measurements"][0]["t"] = json!("2026-01-01T00:00:00Z"),
+        422,
+        "/measurements/0/t",
+    );
+    expect(
+        |b| b["measurements"][0]["inputs"] = json!({"thrust": 1.0}),
+        422,
+        "/measurements/0/inputs/thrust",
+    );
+    expect(
+        |b| b["measurements"] = json!({"t": 1}),
+        422,
+        "/measurements",
+    );
+    expect(
+        |b| {
+            b.as_object_mut()
+                .unwrap()
+                .remove("prior")
+                .map(|_| ())
+                .unwrap()
+        },
+        422,
+        "/prior",
+    );
+    expect(|b| b["extra"] = json!(1), 422, "/extra");
+}
+
+#[test]
+fn formula_errors_carry_columns() {
+    let mut b = good();
+    b["model"]["dynamics"]["rates"]["vel"] = json!("(force - drag*vell)/mass");
+    let p = estimate(&b).unwrap_err();
+    let e = p
+        .errors
+        .iter()
+        .find(|e| e.pointer == "/model/dynamics/rates/vel")
+        .unwrap();
+    assert_eq!(e.column, Some(15), "{e:?}");
+    assert!(
+        e.detail.contains("vell") && e.detail.contains("vel"),
+        "{}",
+        e.detail
+    );
+}
+
+#[test]
+fn hostile_formulas_are_refused_cleanly() {
+    let deep = format!("{}pos{}", "(".repeat(100_000), ")".repeat(100_000));
+    let mut b = good();
+    b["model"]["sensors"]["encoder"]["measures"] = json!(deep);
+    let p = estimate(&b).unwrap_err();
+    assert_eq!(p.status, 422);
+    let mut b = good();
+    b["model"]["sensors"]["encoder"]["measures"] = json!(format!("{}pos", "-".repeat(3000)));
+    assert_eq!(estimate(&b).unwrap_err().status, 422);
+}
+
+#[test]
+fn syntax_errors_are_400() {
+    let never = std::sync::atomic::AtomicBool::new(false);
+    for body in [&b"{"[..], b"", b"{\"model\": }", b"[1,2", b"\xff\xfe"] {
+        let p = tacit::job::estimate(body, &Default::default(), &never).unwrap_err();
+        assert_eq!(p.status, 400, "{:?}: {p}", String::from_utf8_lossy(body));
+    }
+}
+
+#[test]
+fn diverging_filter_fails_with_a_clear_error_not_nan() {
+    let mut b = good();
+    b["model"]["dynamics"]["rates"]["vel"] = json!("exp(vel*1000)");
+    b["filter"]["method"] = json!("ekf");
+    b["prior"]["mean"]["vel"] = json!(1.0);
+    let p = estimate(&b).unwrap_err();
+    assert_eq!(p.status, 422, "{p}");
+    assert!(p.detail.contains("step 1"), "{p}");
+}
+
+#[test]
+fn observability_of_position_and_velocity_sensors() {
+    // Constant velocity (common practice): position readings recover velocity; velocity
+    // readings do not recover position.
+    let body = json!({"model": {
+        "states": ["pos", "vel"],
+        "dynamics": {"linear": {"time": "continuous", "A": [[0.0, 1.0], [0.0, 0.0]]}},
+        "sensors": {"encoder": {"measures": "pos", "std": 0.01}, "tacho": {"measures": "vel", "std": 0.01}}
+    }});
+    let out = check(&body).unwrap();
+    assert_eq!(out["observability"]["rank"], json!(2));
+    assert_eq!(
+        out["observability"]["by_sensor"]["encoder"]["unobservable"],
+        json!([])
+    );
+    assert_eq!(
+        out["observability"]["by_sensor"]["tacho"]["unobservable"],
+        json!(["pos"])
+    );
+    assert_eq!(out["observability"]["by_sensor"]["tacho"]["rank"], json!(1));
+}
+
+#[test]
+fn observability_of_a_nonlinear_model_with_a_parameter() {
+    // Water tower: level' = (inflow − outflow)/area, read by a level sensor; the draw-off
+    // is a constant disturbance state. Level and draw-off are recoverable together; an
+    // extra state that nothing touches is not.
+    let body = json!({"model": {
+        "states": ["level", "draw", "ghost"],
+        "parameters": {"area": 12.0, "k": {"initial": 0.5, "std": 0.1}},
+        "dynamics": {"rates": {"level": "(k*sqrt(abs(level)+1) - draw)/area"}},
+        "sensors": {"gauge": {"measures": "level", "std": 0.01}}
+    }, "prior": {"t": 0.0, "mean": {"level": 4.0, "draw": 0.3, "ghost": 0.0}, "std": {"level": 1.0, "draw": 1.0, "ghost": 1.0}}});
+    let out = check(&body).unwrap();
+    assert_eq!(out["observability"]["unobservable"], json!(["ghost"]));
+    assert!(out["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|w| w.as_str().unwrap().contains("ghost")));
+}

@@ -1,0 +1,15 @@
+//! The estimation core checked against sources outside the project (../shared/REFERENCES.md
+//! R1–R10), plus resumption, properties and request validation. These call the same job
+//! functions the server does, so the whole path from JSON in to JSON out is exercised.
+
+mod errors;
+mod r10_integration;
+mod r2_alpha_beta;
+mod r3_riccati;
+mod r4_unscented_linear;
+mod r5_smoother;
+mod r6_consistency;
+mod r7_r8_ensemble;
+mod r9_parameter;
+mod resume;
+mod support;

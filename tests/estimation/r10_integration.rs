@@ -1,0 +1,84 @@
+//! R10: integration accuracy of nonlinear-rate models, against the closed-form solution of
+//! the damped harmonic oscillator (any mechanics text; common practice):
+//!   x(t) = e^{−ζωt} (x₀ cos ω_d t + (v₀ + ζω x₀)/ω_d sin ω_d t),  ω_d = ω√(1−ζ²).
+//! A line with no readings gives the pure prediction, so the mean follows the flow.
+
+use super::support::{matrix, ok, rel};
+use serde_json::{json, Value};
+
+const OMEGA: f64 = 2.0;
+const ZETA: f64 = 0.1;
+
+fn closed_form(t: f64) -> f64 {
+    let wd = OMEGA * (1.0 - ZETA * ZETA).sqrt();
+    (-ZETA * OMEGA * t).exp() * ((wd * t).cos() + ZETA * OMEGA / wd * (wd * t).sin())
+}
+
+fn body(dynamics: Value, integration: Value) -> Value {
+    let lines: Vec<Value> = (1..=40).map(|k| json!({"t": k as f64 * 0.25})).collect();
+    json!({
+        "model": {
+            "states": ["x", "v"],
+            "parameters": {"w": OMEGA, "z": ZETA},
+            "dynamics": dynamics,
+            "process_noise": {"density": {"v": 0.01}},
+            "sensors": {"probe": {"measures": "x", "std": 0.1}}
+        },
+        "filter": {"method": "ekf", "integration": integration},
+        "prior": {"t": 0.0, "mean": {"x": 1.0, "v": 0.0}, "std": {"x": 0.01, "v": 0.01}},
+        "measurements": lines
+    })
+}
+
+fn rates() -> Value {
+    json!({"rates": {"x": "v", "v": "-w^2*x - 2*z*w*v"}})
+}
+
+#[test]
+fn mean_prediction_matches_closed_form() {
+    for (integration, tol) in [
+        (json!({}), 1e-5),
+        (json!({"rtol": 1e-10, "atol": 1e-13}), 1e-9),
+        (json!({"fixed_step": 0.001}), 1e-9),
+    ] {
+        let out = ok(&body(rates(), integration.clone()));
+        for e in out["estimates"].as_array().unwrap() {
+            let t = e["t"].as_f64().unwrap();
+            let x = e["mean"]["x"].as_f64().unwrap();
+            assert!(
+                (x - closed_form(t)).abs() < tol,
+                "{integration}: t={t} x={x} want {}",
+                closed_form(t)
+            );
+            // Integration error stays far below the reported spread (API contract).
+            assert!((x - closed_form(t)).abs() < 0.01 * e["std"]["x"].as_f64().unwrap());
+        }
+    }
+}
+
+#[test]
+fn covariance_from_rates_matches_exact_linear_discretisation() {
+    let w2 = OMEGA * OMEGA;
+    let linear =
+        json!({"linear": {"time": "continuous", "A": [[0.0, 1.0], [-w2, -2.0 * ZETA * OMEGA]]}});
+    let exact = ok(&body(linear, json!({})));
+    let ode = ok(&body(rates(), json!({"rtol": 1e-10, "atol": 1e-14})));
+    for (a, b) in exact["estimates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(ode["estimates"].as_array().unwrap())
+    {
+        let (pa, pb) = (matrix(&a["covariance"]), matrix(&b["covariance"]));
+        for i in 0..2 {
+            for j in 0..2 {
+                assert!(
+                    rel(pa[i][j], pb[i][j], pa[i][i].max(pa[j][j])) < 1e-7,
+                    "P[{i}][{j}] {} vs {}",
+                    pa[i][j],
+                    pb[i][j]
+                );
+            }
+        }
+    }
+}

@@ -1,0 +1,3 @@
+//! Every integration test in one binary (one link, one run).
+
+mod estimation;
