@@ -106,6 +106,7 @@ fn precedence_and_associativity() {
 
 #[test]
 fn number_forms() {
+    // Decimal notation as in common practice (C / JSON-like literals).
     assert_eq!(val(".5", &[]), 0.5);
     assert_eq!(val("2.", &[]), 2.0);
     assert_eq!(val("1e-3", &[]), 1e-3);
@@ -294,6 +295,7 @@ fn derivatives_of_two_argument_functions_match_closed_forms() {
 
 #[test]
 fn kink_conventions() {
+    // The conventions documented in the module doc; the smooth pieces are calculus.
     // abs'(0) = 0, sign' = 0.
     assert_eq!(grad("abs(x)", &[0.0]).1, [0.0]);
     assert_eq!(grad("sign(x)", &[0.0]).1, [0.0]);
@@ -354,6 +356,7 @@ fn jacobian_of_a_pendulum_and_a_partial_column_set() {
 
 #[test]
 fn error_columns_and_messages() {
+    // Expected columns are counted by hand in each input (1-based characters).
     let e = err("x + sinn(y)");
     assert_eq!(e.column, 5);
     assert!(e
