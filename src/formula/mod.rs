@@ -4,120 +4,53 @@
 //!
 //! Variables live in numbered *slots* (states, inputs, `t`, `dt`, ...) chosen by the
 //! caller; fixed parameters and `pi`/`e` are folded in as constants at compile time.
+//!
+//! # Language
+//! Numbers (`2`, `.5`, `2.`, `1e-3`), names (letters, digits and `_`, not starting with a
+//! digit), `+ - * / ^`, unary `-` and `+`, parentheses, and the functions `sin cos tan
+//! asin acos atan atan2(y, x) sinh cosh tanh exp ln log10 sqrt abs sign min(a, b)
+//! max(a, b) pow(a, b) hypot(a, b) clamp(x, lo, hi)`. `^` binds tightest and is
+//! right-associative (`2^3^2 = 2^9`); unary minus binds below it (`-x^2 = -(x^2)`,
+//! `2^-1 = 0.5`); then `* /`, then `+ -`, both left-associative. A name is a slot if
+//! one has that name, else a caller constant, else `pi` or `e`.
+//!
+//! # Compilation
+//! All formulas of a [`Program`] share one tape of SSA instructions: identical
+//! subexpressions (also across formulas) are computed once, constant subexpressions are
+//! folded, and a constant integer exponent (`x^2`, `pow(x, -3)`) becomes an integer
+//! power, exact in sign for negative bases. Errors carry the formula's pointer and the
+//! 1-based character column; every failing formula reports its first error. Length and
+//! nesting limits ([`FormulaLimits`], capped at [`MAX_DEPTH_CEILING`]) are checked
+//! before the parser descends, so hostile input is refused, never a stack overflow.
+//!
+//! # Derivatives
+//! [`Program::eval_jacobian`] is forward-mode automatic differentiation: exact chain rule
+//! per instruction. At kinks and edges it uses these conventions:
+//! - `abs'(x) = sign(x)`, so 0 at 0; `sign' = 0` everywhere;
+//! - `min`/`max`: the derivative of the selected argument; ties select the first;
+//! - `clamp(x, lo, hi)`: the derivative of `x` on `[lo, hi]` (inclusive), of `lo` below,
+//!   of `hi` above;
+//! - `pow(a, b)` (and `a^b`): `d/da = b·a^(b-1)` always, `d/db = a^b·ln a` only when
+//!   `a > 0` (0 otherwise); a constant integer exponent `n` gives `n·a^(n-1)`;
+//! - `hypot(a, b)` at the origin: 0 (as `abs` at 0);
+//! - `sqrt'(0) = +inf`, `ln'(0) = inf` and similar are returned as they are; callers
+//!   check finiteness and fail cleanly;
+//! - a slot an output does not read has a derivative of exactly 0, even next to an
+//!   infinite local derivative.
+//!
+//! Evaluation may return NaN or infinities (`sqrt(-1)`, `1/0`) and never panics on them.
 
-// INTERFACE (skeleton): the implementation replaces the bodies below.
+mod builder;
+mod error;
+mod eval;
+mod instr;
+mod lexer;
+mod parser;
+mod program;
+#[cfg(test)]
+mod tests;
 
-/// Size limits that turn hostile formulas into clean errors instead of stack overflows.
-#[derive(Debug, Clone, Copy)]
-pub struct FormulaLimits {
-    /// Longest formula in characters.
-    pub max_len: usize,
-    /// Deepest nesting (parentheses, calls, unary operators, right-nested powers).
-    pub max_depth: usize,
-}
-
-/// One formula text and the JSON Pointer it came from (for error reports).
-#[derive(Debug, Clone)]
-pub struct Source<'a> {
-    /// The formula text.
-    pub text: &'a str,
-    /// JSON Pointer of the string in the request.
-    pub pointer: String,
-}
-
-/// What went wrong in a formula.
-#[derive(Debug, Clone, PartialEq)]
-pub struct FormulaError {
-    /// JSON Pointer of the formula string.
-    pub pointer: String,
-    /// 1-based column (in characters) where the problem starts.
-    pub column: usize,
-    /// Lower-case message naming the problem and, for unknown names, the known ones.
-    pub message: String,
-}
-
-/// A compiled vector function: `outputs()` formulas over `slots()` variables.
-#[derive(Debug, Clone)]
-pub struct Program {
-    _private: (),
-}
-
-/// Scratch registers for single-point evaluation.
-#[derive(Debug, Clone)]
-pub struct Workspace {
-    _private: (),
-}
-
-/// Scratch registers for evaluation over `m` points at once.
-#[derive(Debug, Clone)]
-pub struct BatchWorkspace {
-    _private: (),
-}
-
-impl Program {
-    /// Parse and compile `sources` (one output each) over the named `slots`; names in
-    /// `constants` are replaced by their values. All errors are reported, not just the first.
-    pub fn compile(
-        sources: &[Source<'_>],
-        slots: &[&str],
-        constants: &[(&str, f64)],
-        limits: &FormulaLimits,
-    ) -> Result<Program, Vec<FormulaError>> {
-        let _ = (sources, slots, constants, limits);
-        todo!("formula compiler")
-    }
-
-    /// Number of outputs (formulas).
-    pub fn outputs(&self) -> usize {
-        todo!()
-    }
-
-    /// Number of variable slots.
-    pub fn slots(&self) -> usize {
-        todo!()
-    }
-
-    /// Whether output `output` depends on slot `slot` at all (structurally).
-    pub fn depends_on(&self, output: usize, slot: usize) -> bool {
-        let _ = (output, slot);
-        todo!()
-    }
-
-    /// Allocate scratch space for [`Program::eval`] and [`Program::eval_jacobian`].
-    pub fn workspace(&self) -> Workspace {
-        todo!()
-    }
-
-    /// Evaluate every output at `vars` (`vars.len() == slots()`), writing `out[k]`.
-    pub fn eval(&self, vars: &[f64], ws: &mut Workspace, out: &mut [f64]) {
-        let _ = (vars, ws, out);
-        todo!()
-    }
-
-    /// Evaluate and differentiate exactly with respect to slots `0..cols`:
-    /// `jac[k * cols + j] = d out[k] / d vars[j]`.
-    pub fn eval_jacobian(
-        &self,
-        vars: &[f64],
-        cols: usize,
-        ws: &mut Workspace,
-        out: &mut [f64],
-        jac: &mut [f64],
-    ) {
-        let _ = (vars, cols, ws, out, jac);
-        todo!()
-    }
-
-    /// Allocate scratch space for [`Program::eval_batch`] over `m` points.
-    pub fn batch_workspace(&self, m: usize) -> BatchWorkspace {
-        let _ = m;
-        todo!()
-    }
-
-    /// Evaluate every output at `m` points: `vars[s * m + j]` is slot `s` of point `j`,
-    /// `out[k * m + j]` receives output `k` of point `j`.
-    pub fn eval_batch(&self, vars: &[f64], m: usize, ws: &mut BatchWorkspace, out: &mut [f64]) {
-        let _ = (vars, m, ws, out);
-        todo!()
-    }
-}
+pub use error::FormulaError;
+pub use eval::{BatchWorkspace, Workspace};
+pub use parser::MAX_DEPTH_CEILING;
+pub use program::{FormulaLimits, Program, Source};
