@@ -5,8 +5,10 @@
 //! ([`dynamics`]) and updates it with each partial reading; [`job`] turns request bytes
 //! into response bytes, and [`http`] serves them.
 
+pub mod cli;
 pub mod config;
 pub mod dynamics;
 pub mod formula;
+pub mod http;
 pub mod job;
 pub mod problem;
