@@ -104,7 +104,11 @@ async fn not_found(req: Request) -> Response {
 async fn method_not_allowed(req: Request) -> Response {
     problem_response(&Problem::new(
         ProblemKind::MethodNotAllowed,
-        format!("{} is not allowed on {}", req.method(), req.uri().path()),
+        format!(
+            "method {} is not allowed on {}",
+            req.method(),
+            req.uri().path()
+        ),
     ))
 }
 

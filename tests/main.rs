@@ -1,0 +1,9 @@
+//! All integration tests, built as one binary: each module is one area.
+
+mod support;
+
+mod cli;
+mod http_api;
+mod http_core;
+mod http_errors;
+mod openapi;
