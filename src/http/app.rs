@@ -58,7 +58,9 @@ pub fn layered(router: Router<AppState>, state: AppState) -> Router {
                         .get(REQUEST_ID)
                         .and_then(|v| v.to_str().ok())
                         .unwrap_or("");
-                    tracing::info_span!("request", method = %req.method(), path = %req.uri().path(), request_id = %id)
+                    // At error level so the span (and so the request id) is on every
+                    // error line even when the log filter is `warn` or `error`.
+                    tracing::error_span!("request", method = %req.method(), path = %req.uri().path(), request_id = %id)
                 })
                 // Every request at debug: at tens of thousands per second a line each
                 // would cost more than the work. Failures still log at error.
