@@ -69,6 +69,8 @@ enum Input {
 const INPUT_DEPTH: usize = 16;
 /// Output chunks in flight towards the socket.
 const OUTPUT_DEPTH: usize = 16;
+/// How long the header line may take to arrive once the request has begun.
+const HEADER_WAIT: std::time::Duration = std::time::Duration::from_secs(30);
 /// Output is sent once this much has gathered, even while more input is waiting.
 const FLUSH_BYTES: usize = 32 * 1024;
 
@@ -84,21 +86,26 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
     let mut splitter = LineSplitter::new(state.limits().max_line_bytes);
     let mut pending: Vec<(u64, Bytes)> = Vec::new();
 
-    // Read up to the first non-blank line: the header.
+    // Read up to the first non-blank line: the header. The slot is already held, so a
+    // client that never sends one is not allowed to keep it for long.
     let mut ended = false;
-    while pending.is_empty() && !ended {
-        match body.next().await {
-            Some(Ok(chunk)) => {
-                if let Err(e) = splitter.push(chunk, &mut pending) {
-                    return problem_response(&line_too_long(e));
+    let read_header = async {
+        while pending.is_empty() && !ended {
+            match body.next().await {
+                Some(Ok(chunk)) => splitter.push(chunk, &mut pending).map_err(line_too_long)?,
+                Some(Err(_)) => return Err(unreadable()),
+                None => {
+                    let _ = splitter.finish(&mut pending);
+                    ended = true;
                 }
             }
-            Some(Err(_)) => return problem_response(&unreadable()),
-            None => {
-                let _ = splitter.finish(&mut pending);
-                ended = true;
-            }
         }
+        Ok(())
+    };
+    match tokio::time::timeout(HEADER_WAIT, read_header).await {
+        Ok(Ok(())) => {}
+        Ok(Err(p)) => return problem_response(&p),
+        Err(_) => return problem_response(&header_timeout()),
     }
     let mut pending: VecDeque<_> = pending.into();
     let Some((_, header_line)) = pending.pop_front() else {
@@ -327,6 +334,19 @@ fn line_too_long(e: LineError) -> Problem {
         format!("line {}: longer than {} bytes", e.line_no, e.limit),
     ));
     p
+}
+
+fn header_timeout() -> Problem {
+    Problem {
+        type_uri: "https://tacit.dev/problems/header-timeout".to_string(),
+        title: "request timeout".to_string(),
+        status: 408,
+        detail: format!(
+            "no header line arrived within {} s of the request's start",
+            HEADER_WAIT.as_secs()
+        ),
+        errors: Vec::new(),
+    }
 }
 
 fn unreadable() -> Problem {
