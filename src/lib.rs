@@ -9,11 +9,13 @@
 //! Estimates are advisory: validate them before any use in a safety function, and defer to
 //! local codes and licensed practice.
 
+pub mod cli;
 pub mod config;
 pub mod diagnostics;
 pub mod dynamics;
 pub mod filter;
 pub mod formula;
+pub mod http;
 pub mod job;
 pub mod problem;
 pub mod simulate;

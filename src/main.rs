@@ -1,5 +1,5 @@
-//! The `tacit` binary: serve the HTTP API or run requests from files.
+//! The `tacit` binary: serve the HTTP API or run requests from files (see [`tacit::cli`]).
 
-fn main() {
-    println!("tacit {}", env!("CARGO_PKG_VERSION"));
+fn main() -> std::process::ExitCode {
+    tacit::cli::main()
 }

@@ -1,3 +1,10 @@
-//! Every integration test in one binary (one link, one run).
+//! All integration tests, built as one binary: each module is one area.
 
+mod support;
+
+mod cli;
 mod estimation;
+mod http_api;
+mod http_core;
+mod http_errors;
+mod openapi;

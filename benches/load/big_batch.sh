@@ -1,0 +1,24 @@
+#!/usr/bin/env bash
+# One POST /v1/estimate of N readings (default 1,000,000) of a 1-axis constant-velocity
+# model with full output, timed end to end with curl (JSON parsing and writing included).
+# Target: >= 1 million readings/s.
+#   N=1000000 benches/load/big_batch.sh
+source "$(dirname "$0")/common.sh"
+N="${N:-1000000}"
+build
+BODY="$(mktemp /tmp/tacit-batch.XXXXXX.json)"
+OUT="$(mktemp /tmp/tacit-batch-out.XXXXXX.json)"
+python3 "$HERE/gen.py" batch "$N" >"$BODY"
+echo "body: $(stat -c %s "$BODY") bytes, $N readings"
+start_server --max-readings "$((N + 1))" --max-body-bytes "$(( $(stat -c %s "$BODY") + 1024 ))"
+read -r code secs size < <(curl -s -o "$OUT" -w '%{http_code} %{time_total} %{size_download}\n' \
+  -H 'content-type: application/json' --data-binary @"$BODY" "$URL/v1/estimate")
+if [ "$code" != 200 ]; then
+  echo "answered $code:" >&2; head -c 2000 "$OUT" >&2; exit 1
+fi
+python3 - "$N" "$secs" "$size" <<'PY'
+import sys
+n, secs, size = int(sys.argv[1]), float(sys.argv[2]), int(sys.argv[3])
+print(f"{secs:.3f} s end to end, {n / secs:,.0f} readings/s, answer {size:,} bytes")
+PY
+rm -f "$BODY" "$OUT"

@@ -1,0 +1,521 @@
+//! The `tacit` command line: `serve` the HTTP API, or `run`, `check` and `simulate`
+//! request files without a server. The same job functions answer both, so a file that
+//! works here works as a request body, with the same errors as readable text.
+
+use crate::config::Limits;
+use crate::http::{self, ApiKeys, AppState, ServerConfig};
+use crate::job::{self, StreamSession};
+use crate::problem::Problem;
+use clap::{Args, Parser, Subcommand, ValueEnum};
+use std::io::{BufRead, BufReader, IsTerminal, Read, Write};
+use std::net::SocketAddr;
+use std::process::ExitCode;
+use std::sync::atomic::AtomicBool;
+use std::time::{Duration, Instant};
+
+/// Recover unmeasured plant states with extended, unscented and ensemble Kalman filters.
+#[derive(Debug, Parser)]
+#[command(name = "tacit", version, about)]
+pub struct Cli {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// The subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Serve the HTTP API.
+    Serve(ServeArgs),
+    /// Run an estimate request (JSON as for POST /v1/estimate, or NDJSON as for the
+    /// stream endpoint) and print the answer.
+    Run(RunArgs),
+    /// Check a model (JSON as for POST /v1/check): dimensions and observability.
+    Check(FileArgs),
+    /// Simulate truth and readings (JSON as for POST /v1/simulate).
+    Simulate(FileArgs),
+}
+
+/// Limits on what one request may ask; unset flags keep the built-in defaults that
+/// `GET /v1/info` reports.
+#[derive(Debug, Clone, Default, Args)]
+pub struct LimitArgs {
+    /// Largest request body, bytes.
+    #[arg(long, env = "TACIT_MAX_BODY_BYTES")]
+    pub max_body_bytes: Option<usize>,
+    /// Largest NDJSON line, bytes.
+    #[arg(long, env = "TACIT_MAX_LINE_BYTES")]
+    pub max_line_bytes: Option<usize>,
+    /// Most states, estimated parameters included.
+    #[arg(long, env = "TACIT_MAX_STATES")]
+    pub max_states: Option<usize>,
+    /// Most sensors in one model.
+    #[arg(long, env = "TACIT_MAX_SENSORS")]
+    pub max_sensors: Option<usize>,
+    /// Most ensemble members.
+    #[arg(long, env = "TACIT_MAX_MEMBERS")]
+    pub max_members: Option<usize>,
+    /// Most measurement lines in one batch request.
+    #[arg(long, env = "TACIT_MAX_READINGS")]
+    pub max_readings: Option<usize>,
+    /// Most simulated times in one request.
+    #[arg(long, env = "TACIT_MAX_SIM_TIMES")]
+    pub max_sim_times: Option<usize>,
+    /// Longest formula, characters.
+    #[arg(long, env = "TACIT_MAX_FORMULA_LEN")]
+    pub max_formula_len: Option<usize>,
+    /// Deepest formula nesting.
+    #[arg(long, env = "TACIT_MAX_FORMULA_DEPTH")]
+    pub max_formula_depth: Option<usize>,
+    /// Compute budget of one request, seconds; 0 for none.
+    #[arg(long, env = "TACIT_DEADLINE_SECS")]
+    pub deadline_secs: Option<f64>,
+    /// Most requests computing at once; more are answered 503 with Retry-After.
+    #[arg(long, env = "TACIT_MAX_CONCURRENCY")]
+    pub max_concurrency: Option<usize>,
+}
+
+impl LimitArgs {
+    /// The limits in force: the defaults with every given flag applied.
+    pub fn to_limits(&self) -> Result<Limits, String> {
+        let mut l = Limits::default();
+        macro_rules! set {
+            ($($f:ident),*) => { $( if let Some(v) = self.$f { l.$f = v; } )* };
+        }
+        set!(
+            max_body_bytes,
+            max_line_bytes,
+            max_states,
+            max_sensors,
+            max_members,
+            max_readings,
+            max_sim_times,
+            max_formula_len,
+            max_formula_depth,
+            max_concurrency
+        );
+        if let Some(s) = self.deadline_secs {
+            if !s.is_finite() || s < 0.0 {
+                return Err("--deadline-secs must be a non-negative number".into());
+            }
+            l.deadline = (s > 0.0).then(|| Duration::from_secs_f64(s));
+        }
+        Ok(l)
+    }
+}
+
+/// Log line format.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum LogFormat {
+    /// Human-readable lines.
+    Text,
+    /// One JSON object per line, for log collectors.
+    Json,
+}
+
+/// `tacit serve`.
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// Address to listen on.
+    #[arg(long, env = "TACIT_ADDR", default_value = "127.0.0.1:8080")]
+    pub addr: SocketAddr,
+    /// Request limits.
+    #[command(flatten)]
+    pub limits: LimitArgs,
+    /// Accepted API keys, comma-separated; when any key is configured, /v1/* needs
+    /// `Authorization: Bearer KEY` (/healthz, /readyz and /metrics stay open).
+    #[arg(long, env = "TACIT_API_KEYS", hide_env_values = true)]
+    pub api_keys: Option<String>,
+    /// File of accepted API keys, one per line (`#` starts a comment).
+    #[arg(long, env = "TACIT_API_KEYS_FILE")]
+    pub api_keys_file: Option<std::path::PathBuf>,
+    /// Origins allowed by CORS, comma-separated (`*` for any); none by default.
+    #[arg(long, env = "TACIT_CORS_ORIGINS", value_delimiter = ',')]
+    pub cors_origins: Vec<String>,
+    /// Log format.
+    #[arg(long, env = "TACIT_LOG_FORMAT", value_enum, default_value = "text")]
+    pub log_format: LogFormat,
+    /// Seconds running requests may continue after SIGTERM or SIGINT.
+    #[arg(long, env = "TACIT_SHUTDOWN_GRACE_SECS", default_value_t = 30.0)]
+    pub shutdown_grace_secs: f64,
+}
+
+/// `tacit run`.
+#[derive(Debug, Args)]
+pub struct RunArgs {
+    /// Request file, or `-` for standard input.
+    pub file: String,
+    /// Smooth the whole batch (as POST /v1/smooth) instead of filtering.
+    #[arg(long)]
+    pub smooth: bool,
+    /// Request limits.
+    #[command(flatten)]
+    pub limits: LimitArgs,
+}
+
+/// `tacit check` and `tacit simulate`.
+#[derive(Debug, Args)]
+pub struct FileArgs {
+    /// Request file, or `-` for standard input.
+    pub file: String,
+    /// Request limits.
+    #[command(flatten)]
+    pub limits: LimitArgs,
+}
+
+/// Why a command failed: a problem with the request, or with reading and writing.
+#[derive(Debug)]
+pub enum CliError {
+    /// The request was refused, as the server would refuse it.
+    Problem(Problem),
+    /// Anything else (files, flags, the listener), already worded for people.
+    Other(String),
+}
+
+impl std::fmt::Display for CliError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Self::Problem(p) => write!(f, "{p}"),
+            Self::Other(s) => f.write_str(s),
+        }
+    }
+}
+
+impl From<Problem> for CliError {
+    fn from(p: Problem) -> Self {
+        Self::Problem(p)
+    }
+}
+
+impl From<std::io::Error> for CliError {
+    fn from(e: std::io::Error) -> Self {
+        Self::Other(e.to_string())
+    }
+}
+
+/// Parse the command line, run it, and turn the outcome into an exit code.
+pub fn main() -> ExitCode {
+    let cli = Cli::parse();
+    match dispatch(cli) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("error: {e}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// Run one parsed command.
+pub fn dispatch(cli: Cli) -> Result<(), CliError> {
+    match cli.command {
+        Command::Serve(a) => serve(a),
+        Command::Run(a) => run(&a),
+        Command::Check(a) => {
+            let limits = a.limits.to_limits().map_err(CliError::Other)?;
+            let body = read_all(&a.file)?;
+            print_body(&job::check(&body, &limits)?.body)
+        }
+        Command::Simulate(a) => {
+            let limits = a.limits.to_limits().map_err(CliError::Other)?;
+            let body = read_all(&a.file)?;
+            let cancel = AtomicBool::new(false);
+            print_body(&job::simulate(&body, &limits, &cancel)?.body)
+        }
+    }
+}
+
+/// The server configuration `serve` would use, keys and CORS included.
+pub fn server_config(a: &ServeArgs) -> Result<ServerConfig, CliError> {
+    let limits = a.limits.to_limits().map_err(CliError::Other)?;
+    let mut keys = a
+        .api_keys
+        .as_deref()
+        .map(ApiKeys::parse_list)
+        .unwrap_or_default();
+    if let Some(path) = &a.api_keys_file {
+        let text = std::fs::read_to_string(path).map_err(|e| {
+            CliError::Other(format!("cannot read the key file {}: {e}", path.display()))
+        })?;
+        keys.extend(ApiKeys::parse_lines(&text));
+    }
+    if !a.shutdown_grace_secs.is_finite() || a.shutdown_grace_secs < 0.0 {
+        return Err(CliError::Other(
+            "--shutdown-grace-secs must be a non-negative number".into(),
+        ));
+    }
+    Ok(ServerConfig {
+        limits,
+        api_keys: keys,
+        cors_origins: a
+            .cors_origins
+            .iter()
+            .map(|o| o.trim().to_string())
+            .filter(|o| !o.is_empty())
+            .collect(),
+        shutdown_grace: Duration::from_secs_f64(a.shutdown_grace_secs),
+        ..ServerConfig::default()
+    })
+}
+
+fn init_logging(format: LogFormat) {
+    use tracing_subscriber::EnvFilter;
+    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = match format {
+        LogFormat::Text => builder.try_init(),
+        LogFormat::Json => builder.json().try_init(),
+    };
+}
+
+fn serve(a: ServeArgs) -> Result<(), CliError> {
+    init_logging(a.log_format);
+    let config = server_config(&a)?;
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()?;
+    rt.block_on(async move {
+        let listener = tokio::net::TcpListener::bind(a.addr)
+            .await
+            .map_err(|e| CliError::Other(format!("cannot listen on {}: {e}", a.addr)))?;
+        let local = listener.local_addr()?;
+        if config.api_keys.is_empty() {
+            tracing::warn!(
+                "no API keys configured: /v1/* is open to anyone who can reach {local}; set TACIT_API_KEYS or TACIT_API_KEYS_FILE to require keys"
+            );
+        } else {
+            tracing::info!(keys = config.api_keys.len(), "API keys required on /v1/*");
+        }
+        tracing::info!(addr = %local, limits = ?config.limits, cors = ?config.cors_origins, "tacit {} listening", env!("CARGO_PKG_VERSION"));
+        let state = AppState::new(config);
+        http::serve(listener, state, http::shutdown_signal()).await?;
+        tracing::info!("stopped");
+        Ok(())
+    })
+}
+
+/// An input file (or standard input) behind a buffer whose fill level can be seen.
+type Input = BufReader<Box<dyn Read>>;
+
+fn open(file: &str) -> Result<Input, CliError> {
+    let inner: Box<dyn Read> = if file == "-" {
+        Box::new(std::io::stdin().lock())
+    } else {
+        Box::new(
+            std::fs::File::open(file)
+                .map_err(|e| CliError::Other(format!("cannot open {file}: {e}")))?,
+        )
+    };
+    Ok(BufReader::with_capacity(1 << 16, inner))
+}
+
+fn read_all(file: &str) -> Result<Vec<u8>, CliError> {
+    let mut buf = Vec::new();
+    open(file)?.read_to_end(&mut buf)?;
+    Ok(buf)
+}
+
+fn print_body(body: &[u8]) -> Result<(), CliError> {
+    let mut out = std::io::stdout().lock();
+    out.write_all(body)?;
+    out.write_all(b"\n")?;
+    out.flush()?;
+    Ok(())
+}
+
+/// What the first line of a `run` input says it is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum InputKind {
+    /// One JSON document (as for `POST /v1/estimate`), possibly over many lines.
+    Batch,
+    /// NDJSON: this line is the stream header; readings follow one per line.
+    Stream,
+}
+
+/// Decide from the first non-blank line: a complete JSON object without
+/// `measurements` is a stream header; anything else (a batch on one line, or the first
+/// line of a pretty-printed document) is read whole as a batch.
+pub fn classify(first_line: &[u8]) -> InputKind {
+    #[derive(serde::Deserialize)]
+    struct Probe {
+        measurements: Option<serde::de::IgnoredAny>,
+    }
+    match serde_json::from_slice::<Probe>(first_line) {
+        Ok(Probe { measurements: None }) => InputKind::Stream,
+        _ => InputKind::Batch,
+    }
+}
+
+fn run(a: &RunArgs) -> Result<(), CliError> {
+    let limits = a.limits.to_limits().map_err(CliError::Other)?;
+    let mut input = open(&a.file)?;
+    let mut first = Vec::new();
+    let mut line_no = 0u64;
+    loop {
+        first.clear();
+        if input.read_until(b'\n', &mut first)? == 0 {
+            break;
+        }
+        line_no += 1;
+        if !first.iter().all(u8::is_ascii_whitespace) {
+            break;
+        }
+    }
+    let cancel = AtomicBool::new(false);
+    match classify(&first) {
+        InputKind::Batch => {
+            input.read_to_end(&mut first)?;
+            let done = if a.smooth {
+                job::smooth(&first, &limits, &cancel)?
+            } else {
+                job::estimate(&first, &limits, &cancel)?
+            };
+            print_body(&done.body)
+        }
+        InputKind::Stream if a.smooth => Err(CliError::Other(
+            "--smooth needs the whole batch as one JSON document (as for POST /v1/smooth), not NDJSON".into(),
+        )),
+        InputKind::Stream => run_stream(&first, line_no, input, &limits),
+    }
+}
+
+/// Feed an NDJSON file through a stream session, writing each answer line as it comes.
+fn run_stream(
+    header: &[u8],
+    header_line: u64,
+    mut input: Input,
+    limits: &Limits,
+) -> Result<(), CliError> {
+    let mut session = StreamSession::start(header, limits)?;
+    let stdout = std::io::stdout();
+    let mut out = std::io::BufWriter::with_capacity(1 << 16, stdout.lock());
+    let mut buf = Vec::with_capacity(1 << 16);
+    let mut line = Vec::new();
+    let mut line_no = header_line;
+    let mut progress = Progress::new(std::io::stderr().is_terminal());
+    loop {
+        line.clear();
+        let n = (&mut input)
+            .take(limits.max_line_bytes as u64 + 2)
+            .read_until(b'\n', &mut line)?;
+        if n == 0 {
+            break;
+        }
+        line_no += 1;
+        if line.last() != Some(&b'\n') && n > limits.max_line_bytes {
+            return Err(CliError::Other(format!(
+                "line {line_no} is longer than the limit of {} bytes",
+                limits.max_line_bytes
+            )));
+        }
+        let text = trim_line(&line);
+        if text.iter().all(u8::is_ascii_whitespace) {
+            continue;
+        }
+        buf.clear();
+        let pushed = session.push(text, line_no, &mut buf);
+        out.write_all(&buf)?;
+        if let Err(p) = pushed {
+            out.flush()?;
+            progress.clear();
+            return Err(p.into());
+        }
+        // Flush when no more input is buffered, so a live pipe sees each answer at once
+        // while a file is written in large blocks.
+        if input.buffer().is_empty() {
+            out.flush()?;
+        }
+        progress.tick(line_no);
+    }
+    buf.clear();
+    let finished = session.finish(&mut buf);
+    out.write_all(&buf)?;
+    out.flush()?;
+    progress.clear();
+    finished.map(|_| ()).map_err(Into::into)
+}
+
+fn trim_line(line: &[u8]) -> &[u8] {
+    let mut l = line;
+    while let [rest @ .., b'\n' | b'\r'] = l {
+        l = rest;
+    }
+    l
+}
+
+/// A one-line counter on stderr, redrawn at most five times a second, only on a terminal.
+struct Progress {
+    on: bool,
+    last: Instant,
+    drawn: bool,
+}
+
+impl Progress {
+    fn new(on: bool) -> Self {
+        Self {
+            on,
+            last: Instant::now(),
+            drawn: false,
+        }
+    }
+
+    fn tick(&mut self, line_no: u64) {
+        if self.on && self.last.elapsed() >= Duration::from_millis(200) {
+            self.last = Instant::now();
+            self.drawn = true;
+            eprint!("\r{line_no} lines read");
+        }
+    }
+
+    fn clear(&mut self) {
+        if self.drawn {
+            eprint!("\r\x1b[K");
+            self.drawn = false;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn classify_tells_a_stream_header_from_a_batch() {
+        assert_eq!(
+            classify(br#"{"model": {}, "filter": {"method": "ekf"}, "prior": {}}"#),
+            InputKind::Stream
+        );
+        assert_eq!(
+            classify(br#"{"model": {}, "measurements": [{"t": 0}]}"#),
+            InputKind::Batch
+        );
+        // The first line of a pretty-printed document is not complete JSON.
+        assert_eq!(classify(b"{\n"), InputKind::Batch);
+        assert_eq!(classify(b""), InputKind::Batch);
+    }
+
+    #[test]
+    fn limit_flags_override_only_what_they_name() {
+        let args = LimitArgs {
+            max_states: Some(8),
+            deadline_secs: Some(0.0),
+            ..LimitArgs::default()
+        };
+        let l = args.to_limits().unwrap();
+        assert_eq!(l.max_states, 8);
+        assert_eq!(l.deadline, None);
+        assert_eq!(l.max_members, Limits::default().max_members);
+        let bad = LimitArgs {
+            deadline_secs: Some(-1.0),
+            ..LimitArgs::default()
+        };
+        assert!(bad.to_limits().is_err());
+    }
+
+    #[test]
+    fn cli_definition_is_consistent() {
+        use clap::CommandFactory;
+        Cli::command().debug_assert();
+    }
+}

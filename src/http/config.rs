@@ -1,0 +1,34 @@
+//! Settings of one server that are not limits on a request: keys, CORS, shutdown.
+//!
+//! Kept apart from [`crate::config::Limits`] because the core reads limits while the
+//! web layer alone reads these; the CLI fills both from flags and environment variables.
+
+use crate::config::Limits;
+use std::time::Duration;
+
+/// Everything one server needs besides its listener.
+#[derive(Debug, Clone)]
+pub struct ServerConfig {
+    /// Limits passed to every job and reported by `/v1/info`.
+    pub limits: Limits,
+    /// Accepted API keys; empty means `/v1/*` is open.
+    pub api_keys: Vec<String>,
+    /// Origins allowed by CORS (`*` for any); empty means no CORS headers at all.
+    pub cors_origins: Vec<String>,
+    /// How long running requests may continue after a shutdown signal.
+    pub shutdown_grace: Duration,
+    /// Seconds a shed client is told to wait (`Retry-After`).
+    pub retry_after_secs: u64,
+}
+
+impl Default for ServerConfig {
+    fn default() -> Self {
+        Self {
+            limits: Limits::default(),
+            api_keys: Vec::new(),
+            cors_origins: Vec::new(),
+            shutdown_grace: Duration::from_secs(30),
+            retry_after_secs: 1,
+        }
+    }
+}

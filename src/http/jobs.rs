@@ -1,0 +1,118 @@
+//! Running one job off the async executor: take a job slot or shed with 503, run the work
+//! in `spawn_blocking`, stop it when the client goes away, and turn a panic into a logged
+//! 500 instead of a dropped connection.
+
+use super::problem::{internal, overloaded, problem_response, public};
+use super::state::AppState;
+use crate::config::Limits;
+use crate::job::Done;
+use crate::problem::Problem;
+use axum::http::{header, HeaderValue};
+use axum::response::{IntoResponse, Response};
+use std::any::Any;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+/// Sets its flag when dropped. A handler holds one while its job runs: if the client
+/// disconnects, axum drops the handler's future, the flag is set, and the job, which
+/// polls the flag between steps, stops instead of computing an answer nobody reads.
+#[derive(Debug)]
+pub struct CancelOnDrop {
+    flag: Arc<AtomicBool>,
+    armed: bool,
+}
+
+impl CancelOnDrop {
+    /// A guard over a fresh, unset flag.
+    pub fn new() -> Self {
+        Self {
+            flag: Arc::new(AtomicBool::new(false)),
+            armed: true,
+        }
+    }
+
+    /// The flag the job polls.
+    pub fn flag(&self) -> Arc<AtomicBool> {
+        self.flag.clone()
+    }
+
+    /// Drop without setting the flag: the work is to run to its end.
+    pub fn disarm(mut self) {
+        self.armed = false;
+    }
+}
+
+impl Default for CancelOnDrop {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+impl Drop for CancelOnDrop {
+    fn drop(&mut self) {
+        if self.armed {
+            self.flag.store(true, Ordering::Relaxed);
+        }
+    }
+}
+
+/// Run `work` on the blocking pool under a job slot and answer with its JSON, its
+/// problem, a 503 when no slot is free, or a generic 500 when it panicked.
+pub async fn run_job<F>(state: &AppState, route: &str, work: F) -> Response
+where
+    F: FnOnce(&Limits, &AtomicBool) -> Result<Done, Problem> + Send + 'static,
+{
+    let Some(slot) = state.try_slot() else {
+        state.metrics().record_shed(route);
+        return overloaded(state.config().retry_after_secs);
+    };
+    let guard = CancelOnDrop::new();
+    let cancel = guard.flag();
+    let st = state.clone();
+    let handle = tokio::task::spawn_blocking(move || {
+        // The slot is released only when the work really stops, so a disconnected
+        // client's job still counts against the limit until it has noticed the flag.
+        let _slot = slot;
+        work(st.limits(), &cancel)
+    });
+    let joined = handle.await;
+    drop(guard);
+    match joined {
+        Ok(Ok(done)) => {
+            state.metrics().record_run(&done.stats);
+            json_response(done.body)
+        }
+        Ok(Err(problem)) => problem_response(&public(problem)),
+        Err(e) => {
+            state.metrics().record_panic();
+            let what = if e.is_panic() {
+                panic_message(&*e.into_panic())
+            } else {
+                "the job was cancelled".to_string()
+            };
+            tracing::error!(panic = %what, "job panicked; answering 500");
+            problem_response(&internal())
+        }
+    }
+}
+
+/// A `200 application/json` response around bytes the job wrote.
+pub fn json_response(body: Vec<u8>) -> Response {
+    let mut res = body.into_response();
+    res.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/json"),
+    );
+    res
+}
+
+/// The text of a panic payload, for the log only.
+pub fn panic_message(payload: &(dyn Any + Send)) -> String {
+    if let Some(s) = payload.downcast_ref::<&str>() {
+        (*s).to_string()
+    } else if let Some(s) = payload.downcast_ref::<String>() {
+        s.clone()
+    } else {
+        "(non-text panic payload)".to_string()
+    }
+}

@@ -1,0 +1,119 @@
+//! Prometheus metrics of one app: requests by route and status, request durations, filter
+//! steps by method, rejected readings, shed requests.
+//!
+//! Each app owns its recorder and records through `metrics::with_local_recorder`, so
+//! several apps in one process (the integration tests start many) never fight over the
+//! process-wide recorder, and each `/metrics` shows only its own app.
+
+use super::state::AppState;
+use crate::job::RunStats;
+use axum::extract::{MatchedPath, Request, State};
+use axum::middleware::Next;
+use axum::response::Response;
+use metrics_exporter_prometheus::{PrometheusBuilder, PrometheusHandle, PrometheusRecorder};
+use std::sync::Arc;
+use std::time::Instant;
+
+/// Bucket bounds of the duration histogram, seconds: from sub-millisecond single steps to
+/// the default one-minute deadline.
+const DURATION_BUCKETS: &[f64] = &[
+    0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0,
+    60.0,
+];
+
+/// One app's recorder and the handle that renders it.
+#[derive(Clone)]
+pub struct Metrics {
+    recorder: Arc<PrometheusRecorder>,
+    handle: PrometheusHandle,
+}
+
+impl Default for Metrics {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+impl Metrics {
+    /// A recorder of its own, not installed globally.
+    pub fn new() -> Self {
+        let recorder = PrometheusBuilder::new()
+            .set_buckets(DURATION_BUCKETS)
+            .map(PrometheusBuilder::build_recorder)
+            // The bucket list above is non-empty, so this branch is not taken; a plain
+            // recorder (summaries instead of buckets) is still better than none.
+            .unwrap_or_else(|_| PrometheusBuilder::new().build_recorder());
+        let handle = recorder.handle();
+        Self {
+            recorder: Arc::new(recorder),
+            handle,
+        }
+    }
+
+    fn with<T>(&self, f: impl FnOnce() -> T) -> T {
+        metrics::with_local_recorder(&*self.recorder, f)
+    }
+
+    /// Count one finished request and its duration.
+    pub fn record_request(&self, route: &str, method: &str, status: u16, secs: f64) {
+        let route = route.to_string();
+        let method = method.to_string();
+        self.with(|| {
+            metrics::counter!("tacit_http_requests_total",
+                "route" => route.clone(), "method" => method.clone(), "status" => status.to_string())
+            .increment(1);
+            metrics::histogram!("tacit_http_request_duration_seconds",
+                "route" => route, "method" => method)
+            .record(secs);
+        });
+    }
+
+    /// Count a request refused for lack of a job slot.
+    pub fn record_shed(&self, route: &str) {
+        let route = route.to_string();
+        self.with(|| metrics::counter!("tacit_http_shed_total", "route" => route).increment(1));
+    }
+
+    /// Add one job's filter work.
+    pub fn record_run(&self, stats: &RunStats) {
+        if stats.method.is_empty() {
+            return;
+        }
+        let m = stats.method;
+        self.with(|| {
+            metrics::counter!("tacit_filter_steps_total", "method" => m).increment(stats.steps);
+            metrics::counter!("tacit_filter_updates_total", "method" => m).increment(stats.updates);
+            metrics::counter!("tacit_filter_rejected_readings_total", "method" => m)
+                .increment(stats.rejected);
+        });
+    }
+
+    /// Count a panic caught in a handler or a job.
+    pub fn record_panic(&self) {
+        self.with(|| metrics::counter!("tacit_panics_total").increment(1));
+    }
+
+    /// The Prometheus text exposition of everything recorded so far.
+    pub fn render(&self) -> String {
+        self.handle.render()
+    }
+}
+
+/// Middleware: time each request and count it under its route template (not its raw
+/// path, which would let clients create unbounded label values).
+pub async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
+    let route = req
+        .extensions()
+        .get::<MatchedPath>()
+        .map_or_else(|| "unmatched".to_string(), |p| p.as_str().to_string());
+    let method = req.method().as_str().to_string();
+    let start = Instant::now();
+    let res = next.run(req).await;
+    state.metrics().record_request(
+        &route,
+        &method,
+        res.status().as_u16(),
+        start.elapsed().as_secs_f64(),
+    );
+    res
+}

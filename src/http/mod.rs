@@ -1,0 +1,29 @@
+//! The web layer: an axum router over the [`crate::job`] boundary, plus the server loop.
+//!
+//! Everything here is about HTTP (routes, media types, keys, limits, metrics, shutdown);
+//! nothing here knows about filters. `mod.rs` holds only module lines and re-exports.
+
+mod app;
+mod auth;
+mod config;
+mod extract;
+mod jobs;
+mod metrics;
+mod ndjson;
+mod openapi;
+mod problem;
+pub mod routes;
+mod serve;
+mod state;
+
+pub use app::{app, layered};
+pub use auth::ApiKeys;
+pub use config::ServerConfig;
+pub use extract::JsonBody;
+pub use jobs::{run_job, CancelOnDrop};
+pub use metrics::Metrics;
+pub use ndjson::{LineError, LineSplitter};
+pub use openapi::{openapi_json, OPENAPI_YAML};
+pub use problem::{problem_response, ProblemResponse, PROBLEM_JSON};
+pub use serve::{serve, shutdown_signal};
+pub use state::AppState;

@@ -1,0 +1,25 @@
+//! `GET /v1/info`: version, methods and the limits in force, as the job layer reports them.
+
+use super::route::{mount, Route};
+use crate::http::state::AppState;
+use crate::job;
+use axum::extract::State;
+use axum::routing::get;
+use axum::{Json, Router};
+
+/// `GET /v1/info`.
+pub const ROUTES: &[Route] = &[Route {
+    method: "GET",
+    path: "/v1/info",
+    keyed: true,
+    handler: || get(info),
+}];
+
+/// This group's router.
+pub fn router() -> Router<AppState> {
+    mount(ROUTES)
+}
+
+async fn info(State(state): State<AppState>) -> Json<serde_json::Value> {
+    Json(job::info(state.limits()))
+}

@@ -1,0 +1,24 @@
+//! One module per route group, each exporting its `ROUTES` and `router()`; [`ALL`] is the
+//! single list the app is built from and the OpenAPI test checks against.
+
+mod estimate;
+mod health;
+mod info;
+mod metrics;
+mod model;
+mod openapi;
+mod route;
+mod stream;
+
+pub use route::{all, mount, Route, ALL};
+
+/// The route groups by name, for callers that want one group's router alone.
+pub mod groups {
+    pub use super::estimate::router as estimate;
+    pub use super::health::router as health;
+    pub use super::info::router as info;
+    pub use super::metrics::router as metrics;
+    pub use super::model::router as model;
+    pub use super::openapi::router as openapi;
+    pub use super::stream::router as stream;
+}

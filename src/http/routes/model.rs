@@ -1,0 +1,49 @@
+//! `POST /v1/check` and `POST /v1/simulate`: questions about a model rather than a filter
+//! run over readings.
+
+use super::route::{mount, Route};
+use crate::http::extract::JsonBody;
+use crate::http::jobs::run_job;
+use crate::http::state::AppState;
+use crate::job;
+use axum::extract::State;
+use axum::response::Response;
+use axum::routing::post;
+use axum::Router;
+
+/// `POST /v1/check`, `POST /v1/simulate`.
+pub const ROUTES: &[Route] = &[
+    Route {
+        method: "POST",
+        path: "/v1/check",
+        keyed: true,
+        handler: || post(check),
+    },
+    Route {
+        method: "POST",
+        path: "/v1/simulate",
+        keyed: true,
+        handler: || post(simulate),
+    },
+];
+
+/// This group's router.
+pub fn router() -> Router<AppState> {
+    mount(ROUTES)
+}
+
+async fn check(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
+    // Checking compiles formulas and ranks a matrix: small but not free, so it too runs
+    // off the executor and under a job slot.
+    run_job(&state, "/v1/check", move |limits, _cancel| {
+        job::check(&body, limits)
+    })
+    .await
+}
+
+async fn simulate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
+    run_job(&state, "/v1/simulate", move |limits, cancel| {
+        job::simulate(&body, limits, cancel)
+    })
+    .await
+}

@@ -1,0 +1,357 @@
+//! `POST /v1/estimate/stream`: NDJSON in, NDJSON out, both at once.
+//!
+//! Three parts joined by bounded channels, so memory stays flat however long the stream:
+//! an async reader splits the request body into lines; a blocking worker feeds them to a
+//! [`StreamSession`] and writes answer lines; the response body drains the worker's
+//! output. Each estimate leaves as soon as it is computed (output is batched only while
+//! more input is already waiting), so the first answer reaches the client before it has
+//! finished sending. Back-pressure runs both ways: a slow reader of answers stalls the
+//! worker, which stalls the reading of the request.
+//!
+//! The header line is checked before the response head is sent, so a bad header is an
+//! ordinary problem response with its own status; after that the status is 200 and a
+//! failure is one last line `{"error": problem}`.
+
+use super::route::{mount, Route};
+use crate::http::extract::require_media_type;
+use crate::http::jobs::{panic_message, CancelOnDrop};
+use crate::http::ndjson::{LineError, LineSplitter};
+use crate::http::problem::{internal, overloaded, problem_response, public};
+use crate::http::state::AppState;
+use crate::job::StreamSession;
+use crate::problem::{Problem, ProblemKind};
+use axum::body::{Body, BodyDataStream};
+use axum::extract::{Request, State};
+use axum::http::{header, HeaderValue};
+use axum::response::{IntoResponse, Response};
+use axum::routing::post;
+use axum::Router;
+use bytes::Bytes;
+use futures_util::StreamExt;
+use std::collections::VecDeque;
+use std::convert::Infallible;
+use std::panic::AssertUnwindSafe;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use tokio::sync::mpsc;
+use tokio::sync::mpsc::error::TryRecvError;
+use tokio::sync::OwnedSemaphorePermit;
+
+/// `POST /v1/estimate/stream`.
+pub const ROUTES: &[Route] = &[Route {
+    method: "POST",
+    path: "/v1/estimate/stream",
+    keyed: true,
+    handler: || post(stream),
+}];
+
+/// This group's router.
+pub fn router() -> Router<AppState> {
+    mount(ROUTES)
+}
+
+/// Media types accepted for the request. `application/json` is refused on purpose: a
+/// stream of lines is not one JSON document, and a client that says so has likely sent
+/// the batch body to the wrong endpoint.
+pub const NDJSON_TYPES: &[&str] = &["application/x-ndjson", "application/jsonl"];
+
+/// Messages from the chunk reader to the worker; each carries the lines of one chunk.
+enum Input {
+    Lines(Vec<(u64, Bytes)>),
+    /// The body ended cleanly; without this the worker treats a closed channel as a
+    /// client that went away, and writes no last line.
+    End,
+    /// The request itself went wrong (a line over the limit).
+    Fail(Problem),
+}
+
+/// Input messages in flight; each holds one chunk's lines.
+const INPUT_DEPTH: usize = 16;
+/// Output chunks in flight towards the socket.
+const OUTPUT_DEPTH: usize = 16;
+/// How long the header line may take to arrive once the request has begun.
+const HEADER_WAIT: std::time::Duration = std::time::Duration::from_secs(30);
+/// Output is sent once this much has gathered, even while more input is waiting.
+const FLUSH_BYTES: usize = 32 * 1024;
+
+async fn stream(State(state): State<AppState>, req: Request) -> Response {
+    if let Err(p) = require_media_type(req.headers(), NDJSON_TYPES, "application/x-ndjson") {
+        return problem_response(&p);
+    }
+    let Some(slot) = state.try_slot() else {
+        state.metrics().record_shed("/v1/estimate/stream");
+        return overloaded(state.config().retry_after_secs);
+    };
+    let mut body = req.into_body().into_data_stream();
+    let mut splitter = LineSplitter::new(state.limits().max_line_bytes);
+    let mut pending: Vec<(u64, Bytes)> = Vec::new();
+
+    // Read up to the first non-blank line: the header. The slot is already held, so a
+    // client that never sends one is not allowed to keep it for long.
+    let mut ended = false;
+    let read_header = async {
+        while pending.is_empty() && !ended {
+            match body.next().await {
+                Some(Ok(chunk)) => splitter.push(chunk, &mut pending).map_err(line_too_long)?,
+                Some(Err(_)) => return Err(unreadable()),
+                None => {
+                    let _ = splitter.finish(&mut pending);
+                    ended = true;
+                }
+            }
+        }
+        Ok(())
+    };
+    match tokio::time::timeout(HEADER_WAIT, read_header).await {
+        Ok(Ok(())) => {}
+        Ok(Err(p)) => return problem_response(&p),
+        Err(_) => return problem_response(&header_timeout()),
+    }
+    let mut pending: VecDeque<_> = pending.into();
+    let Some((_, header_line)) = pending.pop_front() else {
+        return problem_response(&Problem::new(
+            ProblemKind::MalformedJson,
+            "the stream is empty: its first line must be the header {model, filter, prior}",
+        ));
+    };
+
+    let span = tracing::Span::current();
+    let st = state.clone();
+    let started = tokio::task::spawn_blocking(move || {
+        let _enter = span.enter();
+        StreamSession::start(&header_line, st.limits())
+    })
+    .await;
+    let session = match started {
+        Ok(Ok(s)) => s,
+        Ok(Err(p)) => return problem_response(&public(p)),
+        Err(e) => {
+            state.metrics().record_panic();
+            let what = if e.is_panic() {
+                panic_message(&*e.into_panic())
+            } else {
+                "cancelled".to_string()
+            };
+            tracing::error!(panic = %what, "stream header panicked; answering 500");
+            return problem_response(&internal());
+        }
+    };
+
+    let (in_tx, in_rx) = mpsc::channel::<Input>(INPUT_DEPTH);
+    let (out_tx, out_rx) = mpsc::channel::<Bytes>(OUTPUT_DEPTH);
+    let guard = CancelOnDrop::new();
+    let cancel = guard.flag();
+
+    let leftover: Vec<_> = pending.into_iter().collect();
+    tokio::spawn(read_lines(body, splitter, leftover, ended, in_tx, guard));
+    let span = tracing::Span::current();
+    let st = state.clone();
+    tokio::task::spawn_blocking(move || {
+        let _enter = span.enter();
+        work(session, in_rx, out_tx, cancel, slot, &st);
+    });
+
+    let out = futures_util::stream::unfold(out_rx, |mut rx| async move {
+        rx.recv().await.map(|b| (Ok::<_, Infallible>(b), rx))
+    });
+    let mut res = Body::from_stream(out).into_response();
+    res.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/x-ndjson"),
+    );
+    res
+}
+
+/// The async half: split the request body into lines and pass them on in chunk-sized
+/// batches. It owns the cancel guard, so when it stops for any reason other than a
+/// clean end, the worker sees the flag.
+async fn read_lines(
+    mut body: BodyDataStream,
+    mut splitter: LineSplitter,
+    leftover: Vec<(u64, Bytes)>,
+    already_ended: bool,
+    tx: mpsc::Sender<Input>,
+    guard: CancelOnDrop,
+) {
+    if !leftover.is_empty() && tx.send(Input::Lines(leftover)).await.is_err() {
+        return;
+    }
+    if !already_ended {
+        loop {
+            let mut lines = Vec::new();
+            match body.next().await {
+                Some(Ok(chunk)) => {
+                    if let Err(e) = splitter.push(chunk, &mut lines) {
+                        let _ = tx.send(Input::Fail(line_too_long(e))).await;
+                        return;
+                    }
+                }
+                // The client went away or broke the framing: no last line is owed to
+                // anyone, so just stop (dropping the guard stops the worker too).
+                Some(Err(e)) => {
+                    tracing::debug!(error = %e, "stream request body ended abruptly");
+                    return;
+                }
+                None => {
+                    let _ = splitter.finish(&mut lines);
+                    if !lines.is_empty() && tx.send(Input::Lines(lines)).await.is_err() {
+                        return;
+                    }
+                    break;
+                }
+            }
+            if !lines.is_empty() && tx.send(Input::Lines(lines)).await.is_err() {
+                return;
+            }
+        }
+    }
+    let _ = tx.send(Input::End).await;
+    // A clean end: the worker must finish, so the guard may not fire now.
+    guard.disarm();
+}
+
+/// The blocking half: run the session over the lines and send answers out.
+fn work(
+    session: StreamSession,
+    rx: mpsc::Receiver<Input>,
+    tx: mpsc::Sender<Bytes>,
+    cancel: Arc<AtomicBool>,
+    slot: OwnedSemaphorePermit,
+    state: &AppState,
+) {
+    let _slot = slot;
+    let mut out = Vec::with_capacity(FLUSH_BYTES * 2);
+    let result = std::panic::catch_unwind(AssertUnwindSafe(|| {
+        run_session(session, rx, &tx, &cancel, &mut out, state)
+    }));
+    match result {
+        Ok(Flow::Done) | Ok(Flow::Gone) => {}
+        Err(payload) => {
+            state.metrics().record_panic();
+            tracing::error!(panic = %panic_message(&*payload), "stream worker panicked");
+            out.clear();
+            error_line(&internal(), &mut out);
+            let _ = tx.blocking_send(Bytes::from(out));
+        }
+    }
+}
+
+enum Flow {
+    /// The stream was answered to its last line.
+    Done,
+    /// The client is gone; nothing more to write.
+    Gone,
+}
+
+fn run_session(
+    mut session: StreamSession,
+    mut rx: mpsc::Receiver<Input>,
+    tx: &mpsc::Sender<Bytes>,
+    cancel: &AtomicBool,
+    out: &mut Vec<u8>,
+    state: &AppState,
+) -> Flow {
+    loop {
+        let msg = match rx.try_recv() {
+            Ok(m) => m,
+            Err(TryRecvError::Empty) => {
+                // Nothing waiting: send what we have now, then wait for more.
+                if !flush(tx, out) {
+                    return Flow::Gone;
+                }
+                match rx.blocking_recv() {
+                    Some(m) => m,
+                    None => return Flow::Gone,
+                }
+            }
+            Err(TryRecvError::Disconnected) => return Flow::Gone,
+        };
+        if cancel.load(Ordering::Relaxed) {
+            return Flow::Gone;
+        }
+        match msg {
+            Input::Lines(lines) => {
+                for (line_no, line) in lines {
+                    let mark = out.len();
+                    if let Err(p) = session.push(&line, line_no, out) {
+                        out.truncate(mark);
+                        error_line(&p, out);
+                        return finish_flow(tx, out);
+                    }
+                    if out.len() >= FLUSH_BYTES && !flush(tx, out) {
+                        return Flow::Gone;
+                    }
+                }
+            }
+            Input::End => {
+                let mark = out.len();
+                match session.finish(out) {
+                    Ok(stats) => state.metrics().record_run(&stats),
+                    Err(p) => {
+                        out.truncate(mark);
+                        error_line(&p, out);
+                    }
+                }
+                return finish_flow(tx, out);
+            }
+            Input::Fail(p) => {
+                error_line(&p, out);
+                return finish_flow(tx, out);
+            }
+        }
+    }
+}
+
+fn finish_flow(tx: &mpsc::Sender<Bytes>, out: &mut Vec<u8>) -> Flow {
+    if flush(tx, out) {
+        Flow::Done
+    } else {
+        Flow::Gone
+    }
+}
+
+/// Send the gathered output; false when the response body is gone (client left).
+fn flush(tx: &mpsc::Sender<Bytes>, out: &mut Vec<u8>) -> bool {
+    if out.is_empty() {
+        return true;
+    }
+    let chunk = Bytes::copy_from_slice(out);
+    out.clear();
+    tx.blocking_send(chunk).is_ok()
+}
+
+/// Append `{"error": problem}` and a newline.
+fn error_line(p: &Problem, out: &mut Vec<u8>) {
+    out.extend_from_slice(b"{\"error\":");
+    out.extend_from_slice(&public(p.clone()).to_json());
+    out.extend_from_slice(b"}\n");
+}
+
+fn line_too_long(e: LineError) -> Problem {
+    let mut p = Problem::new(ProblemKind::TooLarge, e.to_string());
+    p.errors.push(crate::problem::FieldError::new(
+        "",
+        format!("line {}: longer than {} bytes", e.line_no, e.limit),
+    ));
+    p
+}
+
+fn header_timeout() -> Problem {
+    Problem {
+        type_uri: "https://tacit.dev/problems/header-timeout".to_string(),
+        title: "request timeout".to_string(),
+        status: 408,
+        detail: format!(
+            "no header line arrived within {} s of the request's start",
+            HEADER_WAIT.as_secs()
+        ),
+        errors: Vec::new(),
+    }
+}
+
+fn unreadable() -> Problem {
+    Problem::new(
+        ProblemKind::MalformedJson,
+        "the request body could not be read",
+    )
+}

@@ -1,0 +1,151 @@
+//! Starting real servers on ephemeral loopback ports, and small helpers shared by the
+//! HTTP tests.
+
+#![allow(dead_code)]
+
+use std::net::SocketAddr;
+use tacit::http::{self, AppState, ServerConfig};
+use tokio::sync::oneshot;
+use tokio::task::JoinHandle;
+
+/// A server running in the test's runtime; stops when dropped.
+pub struct Server {
+    /// Where it listens.
+    pub addr: SocketAddr,
+    /// `http://127.0.0.1:PORT`.
+    pub base: String,
+    /// A client for it.
+    pub client: reqwest::Client,
+    /// The app's state (readiness, metrics).
+    pub state: AppState,
+    stop: Option<oneshot::Sender<()>>,
+    task: Option<JoinHandle<std::io::Result<()>>>,
+}
+
+impl Server {
+    /// The full URL of `path`.
+    pub fn url(&self, path: &str) -> String {
+        format!("{}{}", self.base, path)
+    }
+
+    /// Send the shutdown signal and wait for the server loop to return.
+    pub async fn shutdown(mut self) -> std::io::Result<()> {
+        if let Some(s) = self.stop.take() {
+            let _ = s.send(());
+        }
+        match self.task.take() {
+            Some(t) => t.await.expect("server task"),
+            None => Ok(()),
+        }
+    }
+
+    /// Send the shutdown signal without waiting.
+    pub fn signal_shutdown(&mut self) {
+        if let Some(s) = self.stop.take() {
+            let _ = s.send(());
+        }
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        if let Some(t) = &self.task {
+            t.abort();
+        }
+    }
+}
+
+/// Start the real server (same `serve` as `tacit serve`) with `config`.
+pub async fn start(config: ServerConfig) -> Server {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind loopback");
+    let addr = listener.local_addr().expect("local addr");
+    let state = AppState::new(config);
+    let (stop, rx) = oneshot::channel::<()>();
+    let task = tokio::spawn(http::serve(listener, state.clone(), async move {
+        let _ = rx.await;
+    }));
+    Server {
+        addr,
+        base: format!("http://{addr}"),
+        client: reqwest::Client::new(),
+        state,
+        stop: Some(stop),
+        task: Some(task),
+    }
+}
+
+/// Start with the default configuration.
+pub async fn start_default() -> Server {
+    start(ServerConfig::default()).await
+}
+
+/// Serve an arbitrary router on an ephemeral port (for routers built in tests).
+pub async fn serve_router(router: axum::Router) -> String {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind loopback");
+    let addr = listener.local_addr().expect("local addr");
+    tokio::spawn(async move { axum::serve(listener, router).await });
+    format!("http://{addr}")
+}
+
+/// The parts of a problem answer every test looks at.
+#[derive(Debug)]
+pub struct Answer {
+    pub status: u16,
+    pub content_type: String,
+    pub headers: reqwest::header::HeaderMap,
+    pub body: serde_json::Value,
+    pub text: String,
+}
+
+/// Read a response whole, parsing JSON when it is JSON.
+pub async fn answer(res: reqwest::Response) -> Answer {
+    let status = res.status().as_u16();
+    let headers = res.headers().clone();
+    let content_type = headers
+        .get(reqwest::header::CONTENT_TYPE)
+        .and_then(|v| v.to_str().ok())
+        .unwrap_or("")
+        .to_string();
+    let text = res.text().await.expect("body");
+    let body = serde_json::from_str(&text).unwrap_or(serde_json::Value::Null);
+    Answer {
+        status,
+        content_type,
+        headers,
+        body,
+        text,
+    }
+}
+
+/// Assert an RFC 9457 answer with `status`, checking the shape every problem has.
+pub fn assert_problem(a: &Answer, status: u16) {
+    assert_eq!(a.status, status, "status of {}", a.text);
+    assert_eq!(a.content_type, "application/problem+json", "{}", a.text);
+    assert_eq!(a.body["status"], status, "{}", a.text);
+    assert!(a.body["type"]
+        .as_str()
+        .is_some_and(|t| t.starts_with("https://")));
+    assert!(a.body["title"].as_str().is_some_and(|t| !t.is_empty()));
+    let detail = a.body["detail"].as_str().unwrap_or("");
+    assert!(!detail.is_empty(), "problem without detail: {}", a.text);
+    // Clear lower-case messages (RULES): the detail does not start with a capital.
+    assert!(
+        !detail.starts_with(|c: char| c.is_ascii_uppercase()),
+        "detail should be lower case: {detail}"
+    );
+    assert!(a.headers.contains_key("x-request-id"));
+}
+
+/// Assert that the problem lists an error at exactly `pointer`.
+pub fn assert_pointer(a: &Answer, pointer: &str) {
+    let errors = a.body["errors"].as_array().cloned().unwrap_or_default();
+    assert!(
+        errors.iter().any(|e| e["pointer"] == pointer),
+        "expected an error at {pointer:?}, got {}",
+        a.text
+    );
+}
