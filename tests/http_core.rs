@@ -98,7 +98,6 @@ async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Ans
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
     let s = start_default().await;
     let body = json!({
@@ -134,7 +133,6 @@ async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn one_reading_of_a_constant_matches_the_scalar_kalman_closed_form() {
     // x constant, prior N(0, 1), reading z = 1 with variance 1: posterior mean 1/2 and
     // variance 1/2 (the scalar Kalman update, common practice). The EKF and the UKF are
@@ -165,7 +163,6 @@ async fn one_reading_of_a_constant_matches_the_scalar_kalman_closed_form() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn chunked_requests_give_bit_identical_estimates() {
     let s = start_default().await;
     let all = readings(40);
@@ -207,7 +204,6 @@ fn parse_lines(text: &str) -> Vec<Value> {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn stream_answers_like_the_batch_line_by_line() {
     let s = start_default().await;
     let header = json!({"model": cv_model(), "filter": {"method": "ekf"}, "prior": prior()});
@@ -231,7 +227,6 @@ async fn stream_answers_like_the_batch_line_by_line() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn the_first_estimate_arrives_before_the_request_ends() {
     use futures_util::StreamExt;
     let s = start_default().await;
@@ -281,7 +276,6 @@ async fn the_first_estimate_arrives_before_the_request_ends() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn a_bad_stream_header_is_a_plain_problem_status() {
     let s = start_default().await;
     let header = json!({"model": cv_model(), "filter": {"method": "particle"}, "prior": prior()});
@@ -311,7 +305,6 @@ async fn a_bad_stream_header_is_a_plain_problem_status() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn a_failure_mid_stream_is_one_last_error_line() {
     let s = start_default().await;
     let header = json!({"model": cv_model(), "filter": {"method": "ekf"}, "prior": prior()});
@@ -339,7 +332,6 @@ async fn a_failure_mid_stream_is_one_last_error_line() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn a_client_that_leaves_a_stream_frees_its_slot() {
     let mut c = ServerConfig::default();
     c.limits.max_concurrency = 1;
@@ -372,7 +364,6 @@ async fn a_client_that_leaves_a_stream_frees_its_slot() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn smoothing_never_widens_the_filtered_spread() {
     // The RTS smoother's covariance is at most the filter's at every time, and equal at
     // the last (common practice).
@@ -395,7 +386,6 @@ async fn smoothing_never_widens_the_filtered_spread() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn simulated_measurements_are_accepted_by_estimate() {
     let s = start_default().await;
     let body = json!({"model": cv_model(), "prior": prior(), "times": {"start": 0.1, "step": 0.1, "count": 20}, "seed": 11});
@@ -412,7 +402,6 @@ async fn simulated_measurements_are_accepted_by_estimate() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn check_reports_observability_by_sensor() {
     // Position readings of a constant-velocity trolley recover both states; speed
     // readings alone leave the position unobservable (rank of [H; HF], common practice).
@@ -433,7 +422,6 @@ async fn check_reports_observability_by_sensor() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn filter_metrics_count_steps_by_method() {
     let s = start_default().await;
     let a = post_json(&s, "/v1/estimate", &estimate_body("ukf", 12)).await;
@@ -767,7 +755,6 @@ fn bad_requests() -> Vec<(&'static str, Value, u16, Ptr)> {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn bad_requests_name_their_status_and_pointer() {
     let s = start_default().await;
     let cases = bad_requests();
@@ -790,7 +777,6 @@ async fn bad_requests_name_their_status_and_pointer() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn formula_errors_carry_their_column() {
     let s = start_default().await;
     // "force/mas": the unknown name starts at column 7 (1-based).
@@ -803,7 +789,6 @@ async fn formula_errors_carry_their_column() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn syntax_errors_are_400() {
     let s = start_default().await;
     for body in [
@@ -820,7 +805,6 @@ async fn syntax_errors_are_400() {
 }
 
 #[tokio::test]
-#[ignore = "needs the estimation core"]
 async fn every_job_route_refuses_bad_input_without_500() {
     let s = start_default().await;
     for path in ["/v1/estimate", "/v1/smooth", "/v1/simulate", "/v1/check"] {

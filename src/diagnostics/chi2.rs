@@ -34,8 +34,29 @@ pub fn ln_gamma(x: f64) -> f64 {
 
 /// Regularised lower incomplete gamma P(a, x) = γ(a, x) / Γ(a), for a > 0, x ≥ 0.
 pub fn gamma_p(a: f64, x: f64) -> f64 {
+    let (p, q) = gamma_pq(a, x);
+    if x < a + 1.0 {
+        p
+    } else {
+        1.0 - q
+    }
+}
+
+/// Regularised upper incomplete gamma Q(a, x) = 1 − P(a, x), accurate when it is tiny.
+pub fn gamma_q(a: f64, x: f64) -> f64 {
+    let (p, q) = gamma_pq(a, x);
+    if x < a + 1.0 {
+        1.0 - p
+    } else {
+        q
+    }
+}
+
+/// The directly computed tail: P by the series when x < a + 1, else Q by the continued
+/// fraction (the other entry is then unused).
+fn gamma_pq(a: f64, x: f64) -> (f64, f64) {
     if x <= 0.0 {
-        return 0.0;
+        return (0.0, 1.0);
     }
     let ln_pre = a * x.ln() - x - ln_gamma(a);
     if x < a + 1.0 {
@@ -51,7 +72,7 @@ pub fn gamma_p(a: f64, x: f64) -> f64 {
                 break;
             }
         }
-        (sum.ln() + ln_pre).exp().min(1.0)
+        ((sum.ln() + ln_pre).exp().min(1.0), f64::NAN)
     } else {
         // Continued fraction for Q(a, x) by the modified Lentz method.
         let tiny = 1e-300;
@@ -77,7 +98,7 @@ pub fn gamma_p(a: f64, x: f64) -> f64 {
                 break;
             }
         }
-        (1.0 - (ln_pre.exp() * h)).max(0.0)
+        (f64::NAN, (ln_pre.exp() * h).clamp(0.0, 1.0))
     }
 }
 
@@ -86,6 +107,7 @@ pub fn cdf(x: f64, k: f64) -> f64 {
     gamma_p(0.5 * k, 0.5 * x)
 }
 
+#[allow(clippy::excessive_precision)]
 /// Standard normal quantile (Acklam's rational approximation, relative error < 1.2e-9),
 /// enough for a starting point.
 fn normal_quantile(p: f64) -> f64 {
@@ -148,8 +170,16 @@ pub fn quantile(p: f64, k: f64) -> f64 {
     }
     let (mut lo, mut hi) = (0.0_f64, f64::INFINITY);
     let ln_norm = 0.5 * k * std::f64::consts::LN_2 + ln_gamma(0.5 * k);
+    // Solve in the tail that is small: F(x) − p below the median, (1 − p) − Q(x) above it,
+    // so quantiles near 1 keep their relative accuracy (1 − p is exact there, Sterbenz).
+    let upper = p > 0.5;
+    let q_target = 1.0 - p;
     for _ in 0..200 {
-        let f = cdf(x, k) - p;
+        let f = if upper {
+            q_target - gamma_q(0.5 * k, 0.5 * x)
+        } else {
+            cdf(x, k) - p
+        };
         if f > 0.0 {
             hi = hi.min(x);
         } else {

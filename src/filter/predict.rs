@@ -162,7 +162,6 @@ pub struct Predictor {
     q_zero: bool,
     // Integrators and their state vectors.
     ode_g: Dopri5,
-    ode_g_phi: Dopri5,
     rk_g: Rk4,
     y_g: Vec<f64>,
     ode_p: Dopri5,
@@ -205,7 +204,7 @@ impl Predictor {
             }
             _ => (None, None),
         };
-        let g_dim = n + 2 * n * n;
+        let g_dim = n + n * n;
         let p_dim = n * points + if q_zero { 0 } else { n * n };
         let slots = model.slot_count();
         Self {
@@ -230,7 +229,6 @@ impl Predictor {
             drift,
             q_zero,
             ode_g: Self::dopri(n + n * n, &integration),
-            ode_g_phi: Self::dopri(g_dim, &integration),
             rk_g: Rk4::new(g_dim),
             y_g: vec![0.0; g_dim],
             ode_p: Self::dopri(p_dim.max(1), &integration),
@@ -285,6 +283,7 @@ impl Predictor {
 
     /// Gaussian prediction over `dt > 0` from time `t0` with inputs `u`. When `phi` is
     /// given it receives the state transition matrix of the step (for the smoother).
+    #[allow(clippy::too_many_arguments)]
     pub fn predict_gaussian(
         &mut self,
         model: &Model,
@@ -358,54 +357,24 @@ impl Predictor {
                 self.tmp2 = q;
             }
             Dynamics::Rates(program) => {
-                let want_phi = phi.is_some();
-                let dim = n + n * n + if want_phi { n * n } else { 0 };
-                let y = &mut self.y_g[..dim];
-                y[..n].copy_from_slice(mean.as_slice());
-                y[n..n + n * n].copy_from_slice(cov.as_slice());
-                if want_phi {
-                    for j in 0..n {
-                        for i in 0..n {
-                            y[n + n * n + i + j * n] = if i == j { 1.0 } else { 0.0 };
-                        }
-                    }
-                }
-                let (nm, nu) = (self.n_model, self.nu);
-                let pe = &mut self.pe;
-                let qc = self.qc.as_slice();
-                let rhs = |s: f64, y: &[f64], dy: &mut [f64]| {
-                    pe.vars[..n].copy_from_slice(&y[..n]);
-                    pe.vars[n..n + nu].copy_from_slice(u);
-                    pe.vars[n + nu] = t0 + s;
-                    pe.jacobian(program, n, nm, false);
-                    dy[..nm].copy_from_slice(&pe.fx);
-                    dy[nm..n].iter_mut().for_each(|x| *x = 0.0);
-                    let (dp, dphi) = dy[n..].split_at_mut(n * n);
-                    lyapunov_rate(&pe.f_full, &y[n..n + n * n], qc, &mut pe.fp, dp, n);
-                    if want_phi {
-                        let phi_y = &y[n + n * n..];
-                        for j in 0..n {
-                            for i in 0..n {
-                                let mut acc = 0.0;
-                                for l in 0..n {
-                                    acc += pe.f_full[i + l * n] * phi_y[l + j * n];
-                                }
-                                dphi[i + j * n] = acc;
-                            }
-                        }
-                    }
-                };
-                match self.integration.fixed_step {
-                    Some(h) => self.rk_g.integrate(rhs, dt, h, y),
-                    None if want_phi => self.ode_g_phi.integrate(rhs, 0.0, dt, y).map(|_| ()),
-                    None => self.ode_g.integrate(rhs, 0.0, dt, y).map(|_| ()),
-                }
-                .map_err(ode_error)?;
-                mean.as_mut_slice().copy_from_slice(&y[..n]);
-                cov.as_mut_slice().copy_from_slice(&y[n..n + n * n]);
+                // Mean and covariance first, exactly as without smoothing, so asking for Φ
+                // never changes the filter's own numbers; then Φ along the same start.
+                self.vtmp.copy_from(mean);
+                self.y_g[..n].copy_from_slice(mean.as_slice());
+                self.y_g[n..n + n * n].copy_from_slice(cov.as_slice());
+                self.integrate_rates(program, u, t0, dt, false)?;
+                mean.as_mut_slice().copy_from_slice(&self.y_g[..n]);
+                cov.as_mut_slice().copy_from_slice(&self.y_g[n..n + n * n]);
                 symmetrize(cov);
                 if let Some(p) = phi {
-                    p.as_mut_slice().copy_from_slice(&y[n + n * n..dim]);
+                    self.y_g[..n].copy_from_slice(self.vtmp.as_slice());
+                    for j in 0..n {
+                        for i in 0..n {
+                            self.y_g[n + i + j * n] = if i == j { 1.0 } else { 0.0 };
+                        }
+                    }
+                    self.integrate_rates(program, u, t0, dt, true)?;
+                    p.as_mut_slice().copy_from_slice(&self.y_g[n..n + n * n]);
                 }
             }
         }
@@ -413,6 +382,50 @@ impl Predictor {
             return Err(FilterError::NonFinite("predicted state"));
         }
         Ok(())
+    }
+
+    /// Integrate `y_g = [m, M]` over `dt` where `M` follows Ṗ = F P + P Fᵀ + Qc (covariance)
+    /// or, with `variational`, Φ̇ = F Φ (state transition matrix).
+    fn integrate_rates(
+        &mut self,
+        program: &Program,
+        u: &[f64],
+        t0: f64,
+        dt: f64,
+        variational: bool,
+    ) -> Result<(), FilterError> {
+        let (n, nm, nu) = (self.n, self.n_model, self.nu);
+        let pe = &mut self.pe;
+        let qc = self.qc.as_slice();
+        let rhs = |s: f64, y: &[f64], dy: &mut [f64]| {
+            pe.vars[..n].copy_from_slice(&y[..n]);
+            pe.vars[n..n + nu].copy_from_slice(u);
+            pe.vars[n + nu] = t0 + s;
+            pe.jacobian(program, n, nm, false);
+            dy[..nm].copy_from_slice(&pe.fx);
+            dy[nm..n].iter_mut().for_each(|x| *x = 0.0);
+            let m = &y[n..n + n * n];
+            let dm = &mut dy[n..n + n * n];
+            if variational {
+                for j in 0..n {
+                    for i in 0..n {
+                        let mut acc = 0.0;
+                        for l in 0..n {
+                            acc += pe.f_full[i + l * n] * m[l + j * n];
+                        }
+                        dm[i + j * n] = acc;
+                    }
+                }
+            } else {
+                lyapunov_rate(&pe.f_full, m, qc, &mut pe.fp, dm, n);
+            }
+        };
+        let y = &mut self.y_g[..n + n * n];
+        match self.integration.fixed_step {
+            Some(h) => self.rk_g.integrate(rhs, dt, h, y),
+            None => self.ode_g.integrate(rhs, 0.0, dt, y).map(|_| ()),
+        }
+        .map_err(ode_error)
     }
 
     fn fill_vars(&mut self, x: &[f64], u: &[f64], t0: f64, dt: f64) {
@@ -426,6 +439,7 @@ impl Predictor {
     /// Move the points (rows of `x`, `points × n`) over `dt > 0` and put the process noise
     /// covariance of the interval in `q`. `weights` give the mean along which the noise of a
     /// nonlinear continuous model is integrated. Returns whether `q` is non-zero.
+    #[allow(clippy::too_many_arguments)]
     pub fn predict_points(
         &mut self,
         model: &Model,

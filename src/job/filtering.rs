@@ -209,7 +209,11 @@ pub fn run_batch(
                 mean: est.mean().clone(),
                 cov: est.covariance().clone(),
             });
-            times.push(reading.t);
+            let mut frag = Vec::new();
+            if !reading.sensors.is_empty() {
+                writer.innovations(&mut frag, est.obs());
+            }
+            times.push((reading.t, frag));
         } else {
             if i > 0 {
                 buf.push(b',');
@@ -238,7 +242,7 @@ pub fn run_batch(
             if i > 0 {
                 buf.push(b',');
             }
-            writer.estimate(&mut buf, &times[i], &s.mean, &s.cov, None);
+            writer.estimate_with(&mut buf, &times[i].0, &s.mean, &s.cov, &times[i].1);
         }
     }
     buf.push(b']');

@@ -110,6 +110,35 @@ impl Writer {
         cov: &DMatrix<f64>,
         obs: Option<&ObsSpace>,
     ) {
+        self.estimate_open(buf, t, mean, cov);
+        if let Some(obs) = obs {
+            self.innovations(buf, obs);
+        }
+        buf.push(b'}');
+    }
+
+    /// One estimate object with innovations already written by [`Writer::innovations`]
+    /// (the smoother reports the forward filter's innovations).
+    pub fn estimate_with(
+        &self,
+        buf: &mut Vec<u8>,
+        t: &Instant,
+        mean: &DVector<f64>,
+        cov: &DMatrix<f64>,
+        innovations: &[u8],
+    ) {
+        self.estimate_open(buf, t, mean, cov);
+        buf.extend_from_slice(innovations);
+        buf.push(b'}');
+    }
+
+    fn estimate_open(
+        &self,
+        buf: &mut Vec<u8>,
+        t: &Instant,
+        mean: &DVector<f64>,
+        cov: &DMatrix<f64>,
+    ) {
         buf.extend_from_slice(b"{\"t\":");
         self.time(buf, t);
         buf.extend_from_slice(b",\"mean\":");
@@ -126,28 +155,33 @@ impl Writer {
             buf.extend_from_slice(b",\"covariance\":");
             self.matrix(buf, cov);
         }
-        if let Some(obs) = obs.filter(|o| self.out.innovations && !o.checks.is_empty()) {
-            buf.extend_from_slice(b",\"innovations\":{");
-            let m = obs.m;
-            for (i, ck) in obs.checks.iter().enumerate() {
-                if i > 0 {
-                    buf.push(b',');
-                }
-                buf.extend_from_slice(&self.sensor_keys[ck.sensor]);
-                buf.extend_from_slice(b"{\"residual\":");
-                let rows = ck.row..ck.row + ck.dim;
-                self.scalar_or_list(buf, rows.clone().map(|r| obs.nu[r]));
-                buf.extend_from_slice(b",\"std\":");
-                self.scalar_or_list(buf, rows.map(|r| obs.s[r + r * m].max(0.0).sqrt()));
-                buf.extend_from_slice(b",\"nis\":");
-                num(buf, ck.nis);
-                buf.extend_from_slice(if ck.accepted {
-                    b",\"accepted\":true}"
-                } else {
-                    b",\"accepted\":false}"
-                });
+    }
+
+    /// `,"innovations":{...}` for the sensors read on the line (nothing when none were read
+    /// or innovations are switched off).
+    pub fn innovations(&self, buf: &mut Vec<u8>, obs: &ObsSpace) {
+        if !self.out.innovations || obs.checks.is_empty() {
+            return;
+        }
+        buf.extend_from_slice(b",\"innovations\":{");
+        let m = obs.m;
+        for (i, ck) in obs.checks.iter().enumerate() {
+            if i > 0 {
+                buf.push(b',');
             }
-            buf.push(b'}');
+            buf.extend_from_slice(&self.sensor_keys[ck.sensor]);
+            buf.extend_from_slice(b"{\"residual\":");
+            let rows = ck.row..ck.row + ck.dim;
+            self.scalar_or_list(buf, rows.clone().map(|r| obs.nu[r]));
+            buf.extend_from_slice(b",\"std\":");
+            self.scalar_or_list(buf, rows.map(|r| obs.s[r + r * m].max(0.0).sqrt()));
+            buf.extend_from_slice(b",\"nis\":");
+            num(buf, ck.nis);
+            buf.extend_from_slice(if ck.accepted {
+                b",\"accepted\":true}"
+            } else {
+                b",\"accepted\":false}"
+            });
         }
         buf.push(b'}');
     }

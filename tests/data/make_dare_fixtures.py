@@ -21,6 +21,12 @@ def add(name, F, H, Q, R):
     F, H, Q, R = (np.array(m, dtype=float) for m in (F, H, Q, R))
     P = solve_discrete_are(F.T, H.T, Q, R)
     # Residual of the Riccati equation, recorded so the fixture proves itself.
+    # The test reaches steady state by running the filter, so every case must converge
+    # quickly: check that 2000 steps of the recursion from P = I get there.
+    X = np.eye(len(F))
+    for _ in range(2000):
+        X = F @ (X - X @ H.T @ np.linalg.solve(H @ X @ H.T + R, H @ X)) @ F.T + Q
+    assert np.abs(X - P).max() <= 1e-12 * np.abs(P).max(), name
     S = H @ P @ H.T + R
     res = F @ P @ F.T - F @ P @ H.T @ np.linalg.solve(S, H @ P @ F.T) + Q - P
     cases.append({
@@ -40,8 +46,8 @@ add("damped three-state, two sensors",
 add("oscillator with drift state",
     [[np.cos(0.3), np.sin(0.3), 0.1, 0.0], [-np.sin(0.3), np.cos(0.3), 0.0, 0.0],
      [0.0, 0.0, 1.0, 0.0], [0.0, 0.0, 0.0, 0.8]],
-    [[1, 0, 0, 1]],
-    np.diag([1e-3, 1e-3, 1e-5, 0.05]).tolist(), [[0.25]])
+    [[1, 0, 0, 1], [0, 1, 0, 0]],
+    np.diag([1e-3, 1e-3, 1e-3, 0.05]).tolist(), [[0.25, 0.02], [0.02, 0.1]])
 
 out = {"generator": "tests/data/make_dare_fixtures.py", "scipy_version": scipy.__version__,
        "numpy_version": np.__version__, "cases": cases}

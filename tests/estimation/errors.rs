@@ -276,20 +276,31 @@ fn observability_of_position_and_velocity_sensors() {
 
 #[test]
 fn observability_of_a_nonlinear_model_with_a_parameter() {
-    // Water tower: level' = (inflow − outflow)/area, read by a level sensor; the draw-off
-    // is a constant disturbance state. Level and draw-off are recoverable together; an
-    // extra state that nothing touches is not.
-    let body = json!({"model": {
-        "states": ["level", "draw", "ghost"],
-        "parameters": {"area": 12.0, "k": {"initial": 0.5, "std": 0.1}},
-        "dynamics": {"rates": {"level": "(k*sqrt(abs(level)+1) - draw)/area"}},
-        "sensors": {"gauge": {"measures": "level", "std": 0.01}}
-    }, "prior": {"t": 0.0, "mean": {"level": 4.0, "draw": 0.3, "ghost": 0.0}, "std": {"level": 1.0, "draw": 1.0, "ghost": 1.0}}});
-    let out = check(&body).unwrap();
+    // Water tower: level' = (k·√(|level|+1) − draw)/area, read by a level sensor; the
+    // draw-off is a constant disturbance state. With k known, level and draw are
+    // recoverable; a state that nothing touches is not. With k estimated too, k and draw
+    // both enter the level rate as constants, so the linearised model cannot tell them
+    // apart (rank argument, common practice).
+    let body = |k: Value| {
+        json!({"model": {
+            "states": ["level", "draw", "ghost"],
+            "parameters": {"area": 12.0, "k": k},
+            "dynamics": {"rates": {"level": "(k*sqrt(abs(level)+1) - draw)/area"}},
+            "sensors": {"gauge": {"measures": "level", "std": 0.01}}
+        }, "prior": {"t": 0.0, "mean": {"level": 4.0, "draw": 0.3, "ghost": 0.0}, "std": {"level": 1.0, "draw": 1.0, "ghost": 1.0}}})
+    };
+    let out = check(&body(json!(0.5))).unwrap();
     assert_eq!(out["observability"]["unobservable"], json!(["ghost"]));
+    assert_eq!(out["observability"]["rank"], json!(2));
     assert!(out["warnings"]
         .as_array()
         .unwrap()
         .iter()
         .any(|w| w.as_str().unwrap().contains("ghost")));
+    let out = check(&body(json!({"initial": 0.5, "std": 0.1}))).unwrap();
+    assert_eq!(
+        out["observability"]["unobservable"],
+        json!(["draw", "ghost", "k"])
+    );
+    assert_eq!(out["observability"]["rank"], json!(2));
 }
