@@ -152,12 +152,17 @@ fn times(
                 );
                 return Vec::new();
             }
-            (0..count)
+            // Grid times are counted in whole nanoseconds so 0.1 + 2·0.1 is 0.3, not
+            // 0.30000000000000004.
+            let step_ns = (step * 1e9).round() as i128;
+            let start_ns = match mode.unwrap_or(TimeMode::Seconds) {
+                TimeMode::Seconds => (start.secs * 1e9).round() as i128,
+                TimeMode::Stamp => start.nanos,
+            };
+            (0..count as i128)
                 .map(|k| match mode.unwrap_or(TimeMode::Seconds) {
-                    TimeMode::Seconds => Instant::seconds(start.secs + k as f64 * step),
-                    TimeMode::Stamp => {
-                        Instant::from_nanos(start.nanos + (k as f64 * step * 1e9).round() as i128)
-                    }
+                    TimeMode::Seconds => Instant::seconds((start_ns + k * step_ns) as f64 / 1e9),
+                    TimeMode::Stamp => Instant::from_nanos(start_ns + k * step_ns),
                 })
                 .collect()
         }
@@ -168,7 +173,7 @@ fn times(
     }
 }
 
-/// Input change points `[{"t", "values": {...}}]`.
+/// Input change points `[{"t", "inputs": {...}}]`, each as in a measurement line.
 fn input_schedule(
     v: Option<Value>,
     model: &Model,
@@ -185,14 +190,14 @@ fn input_schedule(
         let Some(o) = Obj::new(it, &p, errs) else {
             continue;
         };
-        o.deny_unknown(&["t", "values"], errs);
+        o.deny_unknown(&["t", "inputs"], errs);
         let t = o
             .required("t", errs)
             .and_then(|t| validate::time_value(t, &o.at("t"), mode, errs));
         let mut vals = Vec::new();
         if let Some(vo) = o
-            .required("values", errs)
-            .and_then(|x| Obj::new(x, &o.at("values"), errs))
+            .required("inputs", errs)
+            .and_then(|x| Obj::new(x, &o.at("inputs"), errs))
         {
             for (k, x) in vo.map {
                 match model.input_index(k) {

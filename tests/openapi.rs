@@ -230,3 +230,108 @@ fn problem_schema_matches_what_the_server_sends() {
 fn v_info(d: &Value) -> jsonschema::Validator {
     validator(d, &json!({"$ref": "#/components/schemas/Info"}))
 }
+
+/// Paths in `value` that the schema neither validates nor names: a field the server sends
+/// (or a request field it accepts) that the contract file does not document.
+fn undocumented(doc: &Value, schema: &Value, value: &Value, path: &str, out: &mut Vec<String>) {
+    let schema = resolve(doc, schema);
+    for key in ["oneOf", "anyOf"] {
+        if let Some(variants) = schema.get(key).and_then(Value::as_array) {
+            match variants.iter().find(|v| validator(doc, v).is_valid(value)) {
+                Some(v) => undocumented(doc, v, value, path, out),
+                None => out.push(format!("{path} (matches no variant)")),
+            }
+            return;
+        }
+    }
+    match value {
+        Value::Object(map) => {
+            let props = schema.get("properties").and_then(Value::as_object);
+            for (k, v) in map {
+                let here = format!("{path}/{k}");
+                match (
+                    props.and_then(|p| p.get(k)),
+                    schema.get("additionalProperties"),
+                ) {
+                    (Some(s), _) => undocumented(doc, s, v, &here, out),
+                    (None, Some(s)) if s.is_object() => undocumented(doc, s, v, &here, out),
+                    _ => out.push(here),
+                }
+            }
+        }
+        Value::Array(items) => {
+            if let Some(s) = schema.get("items") {
+                for (i, v) in items.iter().enumerate().take(5) {
+                    undocumented(doc, s, v, &format!("{path}/{i}"), out);
+                }
+            }
+        }
+        _ => {}
+    }
+}
+
+fn assert_documented(doc: &Value, schema_name: &str, value: &Value) {
+    let schema = json!({"$ref": format!("#/components/schemas/{schema_name}")});
+    let v = validator(doc, &schema);
+    let errors: Vec<String> = v
+        .iter_errors(value)
+        .map(|e| format!("{} at {}", e, e.instance_path()))
+        .collect();
+    assert!(errors.is_empty(), "{schema_name}: {errors:?}\n{value}");
+    let mut extra = Vec::new();
+    undocumented(doc, &schema, value, "", &mut extra);
+    assert!(
+        extra.is_empty(),
+        "{schema_name}: undocumented fields {extra:?}"
+    );
+}
+
+/// Real requests and the server's real answers, checked against the contract file: both
+/// must validate and neither may carry a field the file does not describe.
+#[tokio::test]
+async fn real_requests_and_answers_match_the_contract_file() {
+    use crate::support::{answer, start_default};
+    let d = doc();
+    let s = start_default().await;
+    let model = json!({
+        "states": ["pos", "vel"],
+        "inputs": ["force"],
+        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "drift": 1e-4}},
+        "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel*abs(vel))/mass"}},
+        "process_noise": {"density": {"vel": 0.05}},
+        "sensors": {"encoder": {"measures": "pos", "std": 0.002}, "pair": {"measures": ["pos", "vel"], "covariance": [[1e-4, 0], [0, 1e-2]]}}
+    });
+    let prior =
+        json!({"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 1.0, "vel": 5.0}});
+    let sim_req = json!({"model": model, "prior": prior, "times": {"start": 0.1, "step": 0.1, "count": 6}, "seed": 3,
+        "inputs": [{"t": 0.0, "inputs": {"force": 2.5}}], "readings": {"pair": {"every": 2, "dropout": 0.1, "outliers": {"probability": 0.1, "scale": 10}}}});
+    assert_documented(&d, "SimulateRequest", &sim_req);
+    let post = |path: &'static str, body: Value| {
+        let c = s.client.clone();
+        let url = s.url(path);
+        async move { answer(c.post(url).json(&body).send().await.unwrap()).await }
+    };
+    let sim = post("/v1/simulate", sim_req).await;
+    assert_eq!(sim.status, 200, "{}", sim.text);
+    assert_documented(&d, "SimulateResponse", &sim.body);
+    for method in ["ekf", "ukf", "enkf"] {
+        let req = json!({"model": model, "filter": {"method": method, "unscented": {"alpha": 1.0}, "ensemble": {"members": 8, "seed": 1},
+            "integration": {"max_step": 0.05, "rtol": 1e-7}, "gate": {"probability": 0.999}}, "prior": prior,
+            "measurements": sim.body["measurements"], "output": {"covariance": "full", "innovations": true, "at": [0.05, 0.25]}});
+        assert_documented(&d, "EstimateRequest", &req);
+        for path in ["/v1/estimate", "/v1/smooth"] {
+            let a = post(path, req.clone()).await;
+            assert_eq!(a.status, 200, "{path} {method}: {}", a.text);
+            assert_documented(&d, "EstimateResponse", &a.body);
+            // The posterior goes back in as a prior.
+            assert_documented(&d, "Prior", &a.body["posterior"]);
+        }
+    }
+    let chk = post("/v1/check", json!({"model": model, "prior": prior})).await;
+    assert_eq!(chk.status, 200, "{}", chk.text);
+    assert_documented(&d, "CheckResponse", &chk.body);
+    let bad = post("/v1/estimate", json!({"model": model})).await;
+    assert_documented(&d, "Problem", &bad.body);
+    let info = answer(s.client.get(s.url("/v1/info")).send().await.unwrap()).await;
+    assert_documented(&d, "Info", &info.body);
+}
