@@ -220,9 +220,11 @@ fn input_schedule(
 /// `POST /v1/simulate`.
 pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
     let env = request::envelope(body)?;
-    let model_v = request::section(env.model, "model")?;
-    let prior_v = request::section(env.prior, "prior")?;
-    let times_v = request::section(env.times, "times")?;
+    let [model_v, prior_v, times_v] = request::sections([
+        (env.model, "model"),
+        (env.prior, "prior"),
+        (env.times, "times"),
+    ])?;
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
     let prior = validate::prior(&prior_v, "/prior", &model, None).map_err(Problem::invalid)?;
     let mut errs = Errors::default();

@@ -30,9 +30,11 @@ pub struct Setup {
 
 /// Parse `model`, `filter`, `prior` and `output`, collecting every field error.
 pub fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Problem> {
-    let model_v = request::section(env.model, "model")?;
-    let filter_v = request::section(env.filter, "filter")?;
-    let prior_v = request::section(env.prior, "prior")?;
+    let [model_v, filter_v, prior_v] = request::sections([
+        (env.model, "model"),
+        (env.filter, "filter"),
+        (env.prior, "prior"),
+    ])?;
     let output_v = request::optional_section(env.output)?;
     let mut errors: Vec<FieldError> = Vec::new();
     let model = validate::model(&model_v, "/model", limits)

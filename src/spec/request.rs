@@ -89,3 +89,26 @@ pub fn optional_section(raw: Option<&RawValue>) -> Result<Option<Value>, Problem
     raw.map(|r| serde_json::from_str(r.get()).map_err(json_problem))
         .transpose()
 }
+
+/// Read the named required sections, collecting every missing one (and reporting a section
+/// of the wrong JSON shape through the caller's validation) before failing.
+pub fn sections<const N: usize>(
+    raw: [(Option<&RawValue>, &str); N],
+) -> Result<[Value; N], Problem> {
+    let mut missing = Vec::new();
+    let mut out: [Value; N] = std::array::from_fn(|_| Value::Null);
+    for (i, (r, name)) in raw.iter().enumerate() {
+        match r {
+            Some(r) => out[i] = serde_json::from_str(r.get()).map_err(json_problem)?,
+            None => missing.push(FieldError::new(
+                format!("/{name}"),
+                format!("missing required field '{name}'"),
+            )),
+        }
+    }
+    if missing.is_empty() {
+        Ok(out)
+    } else {
+        Err(Problem::invalid(missing))
+    }
+}

@@ -304,3 +304,27 @@ fn observability_of_a_nonlinear_model_with_a_parameter() {
     );
     assert_eq!(out["observability"]["rank"], json!(2));
 }
+
+#[test]
+fn every_missing_section_is_reported_at_once() {
+    let never = std::sync::atomic::AtomicBool::new(false);
+    let p = tacit::job::estimate(br#"{"model": 1}"#, &Default::default(), &never).unwrap_err();
+    assert_eq!(p.status, 422);
+    let pointers: Vec<&str> = p.errors.iter().map(|e| e.pointer.as_str()).collect();
+    assert!(
+        pointers.contains(&"/filter") && pointers.contains(&"/prior"),
+        "{p}"
+    );
+    let p = tacit::job::estimate(
+        br#"{"model": 1, "filter": {"method": "ekf"}, "prior": {}, "measurements": []}"#,
+        &Default::default(),
+        &never,
+    )
+    .unwrap_err();
+    assert!(
+        p.errors
+            .iter()
+            .any(|e| e.pointer == "/model" && e.detail.contains("expected an object")),
+        "{p}"
+    );
+}
