@@ -1,0 +1,58 @@
+#!/usr/bin/env bash
+# Runs examples/client.py against a real `tacit serve` on a free loopback port, so the
+# example in the repository is known to work with the server of the same commit.
+#
+# Usage: tests/client/run.sh [path/to/tacit]
+#   Without an argument, builds with `cargo build --release --locked` and uses
+#   $CARGO_TARGET_DIR/release/tacit (target/release/tacit by default).
+set -euo pipefail
+
+root="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
+cd "$root"
+
+bin="${1:-}"
+if [[ -z "$bin" ]]; then
+    cargo build --release --locked
+    target="${CARGO_TARGET_DIR:-target}"
+    [[ "$target" = /* ]] || target="$root/$target"
+    bin="$target/release/tacit"
+fi
+[[ -x "$bin" ]] || { echo "not an executable: $bin" >&2; exit 1; }
+
+log="$(mktemp "${TMPDIR:-/tmp}/tacit-client.XXXXXX")"
+pid=""
+cleanup() {
+    local status=$?
+    if [[ -n "$pid" ]]; then
+        kill "$pid" 2>/dev/null || true
+        wait "$pid" 2>/dev/null || true
+    fi
+    if [[ $status -ne 0 && -s "$log" ]]; then
+        echo "---- server log (last 40 lines)" >&2
+        tail -n 40 "$log" >&2
+    fi
+    rm -f "$log"
+    exit "$status"
+}
+trap cleanup EXIT
+trap 'exit 130' INT TERM
+
+port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
+env -u TACIT_API_KEYS -u TACIT_API_KEYS_FILE "$bin" serve --addr "127.0.0.1:$port" >"$log" 2>&1 &
+pid=$!
+
+# Wait (at most 20 s) until the server answers /healthz.
+python3 - "$port" <<'EOF'
+import sys, time, urllib.request
+url = f"http://127.0.0.1:{sys.argv[1]}/healthz"
+for _ in range(200):
+    try:
+        with urllib.request.urlopen(url, timeout=1) as r:
+            if r.status == 200:
+                sys.exit(0)
+    except OSError:
+        time.sleep(0.1)
+sys.exit(f"{url} did not answer within 20 s")
+EOF
+
+timeout 120 python3 examples/client.py "http://127.0.0.1:$port"
