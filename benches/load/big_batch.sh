@@ -11,14 +11,20 @@ OUT="$(mktemp /tmp/tacit-batch-out.XXXXXX.json)"
 python3 "$HERE/gen.py" batch "$N" >"$BODY"
 echo "body: $(stat -c %s "$BODY") bytes, $N readings"
 start_server --max-readings "$((N + 1))" --max-body-bytes "$(( $(stat -c %s "$BODY") + 1024 ))"
+load_note
+cpu0=$(server_cpu_secs)
 read -r code secs size < <(curl -s -o "$OUT" -w '%{http_code} %{time_total} %{size_download}\n' \
   -H 'content-type: application/json' --data-binary @"$BODY" "$URL/v1/estimate")
 if [ "$code" != 200 ]; then
   echo "answered $code:" >&2; head -c 2000 "$OUT" >&2; exit 1
 fi
-python3 - "$N" "$secs" "$size" <<'PY'
+cpu1=$(server_cpu_secs)
+python3 - "$N" "$secs" "$size" "$cpu0" "$cpu1" <<'PY'
 import sys
 n, secs, size = int(sys.argv[1]), float(sys.argv[2]), int(sys.argv[3])
+cpu = float(sys.argv[5]) - float(sys.argv[4])
 print(f"{secs:.3f} s end to end, {n / secs:,.0f} readings/s, answer {size:,} bytes")
+print(f"server CPU {cpu:.2f} s ({n / cpu:,.0f} readings per CPU second)")
 PY
+load_note
 rm -f "$BODY" "$OUT"

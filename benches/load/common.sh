@@ -27,3 +27,13 @@ start_server() {
   echo "server did not come up on $URL" >&2
   exit 1
 }
+
+load_note() {
+  # The machine is shared: every figure is printed with the load average beside it.
+  echo "load average: $(cut -d' ' -f1-3 /proc/loadavg) on $(nproc) cores"
+}
+
+server_cpu_secs() {
+  # User + system CPU seconds the server has used so far (from /proc, clock ticks).
+  awk -v hz="$(getconf CLK_TCK)" '{printf "%.2f", ($14 + $15) / hz}' "/proc/$SERVER_PID/stat"
+}

@@ -15,6 +15,7 @@ SAMPLES="$(mktemp /tmp/tacit-rss.XXXXXX.txt)"
   done
 ) &
 SAMPLER=$!
+load_note
 start=$(date +%s.%N)
 python3 "$HERE/gen.py" stream "$LINES" |
   curl -sS -X POST -T - -H 'content-type: application/x-ndjson' "$URL/v1/estimate/stream" |
@@ -43,4 +44,5 @@ print(f"VmRSS: max {max(kb) / 1024:.1f} MB, first quarter max {max(kb[:q]) / 102
 if max(kb) > 100 * 1024:
     sys.exit("FAIL: resident memory above 100 MB")
 PY
+load_note
 rm -f "$SAMPLES"

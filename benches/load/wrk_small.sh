@@ -23,8 +23,15 @@ if [ "$code" != 200 ]; then
   echo "the sample request answered $code:" >&2; cat /tmp/tacit-small.out >&2; exit 1
 fi
 
+load_note
+cpu0=$(server_cpu_secs)
 wrk -t"$THREADS" -c"$CONNECTIONS" -d"$DURATION" --latency -s "$HERE/small_estimate.lua" \
   "$URL/v1/estimate" | tee /tmp/tacit-wrk.txt
+cpu1=$(server_cpu_secs)
+reqs=$(grep -oE '^ +[0-9]+ requests in' /tmp/tacit-wrk.txt | grep -oE '[0-9]+')
+# Server CPU per request: the figure that does not depend on what else the shared machine runs.
+python3 -c "print(f'server CPU per request: {($cpu1 - $cpu0) / $reqs * 1e6:.0f} us')"
+load_note
 if grep -q "Non-2xx" /tmp/tacit-wrk.txt; then
   echo "FAIL: some answers were not 2xx" >&2; exit 1
 fi

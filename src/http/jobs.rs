@@ -1,7 +1,8 @@
 //! Running one job off the async executor: take a job slot or shed with 503, run the work
-//! in `spawn_blocking`, stop it when the client goes away, and turn a panic into a logged
+//! in `spawn_blocking` (or, for a small body, on the compute lane), stop it when the client goes away, and turn a panic into a logged
 //! 500 instead of a dropped connection.
 
+use super::lane::SMALL_BODY;
 use super::problem::{internal, overloaded, problem_response, public};
 use super::state::AppState;
 use crate::config::Limits;
@@ -62,6 +63,17 @@ pub async fn run_job<F>(state: &AppState, route: &str, work: F) -> Response
 where
     F: FnOnce(&Limits, &AtomicBool) -> Result<Done, Problem> + Send + 'static,
 {
+    run_job_sized(state, route, usize::MAX, work).await
+}
+
+/// Like [`run_job`], for a request of `body_len` bytes: a small one runs on the app's
+/// compute lane (cheaper to hand over than `spawn_blocking`) unless the lane is stuck on
+/// slow jobs. Either way the work runs off the executor, under the same slot, cancel flag
+/// and deadline.
+pub async fn run_job_sized<F>(state: &AppState, route: &str, body_len: usize, work: F) -> Response
+where
+    F: FnOnce(&Limits, &AtomicBool) -> Result<Done, Problem> + Send + 'static,
+{
     let Some(slot) = state.try_slot() else {
         state.metrics().record_shed(route);
         return overloaded(state.config().retry_after_secs);
@@ -69,13 +81,26 @@ where
     let guard = CancelOnDrop::new();
     let cancel = guard.flag();
     let st = state.clone();
-    let handle = tokio::task::spawn_blocking(move || {
+    let job = move || {
         // The slot is released only when the work really stops, so a disconnected
         // client's job still counts against the limit until it has noticed the flag.
         let _slot = slot;
         work(st.limits(), &cancel)
-    });
-    let joined = handle.await;
+    };
+    let joined: Result<Result<Done, Problem>, String> =
+        if body_len <= SMALL_BODY && state.lane().open() {
+            match state.lane().run(job).await {
+                Some(Ok(r)) => Ok(r),
+                Some(Err(payload)) => Err(panic_message(&*payload)),
+                None => Err("the compute lane lost the job".to_string()),
+            }
+        } else {
+            match tokio::task::spawn_blocking(job).await {
+                Ok(r) => Ok(r),
+                Err(e) if e.is_panic() => Err(panic_message(&*e.into_panic())),
+                Err(_) => Err("the job was cancelled".to_string()),
+            }
+        };
     drop(guard);
     match joined {
         Ok(Ok(done)) => {
@@ -83,13 +108,8 @@ where
             json_response(done.body)
         }
         Ok(Err(problem)) => problem_response(&public(problem)),
-        Err(e) => {
+        Err(what) => {
             state.metrics().record_panic();
-            let what = if e.is_panic() {
-                panic_message(&*e.into_panic())
-            } else {
-                "the job was cancelled".to_string()
-            };
             tracing::error!(panic = %what, "job panicked; answering 500");
             problem_response(&internal())
         }

@@ -3,6 +3,7 @@
 
 use super::auth::ApiKeys;
 use super::config::ServerConfig;
+use super::lane::Lane;
 use super::metrics::Metrics;
 use crate::config::Limits;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -21,6 +22,7 @@ struct Inner {
     slots: Arc<Semaphore>,
     metrics: Metrics,
     ready: AtomicBool,
+    lane: Lane,
 }
 
 impl AppState {
@@ -34,6 +36,7 @@ impl AppState {
                 slots,
                 metrics: Metrics::new(),
                 ready: AtomicBool::new(true),
+                lane: Lane::new(lane_threads()),
                 config,
             }),
         }
@@ -65,6 +68,11 @@ impl AppState {
         self.inner.slots.clone().try_acquire_owned().ok()
     }
 
+    /// The compute threads for small jobs.
+    pub fn lane(&self) -> &Lane {
+        &self.inner.lane
+    }
+
     /// Whether the server takes new work (`/readyz`).
     pub fn is_ready(&self) -> bool {
         self.inner.ready.load(Ordering::Relaxed)
@@ -74,6 +82,11 @@ impl AppState {
     pub fn set_ready(&self, ready: bool) {
         self.inner.ready.store(ready, Ordering::Relaxed);
     }
+}
+
+/// One lane thread per core: more would only take turns on the same cores.
+fn lane_threads() -> usize {
+    std::thread::available_parallelism().map_or(2, usize::from)
 }
 
 impl std::fmt::Debug for AppState {

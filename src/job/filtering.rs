@@ -99,6 +99,28 @@ impl<'a> Guard<'a> {
     }
 }
 
+/// Pointer of batch line `i`; built only for a line that failed.
+fn line_pointer(i: usize) -> String {
+    format!("/measurements/{i}")
+}
+
+/// A step's problem with its field pointers (relative to the line) put under `base`. The
+/// detail of a 422 names the first pointer, so it is built again from the moved pointers.
+fn problem_under(p: Problem, base: &str) -> Problem {
+    if p.errors.is_empty() || p.type_uri != Problem::invalid(Vec::new()).type_uri {
+        return p;
+    }
+    let errors = p
+        .errors
+        .into_iter()
+        .map(|mut e| {
+            e.pointer.insert_str(0, base);
+            e
+        })
+        .collect();
+    Problem::invalid(errors)
+}
+
 fn line_problem(e: LineError) -> Problem {
     match e {
         LineError::Syntax(msg) => Problem::new(ProblemKind::MalformedJson, msg),
@@ -188,10 +210,9 @@ pub fn run_batch(
     let mut first_pred = true;
     for (i, raw) in lines.iter().enumerate() {
         guard.check(i)?;
-        let base = format!("/measurements/{i}");
         parser
-            .parse(raw.get(), &base, &mut reading)
-            .map_err(line_problem)?;
+            .parse(raw.get(), &mut reading)
+            .map_err(|e| line_problem(e.under(&line_pointer(i))))?;
         write_predictions(
             &run,
             &writer,
@@ -202,7 +223,8 @@ pub fn run_batch(
             &mut first_pred,
         )?;
         let mut predicted = None;
-        run.step_capturing(&reading, &base, smooth.then_some(&mut predicted))?;
+        run.step_capturing(&reading, "", smooth.then_some(&mut predicted))
+            .map_err(|p| problem_under(p, &line_pointer(i)))?;
         let est = run.estimator();
         if smooth {
             let predicted = predicted.map(|(m, p)| (m, p, est.cross().clone()));
@@ -320,7 +342,7 @@ impl Stream {
         })?;
         let model = self.run.model();
         let parser = ReadingParser::new(model, self.run.mode());
-        parser.parse(text, "", &mut self.reading).map_err(|e| {
+        parser.parse(text, &mut self.reading).map_err(|e| {
             let mut p = line_problem(e);
             p.detail = format!("line {line_no}: {}", p.detail);
             p

@@ -151,8 +151,26 @@ struct RawReading<'a> {
 pub enum LineError {
     /// The text is not JSON at all (a 400 for a batch, an error line for a stream).
     Syntax(String),
-    /// Valid JSON that is not a valid reading.
+    /// Valid JSON that is not a valid reading; pointers relative to the line.
     Invalid(Vec<FieldError>),
+}
+
+impl LineError {
+    /// The same error with every pointer put under `base` (e.g. `/measurements/7`).
+    pub fn under(self, base: &str) -> Self {
+        match self {
+            Self::Invalid(errors) => Self::Invalid(
+                errors
+                    .into_iter()
+                    .map(|mut e| {
+                        e.pointer.insert_str(0, base);
+                        e
+                    })
+                    .collect(),
+            ),
+            other => other,
+        }
+    }
 }
 
 /// Parses measurement lines against one model, reusing nothing but the model.
@@ -167,35 +185,47 @@ impl<'m> ReadingParser<'m> {
         Self { model, mode }
     }
 
-    /// Parse one line (JSON text); pointers in errors start with `base` (e.g. `/measurements/7`).
-    pub fn parse(&self, text: &str, base: &str, out: &mut Reading) -> Result<(), LineError> {
+    /// Parse one line (JSON text). Pointers in errors are relative to the line (`/t`,
+    /// `/values/encoder`); a batch puts them under `/measurements/{i}` with
+    /// [`LineError::under`], only once a line has failed.
+    ///
+    /// The line is read with plain serde first. Only a line that fails is read again
+    /// through `serde_path_to_error` to locate the bad field: tracking the path costs
+    /// about as much as the parse itself, and almost every line is fine.
+    pub fn parse(&self, text: &str, out: &mut Reading) -> Result<(), LineError> {
         let mut de = serde_json::Deserializer::from_str(text);
-        let raw: RawReading = match serde_path_to_error::deserialize(&mut de) {
-            Ok(r) => r,
+        let fast = RawReading::deserialize(&mut de).and_then(|raw| de.end().map(|()| raw));
+        let raw = match fast {
+            Ok(raw) => raw,
+            Err(_) => return Err(self.parse_failed(text)),
+        };
+        self.resolve(raw, out).map_err(LineError::Invalid)
+    }
+
+    /// The error of a line that failed the fast parse, read again with path tracking so
+    /// it carries the same pointer and message as ever.
+    fn parse_failed(&self, text: &str) -> LineError {
+        let mut de = serde_json::Deserializer::from_str(text);
+        match serde_path_to_error::deserialize::<_, RawReading>(&mut de) {
             Err(e) => {
                 let path = path_to_pointer(e.path());
                 let inner = e.into_inner();
-                return Err(match inner.classify() {
-                    serde_json::error::Category::Data => LineError::Invalid(vec![FieldError::new(
-                        format!("{base}{path}"),
-                        clean_message(&inner),
-                    )]),
+                match inner.classify() {
+                    serde_json::error::Category::Data => {
+                        LineError::Invalid(vec![FieldError::new(path, clean_message(&inner))])
+                    }
                     _ => LineError::Syntax(inner.to_string()),
-                });
+                }
             }
-        };
-        if let Err(e) = de.end() {
-            return Err(LineError::Syntax(e.to_string()));
+            Ok(_) => match de.end() {
+                Err(e) => LineError::Syntax(e.to_string()),
+                // Both readers take the same input the same way; this is not reached.
+                Ok(()) => LineError::Syntax("the line could not be read".to_string()),
+            },
         }
-        self.resolve(raw, base, out).map_err(LineError::Invalid)
     }
 
-    fn resolve(
-        &self,
-        raw: RawReading<'_>,
-        base: &str,
-        out: &mut Reading,
-    ) -> Result<(), Vec<FieldError>> {
+    fn resolve(&self, raw: RawReading<'_>, out: &mut Reading) -> Result<(), Vec<FieldError>> {
         let m = self.model;
         let mut errs = Vec::new();
         out.sensors.clear();
@@ -203,7 +233,7 @@ impl<'m> ReadingParser<'m> {
         out.std_overrides.clear();
         out.std.clear();
         out.inputs.clear();
-        let tp = || format!("{base}/t");
+        let tp = || "/t".to_string();
         match raw.t {
             RawTime::Num(x) if self.mode == TimeMode::Seconds && x.is_finite() => {
                 out.t = Instant::seconds(x)
@@ -222,7 +252,7 @@ impl<'m> ReadingParser<'m> {
         }
         if let Some(values) = raw.values {
             for (name, v) in values.0 {
-                let p = || format!("{base}/values/{}", escape_token(&name));
+                let p = || format!("/values/{}", escape_token(&name));
                 let Some(si) = m.sensor_index(&name) else {
                     errs.push(FieldError::new(
                         p(),
@@ -290,7 +320,7 @@ impl<'m> ReadingParser<'m> {
         }
         if let Some(inputs) = raw.inputs {
             for (name, v) in inputs.0 {
-                let p = || format!("{base}/inputs/{}", escape_token(&name));
+                let p = || format!("/inputs/{}", escape_token(&name));
                 match (m.input_index(&name), v) {
                     (Some(i), Some(x)) => out.inputs.push((i, x)),
                     (Some(_), None) => {}
@@ -306,7 +336,7 @@ impl<'m> ReadingParser<'m> {
         }
         if let Some(stds) = raw.std {
             for (name, v) in stds.0 {
-                let p = || format!("{base}/std/{}", escape_token(&name));
+                let p = || format!("/std/{}", escape_token(&name));
                 let Some(si) = m.sensor_index(&name) else {
                     errs.push(FieldError::new(p(), format!("unknown sensor '{name}'")));
                     continue;

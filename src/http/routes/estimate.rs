@@ -2,7 +2,7 @@
 
 use super::route::{mount, Route};
 use crate::http::extract::JsonBody;
-use crate::http::jobs::run_job;
+use crate::http::jobs::run_job_sized;
 use crate::http::state::AppState;
 use crate::job;
 use axum::extract::State;
@@ -32,14 +32,14 @@ pub fn router() -> Router<AppState> {
 }
 
 async fn estimate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job(&state, "/v1/estimate", move |limits, cancel| {
+    run_job_sized(&state, "/v1/estimate", body.len(), move |limits, cancel| {
         job::estimate(&body, limits, cancel)
     })
     .await
 }
 
 async fn smooth(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job(&state, "/v1/smooth", move |limits, cancel| {
+    run_job_sized(&state, "/v1/smooth", body.len(), move |limits, cancel| {
         job::smooth(&body, limits, cancel)
     })
     .await
