@@ -34,6 +34,9 @@ pub enum Command {
     Check(FileArgs),
     /// Simulate truth and readings (JSON as for POST /v1/simulate).
     Simulate(FileArgs),
+    /// Run the invented demo plants (crane, water tower, kiln) end to end against the
+    /// service started in-process on a free loopback port, and print what was recovered.
+    Demo(DemoArgs),
 }
 
 /// Limits on what one request may ask; unset flags keep the built-in defaults that
@@ -163,6 +166,18 @@ pub struct FileArgs {
     pub limits: LimitArgs,
 }
 
+/// `tacit demo`.
+#[derive(Debug, Args)]
+pub struct DemoArgs {
+    /// Print the results as one JSON document.
+    #[arg(long)]
+    pub json: bool,
+    /// Instead of running, rebuild each scenario's truth.json and measurements.json from
+    /// the settings and seeds under DIR (default demo-data) with tacit's simulator.
+    #[arg(long, value_name = "DIR", num_args = 0..=1, default_missing_value = "demo-data")]
+    pub regenerate: Option<std::path::PathBuf>,
+}
+
 /// Why a command failed: a problem with the request, or with reading and writing.
 #[derive(Debug)]
 pub enum CliError {
@@ -221,6 +236,7 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
             let cancel = AtomicBool::new(false);
             print_body(&job::simulate(&body, &limits, &cancel)?.body)
         }
+        Command::Demo(a) => demo(&a),
     }
 }
 
@@ -293,6 +309,27 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
         tracing::info!("stopped");
         Ok(())
     })
+}
+
+fn demo(a: &DemoArgs) -> Result<(), CliError> {
+    if let Some(dir) = &a.regenerate {
+        for p in crate::demo::regenerate(dir).map_err(CliError::Other)? {
+            println!("wrote {}", p.display());
+        }
+        println!("rebuild tacit to embed the new files in `tacit demo`");
+        return Ok(());
+    }
+    let reports = crate::demo::run().map_err(CliError::Other)?;
+    if a.json {
+        let text = serde_json::to_vec_pretty(&crate::demo::to_json(&reports))
+            .map_err(|e| CliError::Other(e.to_string()))?;
+        print_body(&text)
+    } else {
+        let mut out = std::io::stdout().lock();
+        out.write_all(crate::demo::render(&reports).as_bytes())?;
+        out.flush()?;
+        Ok(())
+    }
 }
 
 /// An input file (or standard input) behind a buffer whose fill level can be seen.

@@ -11,6 +11,7 @@
 
 pub mod cli;
 pub mod config;
+pub mod demo;
 pub mod diagnostics;
 pub mod dynamics;
 pub mod filter;

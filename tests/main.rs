@@ -3,6 +3,7 @@
 mod support;
 
 mod cli;
+mod demo;
 mod deploy;
 mod estimation;
 mod http_api;
