@@ -19,7 +19,7 @@ if [[ -z "$bin" ]]; then
 fi
 [[ -x "$bin" ]] || { echo "not an executable: $bin" >&2; exit 1; }
 
-log="$(mktemp "${TMPDIR:-/tmp}/tacit-client.XXXXXX")"
+log="$(mktemp)"
 pid=""
 cleanup() {
     local status=$?

@@ -27,7 +27,7 @@ nginx_bin="$(command -v nginx || true)"
 [[ -n "$nginx_bin" ]] || nginx_bin=/usr/sbin/nginx
 [[ -x "$nginx_bin" ]] || { echo "nginx not found (apt-get install -y nginx)" >&2; exit 1; }
 
-work="$(mktemp -d "${TMPDIR:-/tmp}/tacit-multi.XXXXXX")"
+work="$(mktemp -d)"
 pids=()
 cleanup() {
     local status=$?
