@@ -13,7 +13,7 @@
 //! Every random draw comes from a ChaCha20 stream selected by (seed, step, purpose), so a run
 //! split into requests that carry `members` and `step` continues bit for bit.
 
-use crate::filter::linalg::{cholesky, cholesky_psd, solve_lower, symmetrize};
+use crate::filter::linalg::{cholesky, cholesky_psd, solve_lower, symmetric_eigen, symmetrize};
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
 use crate::filter::{Estimator, FilterError};
@@ -69,6 +69,11 @@ pub struct Enkf {
     dtil: Vec<f64>,
     trans: DMatrix<f64>,
     xa: DMatrix<f64>,
+    /// Eigenvalues of the transform's symmetric matrix, and the solver's scratch.
+    lam: Vec<f64>,
+    escr: Vec<f64>,
+    /// G = Ỹ Ỹᵀ of the low-rank form, then its eigenvectors.
+    gbuf: Vec<f64>,
 }
 
 impl Enkf {
@@ -129,6 +134,9 @@ impl Enkf {
             dtil: vec![0.0; mm],
             trans: DMatrix::zeros(nn, nn),
             xa: DMatrix::zeros(nn, n),
+            lam: vec![0.0; nn.max(mm)],
+            escr: vec![0.0; nn.max(mm)],
+            gbuf: vec![0.0; mm * mm],
         };
         f.refresh_moments();
         Ok(f)
@@ -207,17 +215,19 @@ impl Enkf {
                 self.big[(j, i)] = v;
             }
         }
-        let eig = self.big.clone().symmetric_eigen();
-        if eig.eigenvalues.iter().any(|l| !(*l > 0.0)) {
+        // Eigenvectors overwrite `big`.
+        if !symmetric_eigen(self.big.as_mut_slice(), &mut self.lam, &mut self.escr, nn)
+            || self.lam[..nn].iter().any(|l| !(*l > 0.0))
+        {
             return Err(FilterError::NotPositive("ensemble transform matrix"));
         }
         // w̄ = V Λ⁻¹ Vᵀ Ỹᵀ d̃ ; W = √(N−1) V Λ^{-1/2} Vᵀ.
-        let v = &eig.eigenvectors;
+        let v = &self.big;
         for k in 0..nn {
             let ytd: f64 = (0..nn)
                 .map(|j| v[(j, k)] * (0..ma).map(|a| self.yt[(a, j)] * self.dtil[a]).sum::<f64>())
                 .sum();
-            self.gvec[k] = ytd / eig.eigenvalues[k];
+            self.gvec[k] = ytd / self.lam[k];
         }
         for j in 0..nn {
             self.wbar[j] = (0..nn).map(|k| v[(j, k)] * self.gvec[k]).sum();
@@ -227,7 +237,7 @@ impl Enkf {
             for i in 0..nn {
                 self.trans[(i, j)] = c
                     * (0..nn)
-                        .map(|k| v[(i, k)] * v[(j, k)] / eig.eigenvalues[k].sqrt())
+                        .map(|k| v[(i, k)] * v[(j, k)] / self.lam[k].sqrt())
                         .sum::<f64>()
                     + self.wbar[i];
             }
@@ -256,16 +266,19 @@ impl Enkf {
     fn transform_low_rank(&mut self) -> Result<(), FilterError> {
         let (nn, n, ma) = (self.x.nrows(), self.x.ncols(), self.obs.ma);
         let nf = nn as f64;
-        let mut g = DMatrix::zeros(ma, ma);
+        let g = &mut self.gbuf[..ma * ma];
         for b in 0..ma {
             for a in 0..=b {
                 let v: f64 = (0..nn).map(|j| self.yt[(a, j)] * self.yt[(b, j)]).sum();
-                g[(a, b)] = v;
-                g[(b, a)] = v;
+                g[a + b * ma] = v;
+                g[b + a * ma] = v;
             }
         }
-        let eig = g.symmetric_eigen();
-        let scale = eig.eigenvalues.iter().cloned().fold(0.0, f64::max);
+        // Eigenvectors overwrite `gbuf`.
+        if !symmetric_eigen(g, &mut self.lam, &mut self.escr, ma) {
+            return Err(FilterError::NonFinite("ensemble transform matrix"));
+        }
+        let scale = self.lam[..ma].iter().cloned().fold(0.0, f64::max);
         // Anomaly of each member: X'ⱼ = xⱼ − x̄, kept in `xa`.
         for i in 0..n {
             for j in 0..nn {
@@ -274,12 +287,12 @@ impl Enkf {
         }
         self.wbar.fill(0.0);
         for k in 0..ma {
-            let s2 = eig.eigenvalues[k];
+            let s2 = self.lam[k];
             if !(s2 > 1e-14 * scale) {
                 continue;
             }
             let sigma = s2.sqrt();
-            let u = eig.eigenvectors.column(k);
+            let u = &self.gbuf[k * ma..(k + 1) * ma];
             for j in 0..nn {
                 self.gvec[j] = (0..ma).map(|a| self.yt[(a, j)] * u[a]).sum::<f64>() / sigma;
             }
