@@ -15,12 +15,23 @@ pub struct NotPositive {
 
 /// Lower Cholesky factor `L L' = A` of a symmetric positive definite `m × m` matrix.
 /// Only the lower triangle of `a` is read; the strict upper triangle of `l` is zeroed.
+///
+/// Column by column, each earlier column `k` is subtracted from the whole of column `j` at
+/// once (contiguous, so it vectorises); every entry still receives `l_ik l_jk` for
+/// `k = 0, 1, …` in order, so the factor equals the dot-product form bit for bit.
 pub fn cholesky(a: &[f64], l: &mut [f64], m: usize) -> Result<(), NotPositive> {
     for j in 0..m {
-        let mut d = a[j + j * m];
+        let (done, rest) = l.split_at_mut(j * m);
+        let col = &mut rest[..m];
+        col[j..].copy_from_slice(&a[j + j * m..(j + 1) * m]);
         for k in 0..j {
-            d -= l[j + k * m] * l[j + k * m];
+            let lk = &done[k * m..(k + 1) * m];
+            let w = lk[j];
+            for (x, &y) in col[j..].iter_mut().zip(&lk[j..]) {
+                *x -= y * w;
+            }
         }
+        let d = col[j];
         if !(d > 0.0) || !d.is_finite() {
             return Err(NotPositive {
                 column: j,
@@ -28,17 +39,11 @@ pub fn cholesky(a: &[f64], l: &mut [f64], m: usize) -> Result<(), NotPositive> {
             });
         }
         let djj = d.sqrt();
-        l[j + j * m] = djj;
-        for i in (j + 1)..m {
-            let mut s = a[i + j * m];
-            for k in 0..j {
-                s -= l[i + k * m] * l[j + k * m];
-            }
-            l[i + j * m] = s / djj;
+        col[j] = djj;
+        for x in col[j + 1..].iter_mut() {
+            *x /= djj;
         }
-        for i in 0..j {
-            l[i + j * m] = 0.0;
-        }
+        col[..j].fill(0.0);
     }
     Ok(())
 }
@@ -86,13 +91,20 @@ pub fn cholesky_psd(a: &[f64], l: &mut [f64], n: usize) -> Result<(), NotPositiv
 }
 
 /// Solve `L y = b` in place (forward substitution), `L` lower `m × m`.
+///
+/// Column-oriented: once `y_i` is known it is subtracted from every later row, walking down
+/// column `i` of `L` (contiguous, so the loop vectorises and no long chain of dependent
+/// additions forms). Each `y_r` still receives `l_rk y_k` for `k = 0, 1, …` in order, so
+/// the result is the same, bit for bit, as the row-by-row dot-product form.
 pub fn solve_lower(l: &[f64], m: usize, b: &mut [f64]) {
+    let b = &mut b[..m];
     for i in 0..m {
-        let mut s = b[i];
-        for k in 0..i {
-            s -= l[i + k * m] * b[k];
+        let yi = b[i] / l[i + i * m];
+        b[i] = yi;
+        let col = &l[i * m + i + 1..(i + 1) * m];
+        for (br, lr) in b[i + 1..].iter_mut().zip(col) {
+            *br -= lr * yi;
         }
-        b[i] = s / l[i + i * m];
     }
 }
 
@@ -301,13 +313,16 @@ pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], e: &mut [f64], n: usize) ->
             for k in 0..=i {
                 d[k] = at!(k, i + 1) / h;
             }
+            let (left, right) = v.split_at_mut((i + 1) * n);
+            let next = &right[..=i];
             for j in 0..=i {
+                let cj = &mut left[j * n..j * n + i + 1];
                 let mut g = 0.0;
-                for k in 0..=i {
-                    g += at!(k, i + 1) * at!(k, j);
+                for (x, y) in next.iter().zip(cj.iter()) {
+                    g += x * y;
                 }
-                for k in 0..=i {
-                    at!(k, j) -= g * d[k];
+                for (x, dk) in cj.iter_mut().zip(&d[..=i]) {
+                    *x -= g * dk;
                 }
             }
         }
