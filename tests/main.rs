@@ -9,4 +9,5 @@ mod estimation;
 mod http_api;
 mod http_core;
 mod http_errors;
+mod no_alloc;
 mod openapi;

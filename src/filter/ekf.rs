@@ -8,7 +8,7 @@
 //! which stays symmetric positive semi-definite under rounding, then symmetrised.
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
-use crate::filter::linalg::{mul_abt, symmetrize};
+use crate::filter::linalg::{mul_ab, mul_abt, symmetrize};
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
 use crate::filter::{Estimator, FilterError};
@@ -174,7 +174,7 @@ impl Estimator for Ekf {
                 self.a[(i, j)] = if i == j { 1.0 } else { 0.0 } - s;
             }
         }
-        self.a.mul_to(&self.cov, &mut self.t1);
+        mul_ab(&self.a, &self.cov, &mut self.t1);
         mul_abt(&self.t1, &self.a, &mut self.cov);
         // + K R Kᵀ.
         let r = &self.obs.r_acc;

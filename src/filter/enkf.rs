@@ -13,7 +13,7 @@
 //! Every random draw comes from a ChaCha20 stream selected by (seed, step, purpose), so a run
 //! split into requests that carry `members` and `step` continues bit for bit.
 
-use crate::filter::linalg::{cholesky, cholesky_psd, solve_lower, symmetrize};
+use crate::filter::linalg::{cholesky, cholesky_psd, solve_lower, symmetric_eigen, symmetrize};
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
 use crate::filter::{Estimator, FilterError};
@@ -69,6 +69,24 @@ pub struct Enkf {
     dtil: Vec<f64>,
     trans: DMatrix<f64>,
     xa: DMatrix<f64>,
+    // Contiguous scratch so that sums over members run with the output index innermost
+    // (vectorised, no long chain of dependent additions); each output still adds its terms
+    // in member order, so results are the same bit for bit as plain dot products.
+    /// Member anomalies, state-major: `anom[i + k n] = x_ki − x̄_i`.
+    anom: Vec<f64>,
+    /// Predicted-reading anomalies, row-major per member: `za[r + k m] = y_rk − ȳ_r`.
+    za: Vec<f64>,
+    /// Ỹ transposed: `ytt[j + a N] = Ỹ_aj`.
+    ytt: Vec<f64>,
+    /// √λ of the transform's eigenvalues.
+    sq: Vec<f64>,
+    /// Running sums, one per output of the innermost loop.
+    acc: Vec<f64>,
+    /// Eigenvalues of the transform's symmetric matrix, and the solver's scratch.
+    lam: Vec<f64>,
+    escr: Vec<f64>,
+    /// G = Ỹ Ỹᵀ of the low-rank form, then its eigenvectors.
+    gbuf: Vec<f64>,
 }
 
 impl Enkf {
@@ -129,6 +147,14 @@ impl Enkf {
             dtil: vec![0.0; mm],
             trans: DMatrix::zeros(nn, nn),
             xa: DMatrix::zeros(nn, n),
+            anom: vec![0.0; n * nn],
+            za: vec![0.0; mm * nn],
+            ytt: vec![0.0; nn * mm],
+            sq: vec![0.0; nn],
+            acc: vec![0.0; n.max(mm).max(nn)],
+            lam: vec![0.0; nn.max(mm)],
+            escr: vec![0.0; nn.max(mm)],
+            gbuf: vec![0.0; mm * mm],
         };
         f.refresh_moments();
         Ok(f)
@@ -140,17 +166,37 @@ impl Enkf {
         for i in 0..n {
             self.mean[i] = self.x.column(i).iter().sum::<f64>() / nn as f64;
         }
+        self.fill_anomalies();
+        let a = &self.anom;
         for j in 0..n {
+            // Σₖ (x_ki − x̄_i)(x_kj − x̄_j) for every i ≤ j at once (starting from −0.0,
+            // the neutral element `Iterator::sum` starts from).
+            let acc = &mut self.acc[..=j];
+            acc.fill(-0.0);
+            for k in 0..nn {
+                let w = a[j + k * n];
+                for (s, &ai) in acc.iter_mut().zip(&a[k * n..k * n + j + 1]) {
+                    *s += ai * w;
+                }
+            }
             for i in 0..=j {
-                let (mi, mj) = (self.mean[i], self.mean[j]);
-                let s: f64 = (0..nn)
-                    .map(|k| (self.x[(k, i)] - mi) * (self.x[(k, j)] - mj))
-                    .sum::<f64>()
-                    / (nn as f64 - 1.0);
+                let s = acc[i] / (nn as f64 - 1.0);
                 self.cov[(i, j)] = s;
                 self.cov[(j, i)] = s;
             }
         }
+    }
+
+    /// `anom[i + k n] = x_ki − x̄_i` from the current members and mean.
+    fn fill_anomalies(&mut self) {
+        let (nn, n) = (self.x.nrows(), self.x.ncols());
+        for i in 0..n {
+            let m = self.mean[i];
+            for (k, &v) in self.x.column(i).iter().enumerate() {
+                self.anom[i + k * n] = v - m;
+            }
+        }
+        debug_assert_eq!(self.anom.len(), n * nn);
     }
 
     fn perturbed(&mut self) {
@@ -198,47 +244,81 @@ impl Enkf {
         if ma < nn && !self.always_full {
             return self.transform_low_rank();
         }
-        // A = (N−1) I + ỸᵀỸ.
+        // A = (N−1) I + ỸᵀỸ, column j for all i ≤ j at once from Ỹ transposed.
+        for a in 0..ma {
+            for j in 0..nn {
+                self.ytt[j + a * nn] = self.yt[(a, j)];
+            }
+        }
         for j in 0..nn {
+            let acc = &mut self.acc[..=j];
+            acc.fill(-0.0);
+            for a in 0..ma {
+                let w = self.ytt[j + a * nn];
+                for (s, &yi) in acc.iter_mut().zip(&self.ytt[a * nn..a * nn + j + 1]) {
+                    *s += yi * w;
+                }
+            }
             for i in 0..=j {
-                let s: f64 = (0..ma).map(|a| self.yt[(a, i)] * self.yt[(a, j)]).sum();
-                let v = s + if i == j { nf - 1.0 } else { 0.0 };
+                let v = acc[i] + if i == j { nf - 1.0 } else { 0.0 };
                 self.big[(i, j)] = v;
                 self.big[(j, i)] = v;
             }
         }
-        let eig = self.big.clone().symmetric_eigen();
-        if eig.eigenvalues.iter().any(|l| !(*l > 0.0)) {
+        // Eigenvectors overwrite `big`.
+        if !symmetric_eigen(self.big.as_mut_slice(), &mut self.lam, &mut self.escr, nn)
+            || self.lam[..nn].iter().any(|l| !(*l > 0.0))
+        {
             return Err(FilterError::NotPositive("ensemble transform matrix"));
         }
         // w̄ = V Λ⁻¹ Vᵀ Ỹᵀ d̃ ; W = √(N−1) V Λ^{-1/2} Vᵀ.
-        let v = &eig.eigenvectors;
+        let v = &self.big;
+        // Ỹᵀ d̃ once (it does not depend on k), kept in `sq` until the square roots below.
+        for j in 0..nn {
+            self.sq[j] = (0..ma).map(|a| self.yt[(a, j)] * self.dtil[a]).sum::<f64>();
+        }
         for k in 0..nn {
-            let ytd: f64 = (0..nn)
-                .map(|j| v[(j, k)] * (0..ma).map(|a| self.yt[(a, j)] * self.dtil[a]).sum::<f64>())
-                .sum();
-            self.gvec[k] = ytd / eig.eigenvalues[k];
+            let ytd: f64 = (0..nn).map(|j| v[(j, k)] * self.sq[j]).sum();
+            self.gvec[k] = ytd / self.lam[k];
         }
         for j in 0..nn {
             self.wbar[j] = (0..nn).map(|k| v[(j, k)] * self.gvec[k]).sum();
         }
+        // T(i, j) = c Σₗ vᵢₗ vⱼₗ / √λₗ + w̄ᵢ, stored transposed (`trans[(j, i)] = T(i, j)`)
+        // so that the next product runs down contiguous columns.
         let c = (nf - 1.0).sqrt();
-        for j in 0..nn {
-            for i in 0..nn {
-                self.trans[(i, j)] = c
-                    * (0..nn)
-                        .map(|k| v[(i, k)] * v[(j, k)] / eig.eigenvalues[k].sqrt())
-                        .sum::<f64>()
-                    + self.wbar[i];
+        for l in 0..nn {
+            self.sq[l] = self.lam[l].sqrt();
+        }
+        for i in 0..nn {
+            let acc = &mut self.acc[..nn];
+            acc.fill(-0.0);
+            for l in 0..nn {
+                // One division per (i, l) rather than per entry.
+                let f = v[(i, l)] / self.sq[l];
+                // Plain slices (not matrix column iterators) so the loop vectorises.
+                for (x, &vj) in acc.iter_mut().zip(&v.as_slice()[l * nn..(l + 1) * nn]) {
+                    *x += f * vj;
+                }
+            }
+            for j in 0..nn {
+                self.trans[(j, i)] = c * acc[j] + self.wbar[i];
             }
         }
-        // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j).
-        for j in 0..nn {
-            for i in 0..n {
-                self.xa[(j, i)] = self.mean[i]
-                    + (0..nn)
-                        .map(|k| (self.x[(k, i)] - self.mean[i]) * self.trans[(k, j)])
-                        .sum::<f64>();
+        // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j), for all members j at once.
+        for i in 0..n {
+            let acc = &mut self.acc[..nn];
+            acc.fill(-0.0);
+            let m = self.mean[i];
+            for k in 0..nn {
+                let w = self.x[(k, i)] - m;
+                let tk = &self.trans.as_slice()[k * nn..(k + 1) * nn];
+                for (x, &t) in acc.iter_mut().zip(tk) {
+                    *x += w * t;
+                }
+            }
+            for j in 0..nn {
+                self.xa[(j, i)] = m + acc[j];
             }
         }
         self.x.copy_from(&self.xa);
@@ -256,16 +336,19 @@ impl Enkf {
     fn transform_low_rank(&mut self) -> Result<(), FilterError> {
         let (nn, n, ma) = (self.x.nrows(), self.x.ncols(), self.obs.ma);
         let nf = nn as f64;
-        let mut g = DMatrix::zeros(ma, ma);
+        let g = &mut self.gbuf[..ma * ma];
         for b in 0..ma {
             for a in 0..=b {
                 let v: f64 = (0..nn).map(|j| self.yt[(a, j)] * self.yt[(b, j)]).sum();
-                g[(a, b)] = v;
-                g[(b, a)] = v;
+                g[a + b * ma] = v;
+                g[b + a * ma] = v;
             }
         }
-        let eig = g.symmetric_eigen();
-        let scale = eig.eigenvalues.iter().cloned().fold(0.0, f64::max);
+        // Eigenvectors overwrite `gbuf`.
+        if !symmetric_eigen(g, &mut self.lam, &mut self.escr, ma) {
+            return Err(FilterError::NonFinite("ensemble transform matrix"));
+        }
+        let scale = self.lam[..ma].iter().cloned().fold(0.0, f64::max);
         // Anomaly of each member: X'ⱼ = xⱼ − x̄, kept in `xa`.
         for i in 0..n {
             for j in 0..nn {
@@ -274,12 +357,12 @@ impl Enkf {
         }
         self.wbar.fill(0.0);
         for k in 0..ma {
-            let s2 = eig.eigenvalues[k];
+            let s2 = self.lam[k];
             if !(s2 > 1e-14 * scale) {
                 continue;
             }
             let sigma = s2.sqrt();
-            let u = eig.eigenvectors.column(k);
+            let u = &self.gbuf[k * ma..(k + 1) * ma];
             for j in 0..nn {
                 self.gvec[j] = (0..ma).map(|a| self.yt[(a, j)] * u[a]).sum::<f64>() / sigma;
             }
@@ -394,24 +477,51 @@ impl Estimator for Enkf {
             self.ybar[r] = (0..nn).map(|k| zs[r * nn + k]).sum::<f64>() / nf;
             self.obs.zhat[r] = self.ybar[r];
         }
-        for c in 0..m {
-            for r in 0..m {
-                self.obs.s[r + c * m] = (0..nn)
-                    .map(|k| (zs[r * nn + k] - self.ybar[r]) * (zs[c * nn + k] - self.ybar[c]))
-                    .sum::<f64>()
-                    / (nf - 1.0);
+        for r in 0..m {
+            for k in 0..nn {
+                self.za[r + k * m] = zs[r * nn + k] - self.ybar[r];
             }
-            for i in 0..n {
-                self.obs.c[i + c * n] = (0..nn)
-                    .map(|k| (self.x[(k, i)] - self.mean[i]) * (zs[c * nn + k] - self.ybar[c]))
-                    .sum::<f64>()
-                    / (nf - 1.0);
+        }
+        // The transform needs only S; the perturbed update also needs C = Cov(x, y) for K.
+        let need_c = self.cfg.update == EnsembleUpdate::Perturbed;
+        if need_c {
+            self.fill_anomalies();
+        }
+        let za = &self.za[..m * nn];
+        for c in 0..m {
+            let acc = &mut self.acc[..m];
+            acc.fill(-0.0);
+            for k in 0..nn {
+                let w = za[c + k * m];
+                for (s, &zr) in acc.iter_mut().zip(&za[k * m..(k + 1) * m]) {
+                    *s += zr * w;
+                }
+            }
+            for r in 0..m {
+                self.obs.s[r + c * m] = acc[r] / (nf - 1.0);
+            }
+            if need_c {
+                let acc = &mut self.acc[..n];
+                acc.fill(-0.0);
+                for k in 0..nn {
+                    let w = za[c + k * m];
+                    for (s, &ai) in acc.iter_mut().zip(&self.anom[k * n..(k + 1) * n]) {
+                        *s += ai * w;
+                    }
+                }
+                for i in 0..n {
+                    self.obs.c[i + c * n] = acc[i] / (nf - 1.0);
+                }
             }
         }
         if !self.obs.gate(gate)? {
             return Ok(false);
         }
-        self.obs.gain()?;
+        if need_c {
+            self.obs.gain()?;
+        } else {
+            self.obs.factor()?;
+        }
         let ma = self.obs.ma;
         cholesky(&self.obs.r_acc[..ma * ma], &mut self.lr[..ma * ma], ma)
             .map_err(|_| FilterError::NotPositive("reading noise"))?;

@@ -15,12 +15,23 @@ pub struct NotPositive {
 
 /// Lower Cholesky factor `L L' = A` of a symmetric positive definite `m × m` matrix.
 /// Only the lower triangle of `a` is read; the strict upper triangle of `l` is zeroed.
+///
+/// Column by column, each earlier column `k` is subtracted from the whole of column `j` at
+/// once (contiguous, so it vectorises); every entry still receives `l_ik l_jk` for
+/// `k = 0, 1, …` in order, so the factor equals the dot-product form bit for bit.
 pub fn cholesky(a: &[f64], l: &mut [f64], m: usize) -> Result<(), NotPositive> {
     for j in 0..m {
-        let mut d = a[j + j * m];
+        let (done, rest) = l.split_at_mut(j * m);
+        let col = &mut rest[..m];
+        col[j..].copy_from_slice(&a[j + j * m..(j + 1) * m]);
         for k in 0..j {
-            d -= l[j + k * m] * l[j + k * m];
+            let lk = &done[k * m..(k + 1) * m];
+            let w = lk[j];
+            for (x, &y) in col[j..].iter_mut().zip(&lk[j..]) {
+                *x -= y * w;
+            }
         }
+        let d = col[j];
         if !(d > 0.0) || !d.is_finite() {
             return Err(NotPositive {
                 column: j,
@@ -28,17 +39,11 @@ pub fn cholesky(a: &[f64], l: &mut [f64], m: usize) -> Result<(), NotPositive> {
             });
         }
         let djj = d.sqrt();
-        l[j + j * m] = djj;
-        for i in (j + 1)..m {
-            let mut s = a[i + j * m];
-            for k in 0..j {
-                s -= l[i + k * m] * l[j + k * m];
-            }
-            l[i + j * m] = s / djj;
+        col[j] = djj;
+        for x in col[j + 1..].iter_mut() {
+            *x /= djj;
         }
-        for i in 0..j {
-            l[i + j * m] = 0.0;
-        }
+        col[..j].fill(0.0);
     }
     Ok(())
 }
@@ -86,13 +91,20 @@ pub fn cholesky_psd(a: &[f64], l: &mut [f64], n: usize) -> Result<(), NotPositiv
 }
 
 /// Solve `L y = b` in place (forward substitution), `L` lower `m × m`.
+///
+/// Column-oriented: once `y_i` is known it is subtracted from every later row, walking down
+/// column `i` of `L` (contiguous, so the loop vectorises and no long chain of dependent
+/// additions forms). Each `y_r` still receives `l_rk y_k` for `k = 0, 1, …` in order, so
+/// the result is the same, bit for bit, as the row-by-row dot-product form.
 pub fn solve_lower(l: &[f64], m: usize, b: &mut [f64]) {
+    let b = &mut b[..m];
     for i in 0..m {
-        let mut s = b[i];
-        for k in 0..i {
-            s -= l[i + k * m] * b[k];
+        let yi = b[i] / l[i + i * m];
+        b[i] = yi;
+        let col = &l[i * m + i + 1..(i + 1) * m];
+        for (br, lr) in b[i + 1..].iter_mut().zip(col) {
+            *br -= lr * yi;
         }
-        b[i] = s / l[i + i * m];
     }
 }
 
@@ -172,6 +184,27 @@ pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     }
 }
 
+/// `out = a b` for `a: r × k`, `b: k × c` (no allocation: nalgebra's product hands
+/// matrices above 5 × 5 to a kernel that allocates a packing buffer on every call).
+/// Each entry sums `a_il b_lj` over `l` in order; the loop over `i` is innermost so
+/// independent entries proceed side by side.
+pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
+    let (r, k, c) = (a.nrows(), a.ncols(), b.ncols());
+    debug_assert_eq!(b.nrows(), k);
+    let (a, b) = (a.as_slice(), b.as_slice());
+    let o = out.as_mut_slice();
+    for j in 0..c {
+        let oj = &mut o[j * r..(j + 1) * r];
+        oj.fill(0.0);
+        for l in 0..k {
+            let w = b[l + j * k];
+            for (x, &y) in oj.iter_mut().zip(&a[l * r..(l + 1) * r]) {
+                *x += y * w;
+            }
+        }
+    }
+}
+
 /// `p ← φ p φᵀ + q` through the scratch `tmp` (all `n × n`), then symmetrised.
 pub fn congruence_plus(
     phi: &DMatrix<f64>,
@@ -179,10 +212,219 @@ pub fn congruence_plus(
     q: &DMatrix<f64>,
     tmp: &mut DMatrix<f64>,
 ) {
-    phi.mul_to(p, tmp);
+    mul_ab(phi, p, tmp);
     mul_abt(tmp, phi, p);
     *p += q;
     symmetrize(p);
+}
+
+/// Eigen-decomposition of a symmetric `n × n` matrix held column-major in `v` (only its
+/// values are read; it is overwritten with the orthonormal eigenvectors as columns),
+/// eigenvalues ascending into `d`, `e` (length n) as scratch. Householder reduction to
+/// tridiagonal form, then implicit QL with Wilkinson-type shifts (Wilkinson & Reinsch 1971,
+/// *Handbook for Automatic Computation* II, contributions II/2 and II/3, `tred2`, `tql2`).
+/// Returns false when the QL iteration fails to converge or a value is not finite.
+///
+/// It replaces nalgebra's `symmetric_eigen`, which allocates its factors on every call,
+/// in the ensemble transform that runs once per reading line.
+pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], e: &mut [f64], n: usize) -> bool {
+    if n == 0 {
+        return true;
+    }
+    if !v[..n * n].iter().all(|x| x.is_finite()) {
+        return false;
+    }
+    // V(i, j) = v[i + j n].
+    macro_rules! at {
+        ($i:expr, $j:expr) => {
+            v[$i + $j * n]
+        };
+    }
+    // Householder tridiagonalisation.
+    for j in 0..n {
+        d[j] = at!(n - 1, j);
+    }
+    for i in (1..n).rev() {
+        let mut scale = 0.0;
+        let mut h = 0.0;
+        for k in 0..i {
+            scale += d[k].abs();
+        }
+        if scale == 0.0 {
+            e[i] = d[i - 1];
+            for j in 0..i {
+                d[j] = at!(i - 1, j);
+                at!(i, j) = 0.0;
+                at!(j, i) = 0.0;
+            }
+        } else {
+            for k in 0..i {
+                d[k] /= scale;
+                h += d[k] * d[k];
+            }
+            let mut f = d[i - 1];
+            let mut g = h.sqrt();
+            if f > 0.0 {
+                g = -g;
+            }
+            e[i] = scale * g;
+            h -= f * g;
+            d[i - 1] = f - g;
+            for j in 0..i {
+                e[j] = 0.0;
+            }
+            for j in 0..i {
+                f = d[j];
+                at!(j, i) = f;
+                g = e[j] + at!(j, j) * f;
+                for k in (j + 1)..i {
+                    g += at!(k, j) * d[k];
+                    e[k] += at!(k, j) * f;
+                }
+                e[j] = g;
+            }
+            f = 0.0;
+            for j in 0..i {
+                e[j] /= h;
+                f += e[j] * d[j];
+            }
+            let hh = f / (h + h);
+            for j in 0..i {
+                e[j] -= hh * d[j];
+            }
+            for j in 0..i {
+                f = d[j];
+                g = e[j];
+                for k in j..i {
+                    at!(k, j) -= f * e[k] + g * d[k];
+                }
+                d[j] = at!(i - 1, j);
+                at!(i, j) = 0.0;
+            }
+        }
+        d[i] = h;
+    }
+    // Accumulate the transformations.
+    for i in 0..n - 1 {
+        at!(n - 1, i) = at!(i, i);
+        at!(i, i) = 1.0;
+        let h = d[i + 1];
+        if h != 0.0 {
+            for k in 0..=i {
+                d[k] = at!(k, i + 1) / h;
+            }
+            let (left, right) = v.split_at_mut((i + 1) * n);
+            let next = &right[..=i];
+            for j in 0..=i {
+                let cj = &mut left[j * n..j * n + i + 1];
+                let mut g = 0.0;
+                for (x, y) in next.iter().zip(cj.iter()) {
+                    g += x * y;
+                }
+                for (x, dk) in cj.iter_mut().zip(&d[..=i]) {
+                    *x -= g * dk;
+                }
+            }
+        }
+        for k in 0..=i {
+            at!(k, i + 1) = 0.0;
+        }
+    }
+    for j in 0..n {
+        d[j] = at!(n - 1, j);
+        at!(n - 1, j) = 0.0;
+    }
+    at!(n - 1, n - 1) = 1.0;
+    e[0] = 0.0;
+    // Implicit QL on the tridiagonal (d, e).
+    for i in 1..n {
+        e[i - 1] = e[i];
+    }
+    e[n - 1] = 0.0;
+    let mut f = 0.0;
+    let mut tst1: f64 = 0.0;
+    let eps = f64::EPSILON;
+    for l in 0..n {
+        tst1 = tst1.max(d[l].abs() + e[l].abs());
+        let mut m = l;
+        while m < n - 1 && e[m].abs() > eps * tst1 {
+            m += 1;
+        }
+        if m > l {
+            let mut iter = 0;
+            loop {
+                iter += 1;
+                if iter > 60 {
+                    return false;
+                }
+                let mut g = d[l];
+                let mut p = (d[l + 1] - g) / (2.0 * e[l]);
+                let mut r = p.hypot(1.0);
+                if p < 0.0 {
+                    r = -r;
+                }
+                d[l] = e[l] / (p + r);
+                d[l + 1] = e[l] * (p + r);
+                let dl1 = d[l + 1];
+                let mut h = g - d[l];
+                for di in d.iter_mut().take(n).skip(l + 2) {
+                    *di -= h;
+                }
+                f += h;
+                p = d[m];
+                let (mut c, mut c2, mut c3) = (1.0, 1.0, 1.0);
+                let el1 = e[l + 1];
+                let (mut s, mut s2) = (0.0, 0.0);
+                for i in (l..m).rev() {
+                    c3 = c2;
+                    c2 = c;
+                    s2 = s;
+                    g = c * e[i];
+                    h = c * p;
+                    r = p.hypot(e[i]);
+                    e[i + 1] = s * r;
+                    s = e[i] / r;
+                    c = p / r;
+                    p = c * d[i] - s * g;
+                    d[i + 1] = h + s * (c * g + s * d[i]);
+                    let (lo, hi) = v.split_at_mut((i + 1) * n);
+                    let (ci, ci1) = (&mut lo[i * n..], &mut hi[..n]);
+                    for (a, b) in ci.iter_mut().zip(ci1.iter_mut()) {
+                        let hk = *b;
+                        *b = s * *a + c * hk;
+                        *a = c * *a - s * hk;
+                    }
+                }
+                p = -s * s2 * c3 * el1 * e[l] / dl1;
+                e[l] = s * p;
+                d[l] = c * p;
+                if !(e[l].abs() > eps * tst1) {
+                    break;
+                }
+            }
+        }
+        d[l] += f;
+        e[l] = 0.0;
+    }
+    // Ascending order.
+    for i in 0..n - 1 {
+        let mut k = i;
+        let mut p = d[i];
+        for j in (i + 1)..n {
+            if d[j] < p {
+                k = j;
+                p = d[j];
+            }
+        }
+        if k != i {
+            d[k] = d[i];
+            d[i] = p;
+            for j in 0..n {
+                v.swap(j + i * n, j + k * n);
+            }
+        }
+    }
+    d[..n].iter().all(|x| x.is_finite())
 }
 
 #[cfg(test)]
@@ -233,5 +475,39 @@ mod tests {
         let bad = [1.0, 2.0, 2.0, 1.0];
         let mut l2 = [0.0; 4];
         assert_eq!(cholesky_psd(&bad, &mut l2, 2).unwrap_err().column, 1);
+    }
+
+    #[test]
+    fn symmetric_eigenpairs_satisfy_their_definition() {
+        // A v = λ v and Vᵀ V = I to rounding (definition of an orthonormal eigenbasis), on
+        // a matrix with a repeated eigenvalue ((N−1) I + a rank-3 term, the shape the
+        // ensemble transform factors) and on sizes 1 and 2.
+        for n in [1usize, 2, 9] {
+            let y: Vec<f64> = (0..3 * n)
+                .map(|k| ((k * 7 + 3) % 11) as f64 / 5.0 - 1.0)
+                .collect();
+            let mut a = vec![0.0; n * n];
+            for j in 0..n {
+                for i in 0..n {
+                    a[i + j * n] = (0..3).map(|k| y[k + i * 3] * y[k + j * 3]).sum::<f64>()
+                        + if i == j { 8.0 } else { 0.0 };
+                }
+            }
+            let (mut v, mut d, mut e) = (a.clone(), vec![0.0; n], vec![0.0; n]);
+            assert!(symmetric_eigen(&mut v, &mut d, &mut e, n));
+            assert!(d.windows(2).all(|w| w[0] <= w[1]), "ascending");
+            let tol = 64.0 * n as f64 * f64::EPSILON * d[n - 1].abs();
+            for j in 0..n {
+                for i in 0..n {
+                    let av: f64 = (0..n).map(|k| a[i + k * n] * v[k + j * n]).sum();
+                    assert!((av - d[j] * v[i + j * n]).abs() < tol, "A v = λ v");
+                    let vv: f64 = (0..n).map(|k| v[k + i * n] * v[k + j * n]).sum();
+                    let id = if i == j { 1.0 } else { 0.0 };
+                    assert!((vv - id).abs() < 64.0 * n as f64 * f64::EPSILON, "VᵀV = I");
+                }
+            }
+        }
+        let mut bad = [1.0, f64::NAN, f64::NAN, 1.0];
+        assert!(!symmetric_eigen(&mut bad, &mut [0.0; 2], &mut [0.0; 2], 2));
     }
 }

@@ -190,17 +190,31 @@ impl ObsSpace {
         Ok(ma > 0)
     }
 
-    /// Factor S over the accepted rows, form Kᵀ = S⁻¹ Cᵀ and the joint NIS.
-    pub fn gain(&mut self) -> Result<(), FilterError> {
-        let (ma, n) = (self.ma, self.n);
-        cholesky(&self.s_acc[..ma * ma], &mut self.l_acc[..ma * ma], ma)
-            .map_err(|_| FilterError::NotPositive("innovation covariance"))?;
+    /// Factor S over the accepted rows (into `l_acc`) and form the joint NIS; enough for
+    /// updates that do not use the gain (the ensemble transform).
+    pub fn factor(&mut self) -> Result<(), FilterError> {
+        let ma = self.ma;
+        if self.checks.len() == 1 && self.checks[0].dim == ma {
+            // One sensor holds every accepted row: S is the block the gate has just
+            // factored, so its factor (the same numbers) is reused.
+            self.l_acc[..ma * ma].copy_from_slice(&self.block_l[..ma * ma]);
+        } else {
+            cholesky(&self.s_acc[..ma * ma], &mut self.l_acc[..ma * ma], ma)
+                .map_err(|_| FilterError::NotPositive("innovation covariance"))?;
+        }
         self.joint_nis = mahalanobis(
             &self.l_acc[..ma * ma],
             ma,
             &self.nu_acc[..ma],
             &mut self.tmp,
         );
+        Ok(())
+    }
+
+    /// [`ObsSpace::factor`], then the gain transposed Kᵀ = S⁻¹ Cᵀ.
+    pub fn gain(&mut self) -> Result<(), FilterError> {
+        let (ma, n) = (self.ma, self.n);
+        self.factor()?;
         // Kᵀ (ma × n) = S⁻¹ Cᵀ: column i of Kᵀ solves S k = row i of C.
         for i in 0..n {
             for a in 0..ma {

@@ -357,7 +357,7 @@ impl Predictor {
                     }
                     congruence_plus(matrix, cov, &q, &mut self.tmp);
                     if let Some(p) = phi.as_deref_mut() {
-                        matrix.mul_to(p, &mut self.tmp);
+                        crate::filter::linalg::mul_ab(matrix, p, &mut self.tmp);
                         p.copy_from(&self.tmp);
                     }
                 }

@@ -1,0 +1,42 @@
+//! Unscented Kalman filter throughput on a nonlinear discrete map: a survey cart in the
+//! plane ([x, y, heading, speed], `next` map with cos/sin of the heading) read by one range
+//! beacon sqrt(x² + y²). Nine sigma points (n = 4), formulas evaluated over all points at once.
+//! Readings built once; 10⁵ steps per iteration from a fresh run. Target (issue 2):
+//! ≥ 2·10⁵ steps/s on one core.
+
+// `criterion_group!` defines an undocumented public function.
+#![allow(missing_docs)]
+
+mod support;
+
+use criterion::{criterion_group, criterion_main, BatchSize, Criterion, Throughput};
+use std::time::Duration;
+use support::{cart, cart_readings, run_all};
+
+const STEPS: usize = 100_000;
+
+fn ukf(c: &mut Criterion) {
+    let setup = cart("ukf");
+    // dt = 0.1 s, beacon noise seed 31.
+    let readings = cart_readings(STEPS, 0.1, 31);
+    let mut g = c.benchmark_group("ukf");
+    g.throughput(Throughput::Elements(STEPS as u64));
+    g.bench_function("ukf_n4_next_range_steps1e5", |b| {
+        b.iter_batched(
+            || setup.run(),
+            |mut run| {
+                run_all(&mut run, &readings);
+                run
+            },
+            BatchSize::PerIteration,
+        )
+    });
+    g.finish();
+}
+
+criterion_group! {
+    name = benches;
+    config = Criterion::default().sample_size(10).measurement_time(Duration::from_secs(4)).warm_up_time(Duration::from_secs(1));
+    targets = ukf
+}
+criterion_main!(benches);
