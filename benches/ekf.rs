@@ -9,9 +9,9 @@
 
 mod support;
 
-use criterion::{criterion_group, criterion_main, BatchSize, Criterion, Throughput};
+use criterion::{criterion_group, criterion_main, Criterion};
 use std::time::Duration;
-use support::{cart, cart_readings, run_all};
+use support::{cart, cart_readings, timed};
 
 const STEPS: usize = 100_000;
 
@@ -19,19 +19,7 @@ fn ekf(c: &mut Criterion) {
     let setup = cart("ekf");
     // dt = 0.1 s, beacon noise seed 31.
     let readings = cart_readings(STEPS, 0.1, 31);
-    let mut g = c.benchmark_group("ekf");
-    g.throughput(Throughput::Elements(STEPS as u64));
-    g.bench_function("ekf_n4_next_range_steps1e5", |b| {
-        b.iter_batched(
-            || setup.run(),
-            |mut run| {
-                run_all(&mut run, &readings);
-                run
-            },
-            BatchSize::PerIteration,
-        )
-    });
-    g.finish();
+    timed(c, "ekf", "ekf_n4_next_range_steps1e5", &setup, &readings);
 }
 
 criterion_group! {

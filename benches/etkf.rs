@@ -10,34 +10,21 @@
 
 mod support;
 
-use criterion::{criterion_group, criterion_main, BatchSize, Criterion, Throughput};
+use criterion::{criterion_group, criterion_main, Criterion};
 use std::time::Duration;
-use support::{lorenz96, lorenz96_readings, run_all};
+use support::{lorenz96, lorenz96_readings, timed};
 
 const CYCLES: usize = 1_000;
 
 fn etkf(c: &mut Criterion) {
     // Reading noise seed 96.
     let readings = lorenz96_readings(CYCLES, 96);
-    let mut g = c.benchmark_group("etkf");
-    g.throughput(Throughput::Elements(CYCLES as u64));
     for (name, h) in [
         ("etkf_n40_m40_rk4h05_cycles1e3", 0.05),
         ("etkf_n40_m40_rk4h01_cycles1e3", 0.01),
     ] {
-        let setup = lorenz96(h);
-        g.bench_function(name, |b| {
-            b.iter_batched(
-                || setup.run(),
-                |mut run| {
-                    run_all(&mut run, &readings);
-                    run
-                },
-                BatchSize::PerIteration,
-            )
-        });
+        timed(c, "etkf", name, &lorenz96(h), &readings);
     }
-    g.finish();
 }
 
 criterion_group! {

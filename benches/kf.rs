@@ -10,44 +10,41 @@
 
 mod support;
 
-use criterion::{criterion_group, criterion_main, BatchSize, Criterion, Throughput};
+use criterion::{criterion_group, criterion_main, Criterion};
 use std::time::Duration;
-use support::{cv1, cv1_readings, cv3, cv3_readings, run_all, Setup};
-use tacit::spec::reading::Reading;
+use support::{cv1, cv1_readings, cv3, cv3_readings, timed};
 
 const STEPS: usize = 100_000;
-
-fn timed(c: &mut Criterion, name: &str, setup: &Setup, readings: &[Reading]) {
-    let mut g = c.benchmark_group("kf");
-    g.throughput(Throughput::Elements(readings.len() as u64));
-    g.bench_function(name, |b| {
-        b.iter_batched(
-            || setup.run(),
-            |mut run| {
-                run_all(&mut run, readings);
-                run
-            },
-            BatchSize::PerIteration,
-        )
-    });
-    g.finish();
-}
 
 fn kf(c: &mut Criterion) {
     // dt = 0.1 s with times k·0.1 as a client sends them (seed 21 for the gauge noise).
     let dt = 0.1;
     let r1 = cv1_readings(STEPS, dt, 21);
-    timed(c, "kf_n2_cv_steps1e5", &cv1("ekf", "discrete", dt), &r1);
-    let r3 = cv3_readings(STEPS, dt, 22);
-    timed(c, "kf_n6_cv3d_steps1e5", &cv3("ekf", "discrete", dt), &r3);
     timed(
         c,
+        "kf",
+        "kf_n2_cv_steps1e5",
+        &cv1("ekf", "discrete", dt),
+        &r1,
+    );
+    let r3 = cv3_readings(STEPS, dt, 22);
+    timed(
+        c,
+        "kf",
+        "kf_n6_cv3d_steps1e5",
+        &cv3("ekf", "discrete", dt),
+        &r3,
+    );
+    timed(
+        c,
+        "kf",
         "kf_n2_cv_continuous_steps1e5",
         &cv1("ekf", "continuous", dt),
         &r1,
     );
     timed(
         c,
+        "kf",
         "kf_n6_cv3d_continuous_steps1e5",
         &cv3("ekf", "continuous", dt),
         &r3,
@@ -58,6 +55,7 @@ fn kf(c: &mut Criterion) {
     let r1 = cv1_readings(STEPS, dt, 21);
     timed(
         c,
+        "kf",
         "kf_n2_cv_continuous_exactdt_steps1e5",
         &cv1("ekf", "continuous", dt),
         &r1,
@@ -65,6 +63,7 @@ fn kf(c: &mut Criterion) {
     let r3 = cv3_readings(STEPS, dt, 22);
     timed(
         c,
+        "kf",
         "kf_n6_cv3d_continuous_exactdt_steps1e5",
         &cv3("ekf", "continuous", dt),
         &r3,

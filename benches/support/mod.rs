@@ -5,6 +5,7 @@
 
 #![allow(dead_code)]
 
+use criterion::{BatchSize, Criterion, Throughput};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha20Rng;
 use rand_distr::StandardNormal;
@@ -279,4 +280,22 @@ pub fn lorenz96_readings(cycles: usize, seed: u64) -> Vec<Reading> {
             }
         })
         .collect()
+}
+
+/// Time whole runs over `readings` (a fresh run per iteration, built outside the timing),
+/// reporting readings per second under `group/name`.
+pub fn timed(c: &mut Criterion, group: &str, name: &str, setup: &Setup, readings: &[Reading]) {
+    let mut g = c.benchmark_group(group);
+    g.throughput(Throughput::Elements(readings.len() as u64));
+    g.bench_function(name, |b| {
+        b.iter_batched(
+            || setup.run(),
+            |mut run| {
+                run_all(&mut run, readings);
+                run
+            },
+            BatchSize::PerIteration,
+        )
+    });
+    g.finish();
 }
