@@ -11,7 +11,7 @@
 use crate::filter::linalg::{mul_ab, mul_abt, symmetrize};
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
-use crate::filter::{Estimator, FilterError};
+use crate::filter::{ensure_finite, Estimator, FilterError};
 use crate::formula::Workspace;
 use crate::spec::model::{Integration, Model};
 use crate::spec::reading::Reading;
@@ -197,9 +197,7 @@ impl Estimator for Ekf {
             }
         }
         symmetrize(&mut self.cov);
-        if !self.mean.iter().all(|x| x.is_finite()) || !self.cov.iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("updated state"));
-        }
+        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
         Ok(true)
     }
 

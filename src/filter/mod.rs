@@ -40,6 +40,16 @@ impl std::fmt::Display for FilterError {
     }
 }
 
+/// `Ok` when every entry of `a` and `b` is finite, else `NonFinite(what)`: the check that
+/// keeps NaN and infinities out of every answer.
+pub fn ensure_finite(a: &[f64], b: &[f64], what: &'static str) -> Result<(), FilterError> {
+    if a.iter().chain(b).all(|x| x.is_finite()) {
+        Ok(())
+    } else {
+        Err(FilterError::NonFinite(what))
+    }
+}
+
 /// One filter's belief and its two steps. Implementations preallocate everything in their
 /// constructor: `predict` and `update` allocate nothing.
 pub trait Estimator: Send {

@@ -14,7 +14,7 @@
 
 use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
 use crate::filter::linalg::{congruence_plus, symmetrize};
-use crate::filter::FilterError;
+use crate::filter::{ensure_finite, FilterError};
 use crate::formula::{BatchWorkspace, Program, Workspace};
 use crate::spec::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
 use nalgebra::{DMatrix, DVector};
@@ -400,9 +400,7 @@ impl Predictor {
                 }
             }
         }
-        if !mean.iter().all(|x| x.is_finite()) || !cov.iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("predicted state"));
-        }
+        ensure_finite(mean.as_slice(), cov.as_slice(), "predicted state")?;
         Ok(())
     }
 
@@ -589,9 +587,7 @@ impl Predictor {
                 }
             }
         }
-        if !x.iter().all(|v| v.is_finite()) || !q.iter().all(|v| v.is_finite()) {
-            return Err(FilterError::NonFinite("predicted points"));
-        }
+        ensure_finite(x.as_slice(), q.as_slice(), "predicted points")?;
         Ok(!self.q_zero)
     }
 }

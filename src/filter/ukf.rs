@@ -12,7 +12,7 @@
 use crate::filter::linalg::{cholesky_psd, symmetrize};
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
-use crate::filter::{Estimator, FilterError};
+use crate::filter::{ensure_finite, Estimator, FilterError};
 use crate::spec::model::{Integration, Model, Unscented};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
@@ -203,9 +203,7 @@ impl Estimator for Ukf {
         self.obs.apply_gain(self.mean.as_mut_slice());
         self.obs.subtract_gain_cross(self.cov.as_mut_slice());
         symmetrize(&mut self.cov);
-        if !self.mean.iter().all(|x| x.is_finite()) || !self.cov.iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("updated state"));
-        }
+        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
         Ok(true)
     }
 
