@@ -1,7 +1,7 @@
 //! The operational endpoints on a real server: health, readiness, info, metrics, the
 //! contract, request ids, CORS, keys, load shedding and graceful shutdown.
 
-use crate::support::{answer, assert_problem, start, start_default};
+use crate::support::{answer, assert_problem, post, start, start_default};
 use std::time::Duration;
 use tacit::config::Limits;
 use tacit::http::ServerConfig;
@@ -154,16 +154,7 @@ async fn keys_guard_v1_but_not_probes_or_metrics() {
         assert_eq!(a.status, 200, "{}", a.text);
     }
     // Job routes are guarded before their body is looked at.
-    let a = answer(
-        s.client
-            .post(s.url("/v1/estimate"))
-            .header("content-type", "application/json")
-            .body("{}")
-            .send()
-            .await
-            .unwrap(),
-    )
-    .await;
+    let a = post(&s, "/v1/estimate", "application/json", "{}").await;
     assert_problem(&a, 401);
     for open in ["/healthz", "/readyz", "/metrics", "/openapi.json"] {
         let res = s.client.get(s.url(open)).send().await.unwrap();
@@ -217,29 +208,11 @@ async fn cors_is_off_by_default_and_allows_configured_origins() {
 async fn no_job_slots_means_503_with_retry_after() {
     let s = start(config_with(|c| c.limits.max_concurrency = 0)).await;
     for path in ["/v1/estimate", "/v1/smooth", "/v1/simulate", "/v1/check"] {
-        let a = answer(
-            s.client
-                .post(s.url(path))
-                .header("content-type", "application/json")
-                .body("{}")
-                .send()
-                .await
-                .unwrap(),
-        )
-        .await;
+        let a = post(&s, path, "application/json", "{}").await;
         assert_problem(&a, 503);
         assert_eq!(a.headers["retry-after"], "1", "{path}");
     }
-    let a = answer(
-        s.client
-            .post(s.url("/v1/estimate/stream"))
-            .header("content-type", "application/x-ndjson")
-            .body("{}\n")
-            .send()
-            .await
-            .unwrap(),
-    )
-    .await;
+    let a = post(&s, "/v1/estimate/stream", "application/x-ndjson", "{}\n").await;
     assert_problem(&a, 503);
     // Probes do no job work and are never shed.
     let res = s.client.get(s.url("/healthz")).send().await.unwrap();
@@ -301,16 +274,7 @@ async fn a_full_server_sheds_instead_of_queueing() {
     let s = start(config_with(|c| c.limits.max_concurrency = 1)).await;
     let (tx, pending) = held_stream(&s);
     wait_until_saturated(&s).await;
-    let a = answer(
-        s.client
-            .post(s.url("/v1/estimate"))
-            .header("content-type", "application/json")
-            .body("{}")
-            .send()
-            .await
-            .unwrap(),
-    )
-    .await;
+    let a = post(&s, "/v1/estimate", "application/json", "{}").await;
     assert_problem(&a, 503);
     assert!(a.headers.contains_key("retry-after"));
     // Health is not delayed by the held request.

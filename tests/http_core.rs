@@ -3,7 +3,7 @@
 //! statuses and pointers. Ignored until the core is merged; bodies follow API.md exactly.
 
 use crate::support::{
-    answer, assert_pointer, assert_problem, start, start_default, Answer, Server,
+    answer, assert_pointer, assert_problem, post, start, start_default, Answer, Server,
 };
 use serde_json::{json, Value};
 use std::time::Duration;
@@ -72,29 +72,17 @@ fn estimate_body(method: &str, n: usize) -> Value {
 }
 
 async fn post_json(s: &Server, path: &str, body: &Value) -> Answer {
-    answer(
-        s.client
-            .post(s.url(path))
-            .header("content-type", "application/json")
-            .body(serde_json::to_vec(body).unwrap())
-            .send()
-            .await
-            .unwrap(),
+    post(
+        s,
+        path,
+        "application/json",
+        serde_json::to_vec(body).unwrap(),
     )
     .await
 }
 
 async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Answer {
-    answer(
-        s.client
-            .post(s.url(path))
-            .header("content-type", "application/json")
-            .body(body)
-            .send()
-            .await
-            .unwrap(),
-    )
-    .await
+    post(s, path, "application/json", body).await
 }
 
 #[tokio::test]
@@ -291,14 +279,11 @@ async fn a_bad_stream_header_is_a_plain_problem_status() {
     .await;
     assert_problem(&a, 422);
     assert_pointer(&a, "/filter/method");
-    let a = answer(
-        s.client
-            .post(s.url("/v1/estimate/stream"))
-            .header("content-type", "application/x-ndjson")
-            .body("{\"model\": \n")
-            .send()
-            .await
-            .unwrap(),
+    let a = post(
+        &s,
+        "/v1/estimate/stream",
+        "application/x-ndjson",
+        "{\"model\": \n",
     )
     .await;
     assert_problem(&a, 400);

@@ -1,7 +1,9 @@
 //! Failures the web layer answers by itself, each as problem+json with its status:
 //! unknown routes and methods, media types, sizes, empty streams, and caught panics.
 
-use crate::support::{answer, assert_pointer, assert_problem, serve_router, start, start_default};
+use crate::support::{
+    answer, assert_pointer, assert_problem, post, serve_router, start, start_default,
+};
 use axum::routing::get;
 use tacit::http::{layered, run_job, AppState, ServerConfig};
 
@@ -81,16 +83,7 @@ async fn media_type_parameters_and_case_are_accepted() {
     c.limits.max_concurrency = 0;
     let s = start(c).await;
     for ct in ["application/json; charset=utf-8", "Application/JSON"] {
-        let a = answer(
-            s.client
-                .post(s.url("/v1/estimate"))
-                .header("content-type", ct)
-                .body("{}")
-                .send()
-                .await
-                .unwrap(),
-        )
-        .await;
+        let a = post(&s, "/v1/estimate", ct, "{}").await;
         assert_problem(&a, 503);
     }
 }
@@ -107,16 +100,7 @@ async fn oversized_body_is_413_declared_or_chunked() {
     let s = start(small_body_server_config()).await;
     let big = format!("{{\"pad\": \"{}\"}}", "x".repeat(200));
     for path in JOB_ROUTES {
-        let a = answer(
-            s.client
-                .post(s.url(path))
-                .header("content-type", "application/json")
-                .body(big.clone())
-                .send()
-                .await
-                .unwrap(),
-        )
-        .await;
+        let a = post(&s, path, "application/json", big.clone()).await;
         assert_problem(&a, 413);
     }
     // Without a Content-Length the limit is enforced while reading.
@@ -162,16 +146,7 @@ async fn a_stream_line_over_the_limit_is_413_before_the_stream_starts() {
 async fn an_empty_stream_is_400() {
     let s = start_default().await;
     for body in ["", "\n\n  \r\n"] {
-        let a = answer(
-            s.client
-                .post(s.url("/v1/estimate/stream"))
-                .header("content-type", "application/x-ndjson")
-                .body(body)
-                .send()
-                .await
-                .unwrap(),
-        )
-        .await;
+        let a = post(&s, "/v1/estimate/stream", "application/x-ndjson", body).await;
         assert_problem(&a, 400);
     }
 }

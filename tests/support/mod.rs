@@ -121,6 +121,25 @@ pub async fn answer(res: reqwest::Response) -> Answer {
     }
 }
 
+/// POST `body` to `path` with the given content type and read the answer whole.
+pub async fn post(
+    s: &Server,
+    path: &str,
+    content_type: &str,
+    body: impl Into<reqwest::Body>,
+) -> Answer {
+    answer(
+        s.client
+            .post(s.url(path))
+            .header("content-type", content_type)
+            .body(body)
+            .send()
+            .await
+            .unwrap(),
+    )
+    .await
+}
+
 /// Assert an RFC 9457 answer with `status`, checking the shape every problem has.
 pub fn assert_problem(a: &Answer, status: u16) {
     assert_eq!(a.status, status, "status of {}", a.text);
