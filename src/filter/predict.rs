@@ -159,6 +159,11 @@ pub struct Predictor {
     pe: PointEval,
     // Linear models.
     disc: Option<Discretiser>,
+    /// `[B | c]` of a continuous linear model with a constant term `c`, else `B`: the
+    /// constant is discretised as an input held at 1 (its `Γ` column is `∫ e^{As} ds c`).
+    b_lin: DMatrix<f64>,
+    /// Whether `b_lin` carries the constant column (index `nu`).
+    has_offset: bool,
     dcache: Vec<Discrete>,
     cached_dt: [f64; 2],
     current: usize,
@@ -200,16 +205,27 @@ impl Predictor {
             ProcessNoise::PerStep { q, drift } => (DMatrix::zeros(n, n), q.clone(), drift.clone()),
         };
         let q_zero = is_zero(&qc) && is_zero(&q_step) && drift.iter().all(|d| *d == 0.0);
-        let (disc, dcache) = match &model.dynamics {
+        let (disc, dcache, b_lin, has_offset) = match &model.dynamics {
             Dynamics::Linear {
                 time: LinearTime::Continuous,
+                b,
+                offset,
                 ..
             } => {
-                let d = Discretiser::new(n, nu);
+                let has_offset = offset.iter().any(|c| *c != 0.0);
+                let b_lin = if has_offset {
+                    let mut m = DMatrix::zeros(n, nu + 1);
+                    m.columns_mut(0, nu).copy_from(b);
+                    m.column_mut(nu).copy_from(offset);
+                    m
+                } else {
+                    b.clone()
+                };
+                let d = Discretiser::new(n, b_lin.ncols());
                 let cache = vec![d.output(), d.output()];
-                (Some(d), cache)
+                (Some(d), cache, b_lin, has_offset)
             }
-            _ => (None, Vec::new()),
+            _ => (None, Vec::new(), DMatrix::zeros(0, 0), false),
         };
         let g_dim = n + n * n;
         let p_dim = n * points + if q_zero { 0 } else { n * n };
@@ -229,6 +245,8 @@ impl Predictor {
                 fp: vec![0.0; n * n],
             },
             disc,
+            b_lin,
+            has_offset,
             dcache,
             cached_dt: [f64::NAN; 2],
             current: 0,
@@ -273,8 +291,7 @@ impl Predictor {
     /// came first, so a run split into requests still matches one run bit for bit.
     fn discretise(&mut self, model: &Model, dt: f64) {
         let key = round_to_40_bits(dt);
-        if let (Some(d), Dynamics::Linear { matrix, b, .. }) = (self.disc.as_mut(), &model.dynamics)
-        {
+        if let (Some(d), Dynamics::Linear { matrix, .. }) = (self.disc.as_mut(), &model.dynamics) {
             if let Some(slot) = self
                 .cached_dt
                 .iter()
@@ -284,7 +301,7 @@ impl Predictor {
                 return;
             }
             let slot = 1 - self.current;
-            d.discretise(matrix, b, &self.qc, key, &mut self.dcache[slot]);
+            d.discretise(matrix, &self.b_lin, &self.qc, key, &mut self.dcache[slot]);
             self.cached_dt[slot] = key;
             self.current = slot;
         }
@@ -330,6 +347,9 @@ impl Predictor {
                     for (j, uj) in u.iter().enumerate() {
                         *mi += d.gamma[(i, j)] * uj;
                     }
+                    if self.has_offset {
+                        *mi += d.gamma[(i, self.nu)];
+                    }
                 }
                 congruence_plus(&d.phi, cov, &d.q, &mut self.tmp);
                 if let Some(p) = phi.as_deref_mut() {
@@ -340,6 +360,7 @@ impl Predictor {
                 time: LinearTime::Discrete { dt: grid },
                 matrix,
                 b,
+                ..
             } => {
                 let k = Self::grid_steps(dt, *grid);
                 let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
@@ -482,7 +503,12 @@ impl Predictor {
                 // X ← X Φᵀ + 1 (Γ u)ᵀ
                 crate::filter::linalg::mul_abt(x, &d.phi, &mut self.xm);
                 for i in 0..n {
-                    self.vtmp[i] = (0..nu).map(|j| d.gamma[(i, j)] * u[j]).sum();
+                    let c = if self.has_offset {
+                        d.gamma[(i, nu)]
+                    } else {
+                        0.0
+                    };
+                    self.vtmp[i] = (0..nu).map(|j| d.gamma[(i, j)] * u[j]).sum::<f64>() + c;
                 }
                 for i in 0..n {
                     for j in 0..mp {
@@ -495,6 +521,7 @@ impl Predictor {
                 time: LinearTime::Discrete { dt: grid },
                 matrix,
                 b,
+                ..
             } => {
                 let k = Self::grid_steps(dt, *grid);
                 let mut qs = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));

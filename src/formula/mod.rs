@@ -40,6 +40,7 @@
 //!
 //! Evaluation may return NaN or infinities (`sqrt(-1)`, `1/0`) and never panics on them.
 
+mod affine;
 mod builder;
 mod error;
 mod eval;
@@ -50,6 +51,7 @@ mod program;
 #[cfg(test)]
 mod tests;
 
+pub use affine::AffineForm;
 pub use error::FormulaError;
 pub use eval::{BatchWorkspace, Workspace};
 pub use parser::MAX_DEPTH_CEILING;

@@ -698,3 +698,47 @@ fn random_formulas_match_independent_dual_numbers() {
         }
     }
 }
+
+// Affine recognition. Coefficients are read off the formulas by hand (algebra).
+
+fn affine(formulas: &[&str], cols: usize) -> Option<AffineForm> {
+    compile(formulas, &["x", "y", "u", "t"], &[("k", 2.0)]).affine_form(cols)
+}
+
+#[test]
+fn affine_form_reads_coefficients_and_offset() {
+    // 3x - y/4 + 2u + k*5 and -(x + k*y) + 1: coefficients by hand.
+    let a = affine(&["3*x - y/4 + 2*u + k*5", "-(x + k*y) + 1", "7"], 3).expect("affine");
+    assert_eq!(
+        a.jacobian,
+        vec![3.0, -0.25, 2.0, -1.0, -2.0, 0.0, 0.0, 0.0, 0.0]
+    );
+    assert_eq!(a.offset, vec![10.0, 1.0, 7.0]);
+    // x^1 and (x*3)/k stay affine; sin of a constant is a constant.
+    let b = affine(&["x^1 + (x*3)/k + sin(k)"], 2).expect("affine");
+    assert_eq!(b.jacobian, vec![1.0 + 1.5, 0.0]);
+    assert_eq!(b.offset, vec![2.0f64.sin()]);
+}
+
+#[test]
+fn affine_form_refuses_everything_else() {
+    for f in [
+        "x*y",
+        "x^2",
+        "1/x",
+        "sin(x)",
+        "abs(x)",
+        "min(x, 1)",
+        "pow(x, 1.5)",
+        "x*t",
+        "t",
+        "x + 0*t",
+        "sqrt(y)",
+    ] {
+        assert!(affine(&[f], 3).is_none(), "{f} taken as affine");
+    }
+    // u past `cols` counts as a variable that is not allowed.
+    assert!(affine(&["x + u"], 2).is_none());
+    // A non-finite coefficient falls back to the general path.
+    assert!(affine(&["x/0"], 2).is_none());
+}

@@ -39,6 +39,8 @@ pub enum Dynamics {
     /// Discrete map `x⁺ = g(x, u, t, dt)`: one output per model state; slots `[x, u, t, dt]`.
     Next(Program),
     /// Linear dynamics over all states (estimated parameters have zero rate / identity map).
+    /// `rates` whose formulas are affine in states and inputs with constant coefficients
+    /// are turned into this form at validation, so they are discretised exactly.
     Linear {
         /// Continuous or discrete.
         time: LinearTime,
@@ -46,6 +48,9 @@ pub enum Dynamics {
         matrix: DMatrix<f64>,
         /// Input matrix, `n × nu`.
         b: DMatrix<f64>,
+        /// Constant term `c` of `x' = A x + B u + c`, length `n`: zero for models given
+        /// as matrices; set when `rates` formulas turn out to be affine (continuous only).
+        offset: DVector<f64>,
     },
 }
 

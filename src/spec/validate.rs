@@ -340,12 +340,44 @@ fn dynamics(
         .collect();
     let slot_names = if kind == "rates" { slots } else { next_slots };
     match Program::compile(&sources, slot_names, consts, flimits) {
-        Ok(p) if kind == "rates" => Some(Dynamics::Rates(p)),
+        Ok(p) if kind == "rates" => Some(rates_or_affine(p, n, nu)),
         Ok(p) => Some(Dynamics::Next(p)),
         Err(list) => {
             push_formula_errors(errs, list);
             None
         }
+    }
+}
+
+/// Rates that are affine in states and inputs with constant coefficients (no `t`, no
+/// product of two states, ...) become a continuous linear model `x' = A x + B u + c`,
+/// which is discretised exactly (Van Loan) instead of integrated: no integration error,
+/// and the discretisation of a repeated gap is computed once. Anything else stays as
+/// rates. Slots of `p` are `[x (n), u (nu), t]`.
+fn rates_or_affine(p: Program, n: usize, nu: usize) -> Dynamics {
+    let cols = n + nu;
+    let Some(form) = p.affine_form(cols) else {
+        return Dynamics::Rates(p);
+    };
+    let n_model = p.outputs();
+    let mut a = DMatrix::zeros(n, n);
+    let mut b = DMatrix::zeros(n, nu);
+    let mut offset = DVector::zeros(n);
+    for k in 0..n_model {
+        let row = &form.jacobian[k * cols..(k + 1) * cols];
+        for j in 0..n {
+            a[(k, j)] = row[j];
+        }
+        for j in 0..nu {
+            b[(k, j)] = row[n + j];
+        }
+        offset[k] = form.offset[k];
+    }
+    Dynamics::Linear {
+        time: LinearTime::Continuous,
+        matrix: a,
+        b,
+        offset,
     }
 }
 
@@ -410,6 +442,7 @@ fn linear(
         time,
         matrix: m,
         b: bm,
+        offset: DVector::zeros(n),
     })
 }
 
