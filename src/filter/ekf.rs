@@ -8,7 +8,7 @@
 //! which stays symmetric positive semi-definite under rounding, then symmetrised.
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
-use crate::filter::linalg::{mul_ab, mul_abt, symmetrize};
+use crate::filter::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt, symmetrize};
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
 use crate::filter::{ensure_finite, Estimator, FilterError};
@@ -35,6 +35,10 @@ pub struct Ekf {
     a: DMatrix<f64>,
     t1: DMatrix<f64>,
     kr: Vec<f64>,
+    /// The gain `K`, `n × ma`, column-major.
+    k: Vec<f64>,
+    /// The rows of `H` of the accepted readings, `ma × n`.
+    h_acc: Vec<f64>,
 }
 
 impl Ekf {
@@ -68,6 +72,8 @@ impl Ekf {
             a: DMatrix::zeros(n, n),
             t1: DMatrix::zeros(n, n),
             kr: vec![0.0; n * mm],
+            k: vec![0.0; n * mm],
+            h_acc: vec![0.0; mm * n],
         }
     }
 }
@@ -138,64 +144,41 @@ impl Estimator for Ekf {
             return Err(FilterError::NonFinite("sensor Jacobian"));
         }
         // C = P Hᵀ (n × m), S = H C (m × m).
-        let p = self.cov.as_slice();
-        for r in 0..m {
-            for i in 0..n {
-                let mut s = 0.0;
-                for j in 0..n {
-                    s += p[i + j * n] * self.h[r + j * m];
-                }
-                self.obs.c[i + r * n] = s;
-            }
-        }
-        for c in 0..m {
-            for r in 0..m {
-                let mut s = 0.0;
-                for j in 0..n {
-                    s += self.h[r + j * m] * self.obs.c[j + c * n];
-                }
-                self.obs.s[r + c * m] = s;
-            }
-        }
+        gemm_nt(
+            self.cov.as_slice(),
+            &self.h,
+            &mut self.obs.c,
+            (n, n, m),
+            false,
+        );
+        gemm_nn(&self.h, &self.obs.c, &mut self.obs.s, (m, n, m), false);
         if !self.obs.gate(gate)? {
             return Ok(false);
         }
         self.obs.gain()?;
         self.obs.apply_gain(self.mean.as_mut_slice());
-        // Joseph form: A = I − K H_acc.
+        // Joseph form: A = I − K H_acc, P ← A P Aᵀ + K R Kᵀ.
         let ma = self.obs.ma;
         let kt = &self.obs.kt;
-        for j in 0..n {
-            for i in 0..n {
-                let mut s = 0.0;
-                for (a, &row) in self.obs.keep.iter().enumerate() {
-                    s += kt[a + i * ma] * self.h[row + j * m];
-                }
-                self.a[(i, j)] = if i == j { 1.0 } else { 0.0 } - s;
+        for i in 0..n {
+            for a in 0..ma {
+                self.k[i + a * n] = kt[a + i * ma];
             }
+        }
+        for j in 0..n {
+            for (a, &row) in self.obs.keep.iter().enumerate() {
+                self.h_acc[a + j * ma] = self.h[row + j * m];
+            }
+        }
+        let a = self.a.as_mut_slice();
+        gemm_nn(&self.k, &self.h_acc, a, (n, ma, n), false);
+        for (idx, v) in a.iter_mut().enumerate() {
+            *v = if idx % (n + 1) == 0 { 1.0 } else { 0.0 } - *v;
         }
         mul_ab(&self.a, &self.cov, &mut self.t1);
         mul_abt(&self.t1, &self.a, &mut self.cov);
-        // + K R Kᵀ.
-        let r = &self.obs.r_acc;
-        for b in 0..ma {
-            for i in 0..n {
-                let mut s = 0.0;
-                for a in 0..ma {
-                    s += kt[a + i * ma] * r[a + b * ma];
-                }
-                self.kr[i + b * n] = s;
-            }
-        }
-        for j in 0..n {
-            for i in 0..n {
-                let mut s = 0.0;
-                for b in 0..ma {
-                    s += self.kr[i + b * n] * kt[b + j * ma];
-                }
-                self.cov[(i, j)] += s;
-            }
-        }
+        gemm_nn(&self.k, &self.obs.r_acc, &mut self.kr, (n, ma, ma), false);
+        gemm_nt(&self.kr, &self.k, self.cov.as_mut_slice(), (n, ma, n), true);
         symmetrize(&mut self.cov);
         ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
         Ok(true)

@@ -173,15 +173,10 @@ pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     let (r, k, c) = (a.nrows(), a.ncols(), b.nrows());
     let (a, b) = (a.as_slice(), b.as_slice());
     let o = out.as_mut_slice();
-    for j in 0..c {
-        for i in 0..r {
-            let mut s = 0.0;
-            for l in 0..k {
-                s += a[i + l * r] * b[j + l * c];
-            }
-            o[i + j * r] = s;
-        }
+    if r == k && k == c && square(r, SquareOp::MulAbt, a, b, o) {
+        return;
     }
+    gemm_nt(a, b, o, (r, k, c), false);
 }
 
 /// `out = a b` for `a: r × k`, `b: k × c` (no allocation: nalgebra's product hands
@@ -193,15 +188,143 @@ pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     debug_assert_eq!(b.nrows(), k);
     let (a, b) = (a.as_slice(), b.as_slice());
     let o = out.as_mut_slice();
-    for j in 0..c {
-        let oj = &mut o[j * r..(j + 1) * r];
-        oj.fill(0.0);
-        for l in 0..k {
-            let w = b[l + j * k];
-            for (x, &y) in oj.iter_mut().zip(&a[l * r..(l + 1) * r]) {
+    if r == k && k == c && square(r, SquareOp::MulAb, a, b, o) {
+        return;
+    }
+    gemm_nn(a, b, o, (r, k, c), false);
+}
+
+/// `o = a b`, or `o += a b` with `accumulate`, for column-major slices `a: r × k`,
+/// `b: k × c`, `o: r × c` given as `dims = (r, k, c)`. Column `j` of `o` accumulates
+/// the columns of `a` weighted by `b_lj`, `l` in order (contiguous inner loop).
+pub fn gemm_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool) {
+    fn run<const R: usize>(a: &[f64], b: &[f64], o: &mut [f64], k: usize, c: usize, acc: bool) {
+        gemm_cols::<R, false>(a, b, o, (R, k, c), acc);
+    }
+    let (r, k, c) = dims;
+    match r {
+        0 => {}
+        1 => run::<1>(a, b, o, k, c, accumulate),
+        2 => run::<2>(a, b, o, k, c, accumulate),
+        3 => run::<3>(a, b, o, k, c, accumulate),
+        4 => run::<4>(a, b, o, k, c, accumulate),
+        5 => run::<5>(a, b, o, k, c, accumulate),
+        6 => run::<6>(a, b, o, k, c, accumulate),
+        _ => gemm_cols::<0, false>(a, b, o, dims, accumulate),
+    }
+}
+
+/// `o = a bᵀ`, or `o += a bᵀ` with `accumulate`, for column-major slices `a: r × k`,
+/// `b: c × k`, `o: r × c` given as `dims = (r, k, c)`; the same loop order as
+/// [`gemm_nn`].
+pub fn gemm_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool) {
+    fn run<const R: usize>(a: &[f64], b: &[f64], o: &mut [f64], k: usize, c: usize, acc: bool) {
+        gemm_cols::<R, true>(a, b, o, (R, k, c), acc);
+    }
+    let (r, k, c) = dims;
+    match r {
+        0 => {}
+        1 => run::<1>(a, b, o, k, c, accumulate),
+        2 => run::<2>(a, b, o, k, c, accumulate),
+        3 => run::<3>(a, b, o, k, c, accumulate),
+        4 => run::<4>(a, b, o, k, c, accumulate),
+        5 => run::<5>(a, b, o, k, c, accumulate),
+        6 => run::<6>(a, b, o, k, c, accumulate),
+        _ => gemm_cols::<0, true>(a, b, o, dims, accumulate),
+    }
+}
+
+/// The loop of [`gemm_nn`] (`T = false`, weights `b_lj`) and [`gemm_nt`] (`T = true`,
+/// weights `b_jl`). `R > 0` fixes the row count at compile time (equal to `dims.0`), so
+/// the short columns of small models unroll; `R = 0` takes it from `dims`.
+#[inline(always)]
+fn gemm_cols<const R: usize, const T: bool>(
+    a: &[f64],
+    b: &[f64],
+    o: &mut [f64],
+    dims: (usize, usize, usize),
+    accumulate: bool,
+) {
+    let (r, k, c) = dims;
+    let r = if R > 0 { R } else { r };
+    let (a, b) = (&a[..r * k], &b[..k * c]);
+    for (j, oj) in o[..r * c].chunks_exact_mut(r).enumerate() {
+        if !accumulate {
+            oj.fill(0.0);
+        }
+        for (l, al) in a.chunks_exact(r).enumerate() {
+            let w = if T { b[j + l * c] } else { b[l + j * k] };
+            for (x, &y) in oj.iter_mut().zip(al) {
                 *x += y * w;
             }
         }
+    }
+}
+
+/// A product of two square matrices that has a fixed-size kernel.
+#[derive(Clone, Copy)]
+enum SquareOp {
+    /// `A B`.
+    MulAb,
+    /// `A Bᵀ`.
+    MulAbt,
+}
+
+/// Run `op` on `n × n` column-major slices with a kernel whose size is a compile-time
+/// constant, for `n ≤ 8` (the models dashboards post are mostly this small). The loops
+/// then unroll and vectorise without bounds checks. The kernels add in the same order
+/// as the general loops, so results are bit-identical. Returns `false` for larger `n`.
+fn square(n: usize, op: SquareOp, a: &[f64], b: &[f64], o: &mut [f64]) -> bool {
+    fn run<const N: usize>(op: SquareOp, a: &[f64], b: &[f64], o: &mut [f64]) {
+        match op {
+            SquareOp::MulAb => square_ab::<N>(a, b, o),
+            SquareOp::MulAbt => square_abt::<N>(a, b, o),
+        }
+    }
+    match n {
+        1 => run::<1>(op, a, b, o),
+        2 => run::<2>(op, a, b, o),
+        3 => run::<3>(op, a, b, o),
+        4 => run::<4>(op, a, b, o),
+        5 => run::<5>(op, a, b, o),
+        6 => run::<6>(op, a, b, o),
+        7 => run::<7>(op, a, b, o),
+        8 => run::<8>(op, a, b, o),
+        _ => return false,
+    }
+    true
+}
+
+/// `o = a b` for `N × N` column-major matrices (column `j` of `o` accumulates the
+/// columns of `a` weighted by column `j` of `b`, in order).
+#[inline(always)]
+fn square_ab<const N: usize>(a: &[f64], b: &[f64], o: &mut [f64]) {
+    let (a, b, o) = (&a[..N * N], &b[..N * N], &mut o[..N * N]);
+    for j in 0..N {
+        let mut col = [0.0; N];
+        for l in 0..N {
+            let w = b[l + j * N];
+            for i in 0..N {
+                col[i] += a[i + l * N] * w;
+            }
+        }
+        o[j * N..(j + 1) * N].copy_from_slice(&col);
+    }
+}
+
+/// `o = a bᵀ` for `N × N` column-major matrices, each entry summed over `l` in order.
+#[inline(always)]
+fn square_abt<const N: usize>(a: &[f64], b: &[f64], o: &mut [f64]) {
+    let (a, b, o) = (&a[..N * N], &b[..N * N], &mut o[..N * N]);
+    for j in 0..N {
+        let mut col = [0.0; N];
+        for l in 0..N {
+            let w = b[j + l * N];
+            for i in 0..N {
+                col[i] += a[i + l * N] * w;
+            }
+        }
+        o[j * N..(j + 1) * N].copy_from_slice(&col);
     }
 }
 
