@@ -45,6 +45,8 @@ pub struct Enkf {
     x: DMatrix<f64>,
     mean: DVector<f64>,
     cov: DMatrix<f64>,
+    /// Whether the members changed since `cov` was computed.
+    cov_stale: bool,
     cfg: Ensemble,
     step: u64,
     side: bool,
@@ -56,6 +58,9 @@ pub struct Enkf {
     q: DMatrix<f64>,
     lq: Vec<f64>,
     lr: Vec<f64>,
+    /// Whether the accepted readings' noise (and so `lr`) is diagonal: independent
+    /// sensors, the usual case, where whitening is one division per entry.
+    lr_diagonal: bool,
     ybar: Vec<f64>,
     eps: Vec<f64>,
     prev: DMatrix<f64>,
@@ -87,6 +92,18 @@ pub struct Enkf {
     escr: Vec<f64>,
     /// G = Ỹ Ỹᵀ of the low-rank form, then its eigenvectors.
     gbuf: Vec<f64>,
+}
+
+/// `L_R⁻¹ v` in place for the `ma × ma` lower factor `lr`; a diagonal factor divides
+/// entry by entry (the same values the triangular solve gives, without its O(ma²) loop).
+fn whiten(lr: &[f64], diagonal: bool, ma: usize, v: &mut [f64]) {
+    if diagonal {
+        for (a, x) in v.iter_mut().enumerate() {
+            *x /= lr[a + a * ma];
+        }
+    } else {
+        solve_lower(&lr[..ma * ma], ma, v);
+    }
 }
 
 impl Enkf {
@@ -124,6 +141,7 @@ impl Enkf {
             x,
             mean: DVector::zeros(n),
             cov: DMatrix::zeros(n, n),
+            cov_stale: true,
             cfg,
             step,
             side: false,
@@ -135,6 +153,7 @@ impl Enkf {
             q: DMatrix::zeros(n, n),
             lq: vec![0.0; n * n],
             lr: vec![0.0; mm * mm],
+            lr_diagonal: false,
             ybar: vec![0.0; mm],
             eps: vec![0.0; mm.max(n)],
             prev: DMatrix::zeros(nn, n),
@@ -160,12 +179,27 @@ impl Enkf {
         Ok(f)
     }
 
-    /// Ensemble mean and covariance (divisor N − 1) from the members.
-    fn refresh_moments(&mut self) {
+    /// Ensemble mean from the members; the covariance is left stale until
+    /// [`Estimator::settle`] (the analysis needs only the mean and the members, so one
+    /// covariance per line is enough, not one after every change of the members).
+    fn refresh_mean(&mut self) {
         let (nn, n) = (self.x.nrows(), self.x.ncols());
         for i in 0..n {
             self.mean[i] = self.x.column(i).iter().sum::<f64>() / nn as f64;
         }
+        self.cov_stale = true;
+    }
+
+    /// Ensemble mean and covariance (divisor N − 1) from the members.
+    fn refresh_moments(&mut self) {
+        self.refresh_mean();
+        self.refresh_covariance();
+    }
+
+    /// Ensemble covariance (divisor N − 1) about the current mean.
+    fn refresh_covariance(&mut self) {
+        let (nn, n) = (self.x.nrows(), self.x.ncols());
+        self.cov_stale = false;
         self.fill_anomalies();
         let a = &self.anom;
         for j in 0..n {
@@ -232,7 +266,7 @@ impl Enkf {
                 let row = self.obs.keep[a];
                 self.eps[a] = zs[row * nn + j] - self.ybar[row];
             }
-            solve_lower(&self.lr[..ma * ma], ma, &mut self.eps[..ma]);
+            whiten(&self.lr, self.lr_diagonal, ma, &mut self.eps[..ma]);
             for a in 0..ma {
                 self.yt[(a, j)] = self.eps[a];
             }
@@ -240,7 +274,7 @@ impl Enkf {
         for a in 0..ma {
             self.dtil[a] = self.obs.nu_acc[a];
         }
-        solve_lower(&self.lr[..ma * ma], ma, &mut self.dtil[..ma]);
+        whiten(&self.lr, self.lr_diagonal, ma, &mut self.dtil[..ma]);
         if ma < nn && !self.always_full {
             return self.transform_low_rank();
         }
@@ -290,19 +324,22 @@ impl Enkf {
         for l in 0..nn {
             self.sq[l] = self.lam[l].sqrt();
         }
+        // The sum is symmetric in (i, j): compute j ≥ i and use it for both entries.
         for i in 0..nn {
-            let acc = &mut self.acc[..nn];
+            let acc = &mut self.acc[..nn - i];
             acc.fill(-0.0);
             for l in 0..nn {
                 // One division per (i, l) rather than per entry.
                 let f = v[(i, l)] / self.sq[l];
                 // Plain slices (not matrix column iterators) so the loop vectorises.
-                for (x, &vj) in acc.iter_mut().zip(&v.as_slice()[l * nn..(l + 1) * nn]) {
+                for (x, &vj) in acc.iter_mut().zip(&v.as_slice()[l * nn + i..(l + 1) * nn]) {
                     *x += f * vj;
                 }
             }
-            for j in 0..nn {
-                self.trans[(j, i)] = c * acc[j] + self.wbar[i];
+            for (d, &sum) in acc.iter().enumerate() {
+                let j = i + d;
+                self.trans[(j, i)] = c * sum + self.wbar[i];
+                self.trans[(i, j)] = c * sum + self.wbar[j];
             }
         }
         // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j), for all members j at once.
@@ -428,7 +465,12 @@ impl Estimator for Enkf {
                 }
             }
         }
-        self.refresh_moments();
+        if keep_cross {
+            // The smoother reads the predicted covariance.
+            self.refresh_moments();
+        } else {
+            self.refresh_mean();
+        }
         if keep_cross {
             let (nn, n) = (self.x.nrows(), self.x.ncols());
             for j in 0..n {
@@ -466,7 +508,7 @@ impl Estimator for Enkf {
                     self.x[(j, i)] = m + self.cfg.inflation * (self.x[(j, i)] - m);
                 }
             }
-            self.refresh_moments();
+            self.refresh_mean();
         }
         self.obs.begin(model, reading);
         self.pobs.eval(model, &self.obs.checks, &self.x, u, t);
@@ -489,16 +531,18 @@ impl Estimator for Enkf {
         }
         let za = &self.za[..m * nn];
         for c in 0..m {
-            let acc = &mut self.acc[..m];
+            // Rows r ≤ c; the sum is symmetric, so it fills (c, r) as well.
+            let acc = &mut self.acc[..=c];
             acc.fill(-0.0);
             for k in 0..nn {
                 let w = za[c + k * m];
-                for (s, &zr) in acc.iter_mut().zip(&za[k * m..(k + 1) * m]) {
+                for (s, &zr) in acc.iter_mut().zip(&za[k * m..k * m + c + 1]) {
                     *s += zr * w;
                 }
             }
-            for r in 0..m {
-                self.obs.s[r + c * m] = acc[r] / (nf - 1.0);
+            for (r, &sum) in acc.iter().enumerate() {
+                self.obs.s[r + c * m] = sum / (nf - 1.0);
+                self.obs.s[c + r * m] = sum / (nf - 1.0);
             }
             if need_c {
                 let acc = &mut self.acc[..n];
@@ -523,13 +567,28 @@ impl Estimator for Enkf {
             self.obs.factor()?;
         }
         let ma = self.obs.ma;
-        cholesky(&self.obs.r_acc[..ma * ma], &mut self.lr[..ma * ma], ma)
-            .map_err(|_| FilterError::NotPositive("reading noise"))?;
+        let r = &self.obs.r_acc[..ma * ma];
+        self.lr_diagonal = (0..ma).all(|b| (0..ma).all(|a| a == b || r[a + b * ma] == 0.0));
+        if self.lr_diagonal {
+            // Cholesky of a diagonal matrix: square roots of the diagonal.
+            let lr = &mut self.lr[..ma * ma];
+            lr.fill(0.0);
+            for a in 0..ma {
+                let d = r[a + a * ma];
+                if !(d > 0.0) || !d.is_finite() {
+                    return Err(FilterError::NotPositive("reading noise"));
+                }
+                lr[a + a * ma] = d.sqrt();
+            }
+        } else {
+            cholesky(r, &mut self.lr[..ma * ma], ma)
+                .map_err(|_| FilterError::NotPositive("reading noise"))?;
+        }
         match self.cfg.update {
             EnsembleUpdate::Perturbed => self.perturbed(),
             EnsembleUpdate::Deterministic => self.transform()?,
         }
-        self.refresh_moments();
+        self.refresh_mean();
         if !self.x.iter().all(|v| v.is_finite()) {
             return Err(FilterError::NonFinite("analysis members"));
         }
@@ -545,7 +604,14 @@ impl Estimator for Enkf {
     }
 
     fn covariance(&self) -> &DMatrix<f64> {
+        debug_assert!(!self.cov_stale, "ensemble covariance read before settle");
         &self.cov
+    }
+
+    fn settle(&mut self) {
+        if self.cov_stale {
+            self.refresh_covariance();
+        }
     }
 
     fn cross(&self) -> &DMatrix<f64> {

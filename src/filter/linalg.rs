@@ -341,6 +341,22 @@ pub fn congruence_plus(
     symmetrize(p);
 }
 
+/// `√(a² + b²)`: the plain formula where squaring can neither overflow nor lose
+/// precision to underflow (much cheaper than libm's `hypot`, and as accurate to within an
+/// ulp, which the QL iteration does not notice), `hypot` outside that range.
+#[inline(always)]
+fn pythag(a: f64, b: f64) -> f64 {
+    const LO: f64 = 1e-150;
+    const HI: f64 = 1e150;
+    let (x, y) = (a.abs(), b.abs());
+    let big = x.max(y);
+    if big < HI && (x == 0.0 || x > LO) && (y == 0.0 || y > LO) {
+        (a * a + b * b).sqrt()
+    } else {
+        a.hypot(b)
+    }
+}
+
 /// Eigen-decomposition of a symmetric `n × n` matrix held column-major in `v` (only its
 /// values are read; it is overwritten with the orthonormal eigenvectors as columns),
 /// eigenvalues ascending into `d`, `e` (length n) as scratch. Householder reduction to
@@ -482,7 +498,7 @@ pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], e: &mut [f64], n: usize) ->
                 }
                 let mut g = d[l];
                 let mut p = (d[l + 1] - g) / (2.0 * e[l]);
-                let mut r = p.hypot(1.0);
+                let mut r = pythag(p, 1.0);
                 if p < 0.0 {
                     r = -r;
                 }
@@ -504,7 +520,7 @@ pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], e: &mut [f64], n: usize) ->
                     s2 = s;
                     g = c * e[i];
                     h = c * p;
-                    r = p.hypot(e[i]);
+                    r = pythag(p, e[i]);
                     e[i + 1] = s * r;
                     s = e[i] / r;
                     c = p / r;

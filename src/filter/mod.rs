@@ -92,6 +92,11 @@ pub trait Estimator: Send {
         None
     }
 
+    /// Bring the covariance up to date after `predict` or `update`. Filters that derive it
+    /// from something else (the ensemble's members) may defer that work until a step is
+    /// done; [`crate::filter::run::Run`] calls this before anything reads the covariance.
+    fn settle(&mut self) {}
+
     /// Note that one more measurement line was processed (random streams derive from it).
     fn advance_step(&mut self) {}
 

@@ -213,6 +213,7 @@ impl Run {
                 .map_err(|e| self.failure(e, &r.t))?;
         }
         if let (Some(c), true) = (capture, predicted) {
+            self.est.settle();
             *c = Some((self.est.mean().clone(), self.est.covariance().clone()));
         }
         self.t = r.t;
@@ -238,6 +239,7 @@ impl Run {
                 self.counts.nis.add(obs.joint_nis, obs.ma);
             }
         }
+        self.est.settle();
         self.est.advance_step();
         self.counts.steps += 1;
         Ok(StepDone { predicted, updated })
@@ -253,6 +255,7 @@ impl Run {
         let mut side = self.est.clone_box();
         side.predict(&self.model, self.inputs.as_slice(), self.t.secs, dt, false)
             .map_err(|e| self.failure(e, at))?;
+        side.settle();
         Ok((side.mean().clone(), side.covariance().clone()))
     }
 }
