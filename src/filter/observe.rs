@@ -158,6 +158,17 @@ impl ObsSpace {
                     self.block[a + b * d] = self.s[(ck.row + a) + (ck.row + b) * m];
                 }
             }
+            if d == 1 {
+                // A scalar reading (the common case): NIS = ν² / s.
+                let (s, nu) = (self.block[0], self.nu[ck.row]);
+                if !(s > 0.0) {
+                    return Err(FilterError::NotPositive("innovation covariance"));
+                }
+                self.block_l[0] = s.sqrt();
+                ck.nis = nu * nu / s;
+                ck.accepted = thresholds.is_none_or(|t| ck.nis <= t[ck.sensor]);
+                continue;
+            }
             cholesky(&self.block[..d * d], &mut self.block_l[..d * d], d)
                 .map_err(|_| FilterError::NotPositive("innovation covariance"))?;
             ck.nis = mahalanobis(
@@ -194,6 +205,16 @@ impl ObsSpace {
     /// updates that do not use the gain (the ensemble transform).
     pub fn factor(&mut self) -> Result<(), FilterError> {
         let ma = self.ma;
+        if ma == 1 {
+            // One scalar reading: the same formula as its gate check, ν² / s.
+            let s = self.s_acc[0];
+            if !(s > 0.0) {
+                return Err(FilterError::NotPositive("innovation covariance"));
+            }
+            self.l_acc[0] = s.sqrt();
+            self.joint_nis = self.nu_acc[0] * self.nu_acc[0] / s;
+            return Ok(());
+        }
         if self.checks.len() == 1 && self.checks[0].dim == ma {
             // One sensor holds every accepted row: S is the block the gate has just
             // factored, so its factor (the same numbers) is reused.
@@ -215,6 +236,14 @@ impl ObsSpace {
     pub fn gain(&mut self) -> Result<(), FilterError> {
         let (ma, n) = (self.ma, self.n);
         self.factor()?;
+        if ma == 1 {
+            // K = C / s for one scalar reading.
+            let s = self.s_acc[0];
+            for i in 0..n {
+                self.kt[i] = self.c_acc[i] / s;
+            }
+            return Ok(());
+        }
         // Kᵀ (ma × n) = S⁻¹ Cᵀ: column i of Kᵀ solves S k = row i of C.
         for i in 0..n {
             for a in 0..ma {

@@ -172,6 +172,8 @@ pub struct Predictor {
     q_step: DMatrix<f64>,
     drift: DVector<f64>,
     q_zero: bool,
+    /// Whether every estimated parameter's drift is zero (so per-step noise is `q_step`).
+    drift_zero: bool,
     // Integrators and their state vectors.
     ode_g: Dopri5,
     rk_g: Rk4,
@@ -204,6 +206,7 @@ impl Predictor {
             ProcessNoise::Density(q) => (q.clone(), DMatrix::zeros(n, n), DVector::zeros(n)),
             ProcessNoise::PerStep { q, drift } => (DMatrix::zeros(n, n), q.clone(), drift.clone()),
         };
+        let drift_zero = drift.iter().all(|d| *d == 0.0);
         let q_zero = is_zero(&qc) && is_zero(&q_step) && drift.iter().all(|d| *d == 0.0);
         let (disc, dcache, b_lin, has_offset) = match &model.dynamics {
             Dynamics::Linear {
@@ -254,6 +257,7 @@ impl Predictor {
             q_step,
             drift,
             q_zero,
+            drift_zero,
             ode_g: Self::dopri(n + n * n, &integration),
             rk_g: Rk4::new(g_dim),
             y_g: vec![0.0; g_dim],
@@ -363,8 +367,12 @@ impl Predictor {
                 ..
             } => {
                 let k = Self::grid_steps(dt, *grid);
+                // Without parameter drift the per-step noise is the model's own `q`.
                 let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
-                self.step_noise(*grid, &mut q);
+                if !self.drift_zero {
+                    self.step_noise(*grid, &mut q);
+                }
+                let q_used = if self.drift_zero { &self.q_step } else { &q };
                 if let Some(p) = phi.as_deref_mut() {
                     p.fill_with_identity();
                 }
@@ -376,7 +384,7 @@ impl Predictor {
                             *mi += b[(i, j)] * uj;
                         }
                     }
-                    congruence_plus(matrix, cov, &q, &mut self.tmp);
+                    congruence_plus(matrix, cov, q_used, &mut self.tmp);
                     if let Some(p) = phi.as_deref_mut() {
                         crate::filter::linalg::mul_ab(matrix, p, &mut self.tmp);
                         p.copy_from(&self.tmp);
@@ -391,9 +399,12 @@ impl Predictor {
                     mean[k] = self.pe.fx[k];
                 }
                 let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
-                self.step_noise(dt, &mut q);
+                if !self.drift_zero {
+                    self.step_noise(dt, &mut q);
+                }
+                let q_used = if self.drift_zero { &self.q_step } else { &q };
                 self.g.as_mut_slice().copy_from_slice(&self.pe.f_full);
-                congruence_plus(&self.g, cov, &q, &mut self.tmp);
+                congruence_plus(&self.g, cov, q_used, &mut self.tmp);
                 if let Some(p) = phi.as_deref_mut() {
                     p.copy_from(&self.g);
                 }
