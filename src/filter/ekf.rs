@@ -124,8 +124,24 @@ impl Estimator for Ekf {
         self.vars[n + nu] = t;
         for ck in &self.obs.checks {
             let sensor = &model.sensors[ck.sensor];
-            let slots = sensor.program.slots();
             let d = ck.dim;
+            if let Some(af) = &sensor.affine {
+                // z = H x + D u + c with constant H (e.g. a position gauge).
+                let cols = n + nu;
+                for a in 0..d {
+                    let row = &af.jacobian[a * cols..(a + 1) * cols];
+                    let mut z = af.offset[a];
+                    for (w, v) in row.iter().zip(&self.vars[..cols]) {
+                        z += w * v;
+                    }
+                    self.obs.zhat[ck.row + a] = z;
+                    for j in 0..n {
+                        self.h[(ck.row + a) + j * m] = row[j];
+                    }
+                }
+                continue;
+            }
+            let slots = sensor.program.slots();
             sensor.program.eval_jacobian(
                 &self.vars[..slots],
                 n,
@@ -172,8 +188,11 @@ impl Estimator for Ekf {
         }
         let a = self.a.as_mut_slice();
         gemm_nn(&self.k, &self.h_acc, a, (n, ma, n), false);
-        for (idx, v) in a.iter_mut().enumerate() {
-            *v = if idx % (n + 1) == 0 { 1.0 } else { 0.0 } - *v;
+        for v in a.iter_mut() {
+            *v = -*v;
+        }
+        for i in 0..n {
+            a[i + i * n] += 1.0;
         }
         mul_ab(&self.a, &self.cov, &mut self.t1);
         mul_abt(&self.t1, &self.a, &mut self.cov);

@@ -95,6 +95,10 @@ pub struct Sensor {
     pub dim: usize,
     /// Noise covariance, `dim × dim`, positive definite.
     pub r: DMatrix<f64>,
+    /// The formulas as `z = H x + D u + c` (columns: states, then inputs) when they are
+    /// affine with constant coefficients, as `measures: "pos"` is; the extended filter
+    /// then reads `H` instead of differentiating the tape every update.
+    pub affine: Option<crate::formula::AffineForm>,
 }
 
 /// The model a filter runs on.

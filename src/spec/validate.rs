@@ -609,11 +609,14 @@ fn sensors(
             }
         };
         if let Some(r) = r {
+            // Slots are [x, u, t]: affine in states and inputs, never reading t.
+            let affine = program.affine_form(slots.len() - 1);
             out.push(Sensor {
                 name: name.clone(),
                 program,
                 dim,
                 r,
+                affine,
             });
         }
     }

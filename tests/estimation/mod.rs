@@ -2,6 +2,7 @@
 //! R1–R10), plus resumption, properties and request validation. These call the same job
 //! functions the server does, so the whole path from JSON in to JSON out is exercised.
 
+mod affine_sensor;
 mod errors;
 mod properties;
 mod r10_integration;
