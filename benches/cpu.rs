@@ -54,6 +54,15 @@ fn per_step(setup: &Setup, readings: &[Reading], reps: usize, repeats: usize) ->
 }
 
 fn report(name: &str, target_per_s: f64, setup: &Setup, readings: &[Reading], reps: usize) {
+    // `cargo bench --bench cpu -- etkf` runs the lines whose name holds "etkf" (any case).
+    let filter: Vec<String> = std::env::args()
+        .skip(1)
+        .filter(|a| !a.starts_with('-'))
+        .map(|a| a.to_lowercase())
+        .collect();
+    if !filter.is_empty() && !filter.iter().any(|f| name.to_lowercase().contains(f)) {
+        return;
+    }
     let (s, cpu) = per_step(setup, readings, reps, 6);
     println!(
         "{name:<38} {:>9.0} ns/step  {:>9.0} steps per {} second  (target {})",
