@@ -354,8 +354,15 @@ fn read_all(file: &str) -> Result<Vec<u8>, CliError> {
 }
 
 fn print_body(body: &[u8]) -> Result<(), CliError> {
+    print_pieces(std::slice::from_ref(&body))
+}
+
+/// An answer written in pieces (a large batch's), one after the other, then a newline.
+fn print_pieces<B: AsRef<[u8]>>(parts: &[B]) -> Result<(), CliError> {
     let mut out = std::io::stdout().lock();
-    out.write_all(body)?;
+    for p in parts {
+        out.write_all(p.as_ref())?;
+    }
     out.write_all(b"\n")?;
     out.flush()?;
     Ok(())
@@ -404,11 +411,11 @@ fn run(a: &RunArgs) -> Result<(), CliError> {
         InputKind::Batch => {
             input.read_to_end(&mut first)?;
             let done = if a.smooth {
-                job::smooth(&first, &limits, &cancel)?
+                job::smooth_pieces(&first, &limits, &cancel)?
             } else {
-                job::estimate(&first, &limits, &cancel)?
+                job::estimate_pieces(&first, &limits, &cancel)?
             };
-            print_body(&done.body)
+            print_pieces(&done.parts)
         }
         InputKind::Stream if a.smooth => Err(CliError::Other(
             "--smooth needs the whole batch as one JSON document (as for POST /v1/smooth), not NDJSON".into(),
