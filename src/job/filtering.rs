@@ -250,7 +250,7 @@ fn run_batch_overlapping(
     } else if overlap {
         parts = ctx.filter_overlapped(&mut run, &mut preds)?;
     } else {
-        let mut block = ctx.shape.block();
+        let mut block = ctx.shape.block(lines.len());
         let mut first = true;
         ctx.filter(&mut run, &mut preds, &mut block, |b| {
             b.write(&writer, &mut head, first);
@@ -310,9 +310,10 @@ impl Shape {
         }
     }
 
-    /// An empty block of records.
-    fn block(&self) -> Records {
-        let steps = Records::block_steps(self.n, self.rows);
+    /// An empty block of records for at most `lines` steps (a small request's block
+    /// stays small: a large one would be mapped and unmapped by the allocator each time).
+    fn block(&self, lines: usize) -> Records {
+        let steps = Records::block_steps(self.n, self.rows).min(lines);
         Records::new(self.n, self.rows, self.sensors, steps)
     }
 
@@ -384,7 +385,7 @@ impl Lines<'_> {
             let (full_tx, full_rx) = mpsc::sync_channel::<Records>(BLOCKS_IN_FLIGHT);
             let (empty_tx, empty_rx) = mpsc::channel::<Records>();
             for _ in 0..BLOCKS_IN_FLIGHT {
-                let _ = empty_tx.send(shape.block());
+                let _ = empty_tx.send(shape.block(usize::MAX));
             }
             let written = std::thread::Builder::new()
                 .name("tacit-writer".into())
@@ -395,7 +396,7 @@ impl Lines<'_> {
                         format!("could not start the writing thread: {e}"),
                     )
                 })?;
-            let mut block = shape.block();
+            let mut block = shape.block(usize::MAX);
             let filtered = self.filter(run, preds, &mut block, |b| {
                 // The writer hands every block back unless it has died; its panic is
                 // raised again below.
