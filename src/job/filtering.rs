@@ -1,5 +1,6 @@
 //! Estimate, smooth and stream: parse the request once, run the filter line by line and
-//! write each estimate as it is made.
+//! write each estimate as it is made. A large batch is parsed, filtered and written on
+//! three threads at once (see [`OVERLAP_MIN_LINES`]), with the same bytes as on one.
 
 use crate::config::Limits;
 use crate::filter::run::Run;
@@ -187,9 +188,10 @@ impl Predictions<'_> {
     }
 }
 
-/// A batch of at least this many lines is written as JSON on a second thread while it is
-/// still being filtered, so its time is about the larger of the two rather than their sum.
-/// Below it, a thread and its hand-overs would cost more than they save.
+/// A batch of at least this many lines is parsed on one more thread and written as JSON on
+/// another while it is being filtered, so its time is about the longest of the three
+/// rather than their sum. Below it, threads and their hand-overs would cost more than
+/// they save.
 pub const OVERLAP_MIN_LINES: usize = 4096;
 
 /// Blocks of records in flight between the two threads (besides the one being filled).
@@ -252,7 +254,11 @@ fn run_batch_overlapping(
     } else {
         let mut block = ctx.shape.block(lines.len());
         let mut first = true;
-        ctx.filter(&mut run, &mut preds, &mut block, |b| {
+        let mut source = ParseHere {
+            lines: &ctx,
+            reading: Reading::default(),
+        };
+        ctx.filter(&mut run, &mut preds, &mut source, &mut block, |b| {
             b.write(&writer, &mut head, first);
             first = false;
             b.clear();
@@ -336,22 +342,21 @@ struct Lines<'a> {
 
 impl Lines<'_> {
     /// Filter every line, copying each estimate into `block`; `flush` takes a full block
-    /// (and the last one) and leaves an empty one in its place.
+    /// (and the last one) and leaves an empty one in its place. The parsed lines come
+    /// from `source`, in order.
     fn filter(
         &self,
         run: &mut Run,
         preds: &mut Predictions<'_>,
+        source: &mut impl Source,
         block: &mut Records,
         mut flush: impl FnMut(&mut Records) -> Result<(), Problem>,
     ) -> Result<(), Problem> {
-        let mut reading = Reading::default();
-        for (i, raw) in self.lines.iter().enumerate() {
+        for i in 0..self.lines.len() {
             self.guard.check(i)?;
-            self.parser
-                .parse(raw.get(), &mut reading)
-                .map_err(|e| line_problem(e.under(&line_pointer(i))))?;
+            let reading = source.next(i)?;
             preds.write(run, self.writer, Some(&reading.t))?;
-            run.step(&reading, "")
+            run.step(reading, "")
                 .map_err(|p| problem_under(p, &line_pointer(i)))?;
             let est = run.estimator();
             block.push(
@@ -371,9 +376,19 @@ impl Lines<'_> {
         Ok(())
     }
 
-    /// [`Lines::filter`] with the JSON written on a second thread from full blocks; the
-    /// answer's estimates come back as pieces in order. Nothing is answered before the
-    /// whole run has succeeded: on a failure the written pieces are dropped.
+    /// Parse line `i` here, for a batch read on one thread.
+    fn parse_line(&self, i: usize, out: &mut Reading) -> Result<(), Problem> {
+        self.parser
+            .parse(self.lines[i].get(), out)
+            .map_err(|e| line_problem(e.under(&line_pointer(i))))
+    }
+
+    /// [`Lines::filter`] on three threads: one parses the lines into blocks of readings,
+    /// this one filters them, and one writes the JSON from blocks of records; the
+    /// answer's estimates come back as pieces in order. Each hand-over is a bounded
+    /// channel with emptied blocks coming back, so nothing is allocated per line. Nothing
+    /// is answered before the whole run has succeeded: on a failure the pieces are
+    /// dropped, and the first failing line is the one reported, as on one thread.
     fn filter_overlapped(
         &self,
         run: &mut Run,
@@ -390,28 +405,69 @@ impl Lines<'_> {
             let written = std::thread::Builder::new()
                 .name("tacit-writer".into())
                 .spawn_scoped(s, move || write_blocks(writer, shape, full_rx, empty_tx))
-                .map_err(|e| {
-                    Problem::new(
-                        ProblemKind::Internal,
-                        format!("could not start the writing thread: {e}"),
-                    )
-                })?;
+                .map_err(|e| thread_failed("writing", e))?;
+            let (parsed_tx, parsed_rx) = mpsc::sync_channel::<ReadingBlock>(BLOCKS_IN_FLIGHT);
+            let (spent_tx, spent_rx) = mpsc::channel::<ReadingBlock>();
+            for _ in 0..=BLOCKS_IN_FLIGHT {
+                let _ = spent_tx.send(ReadingBlock::default());
+            }
+            let parsed = std::thread::Builder::new()
+                .name("tacit-reader".into())
+                .spawn_scoped(s, move || self.parse_blocks(parsed_tx, spent_rx))
+                .map_err(|e| thread_failed("reading", e))?;
+            let mut source = Parsed {
+                full: parsed_rx,
+                spent: spent_tx,
+                block: ReadingBlock::default(),
+                pos: 0,
+            };
             let mut block = shape.block(usize::MAX);
-            let filtered = self.filter(run, preds, &mut block, |b| {
+            let filtered = self.filter(run, preds, &mut source, &mut block, |b| {
                 // The writer hands every block back unless it has died; its panic is
                 // raised again below.
-                let empty = empty_rx.recv().map_err(|_| writer_gone())?;
+                let empty = empty_rx.recv().map_err(|_| thread_gone())?;
                 full_tx
                     .send(std::mem::replace(b, empty))
-                    .map_err(|_| writer_gone())
+                    .map_err(|_| thread_gone())
             });
-            drop(full_tx);
-            let parts = match written.join() {
-                Ok(parts) => parts,
-                Err(panic) => std::panic::resume_unwind(panic),
+            // Closing the channels stops the other two threads if this one stopped early.
+            drop((source, full_tx, empty_rx));
+            let parts = match (written.join(), parsed.join()) {
+                (Ok(parts), Ok(())) => parts,
+                (Err(panic), _) | (_, Err(panic)) => std::panic::resume_unwind(panic),
             };
             filtered.map(|()| parts)
         })
+    }
+
+    /// The reading thread: parse the lines in order into blocks; a line that fails ends
+    /// its block and the thread, the block carrying the line's problem.
+    fn parse_blocks(
+        &self,
+        full: mpsc::SyncSender<ReadingBlock>,
+        spent: mpsc::Receiver<ReadingBlock>,
+    ) {
+        let mut i = 0;
+        while i < self.lines.len() {
+            let Ok(mut b) = spent.recv() else { return };
+            b.len = 0;
+            b.error = None;
+            while b.len < READINGS_PER_BLOCK && i < self.lines.len() {
+                if b.readings.len() == b.len {
+                    b.readings.push(Reading::default());
+                }
+                if let Err(p) = self.parse_line(i, &mut b.readings[b.len]) {
+                    b.error = Some(p);
+                    i = self.lines.len();
+                    break;
+                }
+                b.len += 1;
+                i += 1;
+            }
+            if full.send(b).is_err() {
+                return;
+            }
+        }
     }
 
     /// Filter every line keeping what the smoother needs, smooth, and write the smoothed
@@ -482,8 +538,78 @@ fn write_blocks(
     parts
 }
 
-fn writer_gone() -> Problem {
-    Problem::new(ProblemKind::Internal, "the writing thread stopped early")
+fn thread_gone() -> Problem {
+    Problem::new(
+        ProblemKind::Internal,
+        "a reading or writing thread stopped early",
+    )
+}
+
+fn thread_failed(what: &str, e: std::io::Error) -> Problem {
+    Problem::new(
+        ProblemKind::Internal,
+        format!("could not start the {what} thread: {e}"),
+    )
+}
+
+/// Lines per block handed from the reading thread to the filtering thread.
+const READINGS_PER_BLOCK: usize = 512;
+
+/// Where the filtering loop takes its parsed lines from, in order.
+trait Source {
+    /// The reading of line `i`, or the problem of that line.
+    fn next(&mut self, i: usize) -> Result<&Reading, Problem>;
+}
+
+/// Lines parsed on the filtering thread itself, one at a time.
+struct ParseHere<'a, 'b> {
+    lines: &'b Lines<'a>,
+    reading: Reading,
+}
+
+impl Source for ParseHere<'_, '_> {
+    fn next(&mut self, i: usize) -> Result<&Reading, Problem> {
+        self.lines.parse_line(i, &mut self.reading)?;
+        Ok(&self.reading)
+    }
+}
+
+/// Parsed lines handed over by the reading thread.
+#[derive(Default)]
+struct ReadingBlock {
+    /// Reused from block to block, so their buffers are allocated once.
+    readings: Vec<Reading>,
+    /// Readings filled in this block.
+    len: usize,
+    /// The problem of the line after the last one filled, which ended the reading.
+    error: Option<Problem>,
+}
+
+/// The filtering thread's end of the reading thread's channels.
+struct Parsed {
+    full: mpsc::Receiver<ReadingBlock>,
+    spent: mpsc::Sender<ReadingBlock>,
+    block: ReadingBlock,
+    pos: usize,
+}
+
+impl Source for Parsed {
+    fn next(&mut self, _i: usize) -> Result<&Reading, Problem> {
+        loop {
+            if self.pos < self.block.len {
+                self.pos += 1;
+                return Ok(&self.block.readings[self.pos - 1]);
+            }
+            if let Some(p) = self.block.error.take() {
+                return Err(p);
+            }
+            let next = self.full.recv().map_err(|_| thread_gone())?;
+            let spent = std::mem::replace(&mut self.block, next);
+            // The reading thread may have finished; then the block is simply dropped.
+            let _ = self.spent.send(spent);
+            self.pos = 0;
+        }
+    }
 }
 
 /// A stream in progress (see [`crate::job::StreamSession`]).
@@ -581,7 +707,7 @@ mod tests {
 
     /// A batch that exercises every part of an estimate line: two sensors (one a vector),
     /// lines with one, both or neither, a gated outlier, inputs, and prediction times.
-    fn body(lines: usize, covariance: &str, bad_line: Option<usize>) -> Vec<u8> {
+    fn body(lines: usize, covariance: &str, bad_line: Option<usize>, bad_sensor: bool) -> Vec<u8> {
         let mut s = String::from(
             r#"{"model":{"states":["pos","vel"],"inputs":["force"],
             "dynamics":{"rates":{"pos":"vel","vel":"force"}},
@@ -605,6 +731,9 @@ mod tests {
             };
             let pos = 0.3 * t + ((k * 7919) % 101) as f64 * 1e-3;
             let line = match k % 7 {
+                _ if bad_line == Some(k - 1) && bad_sensor => {
+                    format!(r#"{{"t":{t},"values":{{"tachometer":1.0}}}}"#)
+                }
                 0 => format!(r#"{{"t":{t},"inputs":{{"force":0.5}}}}"#),
                 3 => format!(r#"{{"t":{t},"values":{{"pair":[{pos},0.3],"encoder":{pos}}}}}"#),
                 5 => format!(r#"{{"t":{t},"values":{{"encoder":{}}}}}"#, pos + 50.0),
@@ -623,11 +752,11 @@ mod tests {
     }
 
     #[test]
-    fn the_writing_thread_gives_the_same_bytes_as_one_thread() {
+    fn the_reading_and_writing_threads_give_the_same_bytes_as_one_thread() {
         // Lines enough for several blocks of records, so the hand-over and the piece
         // boundaries are crossed many times.
         for covariance in ["full", "std", "none"] {
-            let b = body(3 * 4096 + 17, covariance, None);
+            let b = body(3 * 4096 + 17, covariance, None, false);
             let one = run(&b, usize::MAX).unwrap();
             let two = run(&b, 1).unwrap();
             assert_eq!(one.parts.len(), 1);
@@ -647,11 +776,18 @@ mod tests {
 
     #[test]
     fn a_failing_line_fails_the_whole_overlapped_batch_with_its_pointer() {
-        let b = body(2 * 4096 + 5, "full", Some(5000));
-        let one = run(&b, usize::MAX).unwrap_err();
-        let two = run(&b, 1).unwrap_err();
-        assert_eq!(two.status, 422);
-        assert_eq!(two.errors[0].pointer, "/measurements/5000/t");
-        assert_eq!(one.to_json(), two.to_json());
+        // A time going backwards fails in the filter, an unknown sensor in the reader;
+        // either way the answer is the first failing line's problem, as on one thread.
+        for (bad_sensor, pointer) in [
+            (false, "/measurements/5000/t"),
+            (true, "/measurements/5000/values/tachometer"),
+        ] {
+            let b = body(2 * 4096 + 5, "full", Some(5000), bad_sensor);
+            let one = run(&b, usize::MAX).unwrap_err();
+            let two = run(&b, 1).unwrap_err();
+            assert_eq!(two.status, 422);
+            assert_eq!(two.errors[0].pointer, pointer);
+            assert_eq!(one.to_json(), two.to_json());
+        }
     }
 }
