@@ -101,19 +101,37 @@ impl Writer {
         buf.push(b']');
     }
 
-    /// A square `n × n` matrix stored by columns (as nalgebra stores it), as rows.
+    /// A square `n × n` matrix stored by columns (as nalgebra stores it), as rows. A
+    /// covariance is symmetric, so an entry below the diagonal whose bits equal its mirror
+    /// above is copied from the mirror's text instead of being formatted again (the same
+    /// bytes either way; an entry that differs in any bit is formatted on its own).
     fn square(&self, buf: &mut Vec<u8>, m: &[f64], n: usize) {
+        // Where each entry above the diagonal was written, for models of up to this many
+        // states (the array lives on the stack); larger ones format every entry.
+        const MIRROR_UP_TO: usize = 8;
+        let mut spans = [(0usize, 0usize); MIRROR_UP_TO * MIRROR_UP_TO];
+        let mirror = n <= MIRROR_UP_TO;
         buf.push(b'[');
         for i in 0..n {
             if i > 0 {
                 buf.push(b',');
             }
             buf.push(b'[');
-            for (j, col) in m.chunks_exact(n).enumerate() {
+            for j in 0..n {
                 if j > 0 {
                     buf.push(b',');
                 }
-                num(buf, col[i]);
+                let x = m[i + j * n];
+                if mirror && j < i && x.to_bits() == m[j + i * n].to_bits() {
+                    let (from, to) = spans[j * MIRROR_UP_TO + i];
+                    buf.extend_from_within(from..to);
+                } else {
+                    let from = buf.len();
+                    num(buf, x);
+                    if mirror && j > i {
+                        spans[i * MIRROR_UP_TO + j] = (from, buf.len());
+                    }
+                }
             }
             buf.push(b']');
         }
@@ -303,5 +321,45 @@ impl Writer {
             nis: counts.nis.summary(),
         };
         buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::spec::model::OutputConfig;
+
+    fn square_text(m: &[f64], n: usize) -> String {
+        let w = Writer {
+            state_keys: Vec::new(),
+            sensor_keys: Vec::new(),
+            input_keys: Vec::new(),
+            states_json: Vec::new(),
+            mode: TimeMode::Seconds,
+            out: OutputConfig::default(),
+        };
+        let mut buf = b"prefix".to_vec();
+        w.square(&mut buf, m, n);
+        String::from_utf8(buf).unwrap()
+    }
+
+    #[test]
+    fn a_square_matrix_is_written_by_rows_with_mirrored_entries_copied() {
+        // Stored by columns: m[i + j n] is row i, column j. zmij writes a positive
+        // exponent with its sign (1e+300), JSON either way.
+        let m = [1.0, 0.25, -3e-7, 0.25, 2.0, 1e300, -3e-7, 1e300, 3.5];
+        assert_eq!(
+            square_text(&m, 3),
+            "prefix[[1.0,0.25,-3e-7],[0.25,2.0,1e+300],[-3e-7,1e+300,3.5]]"
+        );
+        // An entry that differs from its mirror in the last bit is formatted on its own:
+        // 0.1 and the next double up, 0.10000000000000002 (shortest round-trip forms,
+        // common practice).
+        let a = 0.1f64;
+        let b = f64::from_bits(a.to_bits() + 1);
+        assert_eq!(
+            square_text(&[1.0, a, b, 2.0], 2),
+            "prefix[[1.0,0.10000000000000002],[0.1,2.0]]"
+        );
     }
 }
