@@ -175,6 +175,35 @@ async fn chunked_requests_give_bit_identical_estimates() {
     }
 }
 
+#[tokio::test]
+async fn a_batch_written_in_pieces_declares_its_length_and_chains_bit_identically() {
+    // 6000 lines: past the size from which the answer is written by a second thread and
+    // sent in pieces; the two halves alone are written on one thread. Splitting a run
+    // must give the same estimates bit for bit (API.md), so both ways must agree.
+    let s = start_default().await;
+    let all = readings(6000);
+    let single = post_json(&s, "/v1/estimate", &estimate_body("ekf", 6000)).await;
+    assert_eq!(single.status, 200, "{}", single.text);
+    let declared: usize = single.headers["content-length"]
+        .to_str()
+        .unwrap()
+        .parse()
+        .unwrap();
+    assert_eq!(declared, single.text.len());
+    let mut chained = Vec::new();
+    let mut p = prior();
+    for half in all.chunks(3000) {
+        let body =
+            json!({"model": cv_model(), "filter": filter("ekf"), "prior": p, "measurements": half});
+        let a = post_json(&s, "/v1/estimate", &body).await;
+        assert_eq!(a.status, 200, "{}", a.text);
+        chained.extend(a.body["estimates"].as_array().unwrap().iter().cloned());
+        p = a.body["posterior"].clone();
+    }
+    assert!(Value::Array(chained) == single.body["estimates"]);
+    assert_eq!(p, single.body["posterior"]);
+}
+
 fn ndjson(header: &Value, lines: &[Value]) -> String {
     let mut s = serde_json::to_string(header).unwrap();
     s.push('\n');

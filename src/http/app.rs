@@ -18,7 +18,9 @@ use axum::Router;
 use std::any::Any;
 use tower_http::catch_panic::CatchPanicLayer;
 use tower_http::cors::{AllowOrigin, CorsLayer};
-use tower_http::request_id::{MakeRequestUuid, PropagateRequestIdLayer, SetRequestIdLayer};
+use tower_http::request_id::{
+    MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
+};
 use tower_http::trace::{DefaultOnResponse, TraceLayer};
 
 /// The header carrying each request's id (taken from the client or generated).
@@ -66,8 +68,35 @@ pub fn layered(router: Router<AppState>, state: AppState) -> Router {
                 // would cost more than the work. Failures still log at error.
                 .on_response(DefaultOnResponse::new().level(tracing::Level::DEBUG)),
         )
-        .layer(SetRequestIdLayer::new(request_id, MakeRequestUuid))
+        .layer(SetRequestIdLayer::new(request_id, RandomUuid))
         .with_state(state)
+}
+
+/// Generates request ids: random (version 4) UUIDs, as `MakeRequestUuid` makes, but drawn
+/// from the thread's cryptographic generator (seeded once from the OS) instead of one
+/// `getrandom` system call per request.
+#[derive(Debug, Clone, Copy)]
+struct RandomUuid;
+
+impl MakeRequestId for RandomUuid {
+    fn make_request_id<B>(&mut self, _: &axum::http::Request<B>) -> Option<RequestId> {
+        let text = uuid_v4(rand::random::<u128>());
+        HeaderValue::from_str(&text).ok().map(RequestId::new)
+    }
+}
+
+/// `bits` as a version-4, variant-1 UUID in the hyphenated form (RFC 9562 section 5.4).
+fn uuid_v4(bits: u128) -> String {
+    let bits = (bits & !(0xf << 76) & !(0x3 << 62)) | (0x4 << 76) | (0x2 << 62);
+    let hex = format!("{bits:032x}");
+    format!(
+        "{}-{}-{}-{}-{}",
+        &hex[0..8],
+        &hex[8..12],
+        &hex[12..16],
+        &hex[16..20],
+        &hex[20..32]
+    )
 }
 
 fn cors_layer(origins: &[String]) -> Option<CorsLayer> {
@@ -118,4 +147,29 @@ async fn method_not_allowed(req: Request) -> Response {
 fn on_panic(payload: Box<dyn Any + Send + 'static>) -> Response {
     tracing::error!(panic = %panic_message(&*payload), "handler panicked; answering 500");
     problem_response(&internal())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::uuid_v4;
+
+    #[test]
+    fn generated_ids_are_version_4_uuids() {
+        // RFC 9562 section 5.4: version nibble 4 (13th hex digit), variant bits 10 (17th
+        // hex digit one of 8, 9, a, b), 8-4-4-4-12 hex digits.
+        for bits in [0u128, u128::MAX, 0x0123_4567_89ab_cdef_0123_4567_89ab_cdef] {
+            let id = uuid_v4(bits);
+            let parts: Vec<&str> = id.split('-').collect();
+            let lens: Vec<usize> = parts.iter().map(|p| p.len()).collect();
+            assert_eq!(lens, [8, 4, 4, 4, 12], "{id}");
+            assert!(
+                id.chars().all(|c| c == '-' || c.is_ascii_hexdigit()),
+                "{id}"
+            );
+            assert_eq!(&parts[2][..1], "4", "{id}");
+            assert!("89ab".contains(&parts[3][..1]), "{id}");
+        }
+        assert_eq!(uuid_v4(0), "00000000-0000-4000-8000-000000000000");
+        assert_eq!(uuid_v4(u128::MAX), "ffffffff-ffff-4fff-bfff-ffffffffffff");
+    }
 }

@@ -6,8 +6,9 @@ use super::lane::SMALL_BODY;
 use super::problem::{internal, overloaded, problem_response, public};
 use super::state::AppState;
 use crate::config::Limits;
-use crate::job::Done;
+use crate::job::{Done, Pieces, RunStats};
 use crate::problem::Problem;
+use axum::body::Body;
 use axum::http::{header, HeaderValue};
 use axum::response::{IntoResponse, Response};
 use std::any::Any;
@@ -57,11 +58,38 @@ impl Drop for CancelOnDrop {
     }
 }
 
+/// What a job hands back on success: a JSON body (whole or in pieces) and its counters.
+pub trait Answer: Send + 'static {
+    /// The work counters, for metrics.
+    fn stats(&self) -> &RunStats;
+    /// The `200 application/json` response.
+    fn into_json_response(self) -> Response;
+}
+
+impl Answer for Done {
+    fn stats(&self) -> &RunStats {
+        &self.stats
+    }
+    fn into_json_response(self) -> Response {
+        json_response(self.body)
+    }
+}
+
+impl Answer for Pieces {
+    fn stats(&self) -> &RunStats {
+        &self.stats
+    }
+    fn into_json_response(self) -> Response {
+        pieces_response(self)
+    }
+}
+
 /// Run `work` on the blocking pool under a job slot and answer with its JSON, its
 /// problem, a 503 when no slot is free, or a generic 500 when it panicked.
-pub async fn run_job<F>(state: &AppState, route: &str, work: F) -> Response
+pub async fn run_job<T, F>(state: &AppState, route: &str, work: F) -> Response
 where
-    F: FnOnce(&Limits, &AtomicBool) -> Result<Done, Problem> + Send + 'static,
+    T: Answer,
+    F: FnOnce(&Limits, &AtomicBool) -> Result<T, Problem> + Send + 'static,
 {
     run_job_sized(state, route, usize::MAX, work).await
 }
@@ -70,9 +98,15 @@ where
 /// compute lane (cheaper to hand over than `spawn_blocking`) unless the lane is stuck on
 /// slow jobs. Either way the work runs off the executor, under the same slot, cancel flag
 /// and deadline.
-pub async fn run_job_sized<F>(state: &AppState, route: &str, body_len: usize, work: F) -> Response
+pub async fn run_job_sized<T, F>(
+    state: &AppState,
+    route: &str,
+    body_len: usize,
+    work: F,
+) -> Response
 where
-    F: FnOnce(&Limits, &AtomicBool) -> Result<Done, Problem> + Send + 'static,
+    T: Answer,
+    F: FnOnce(&Limits, &AtomicBool) -> Result<T, Problem> + Send + 'static,
 {
     let Some(slot) = state.try_slot() else {
         state.metrics().record_shed(route);
@@ -87,7 +121,7 @@ where
         let _slot = slot;
         work(st.limits(), &cancel)
     };
-    let joined: Result<Result<Done, Problem>, String> =
+    let joined: Result<Result<T, Problem>, String> =
         if body_len <= SMALL_BODY && state.lane().open() {
             match state.lane().run(job).await {
                 Some(Ok(r)) => Ok(r),
@@ -104,8 +138,8 @@ where
     drop(guard);
     match joined {
         Ok(Ok(done)) => {
-            state.metrics().record_run(&done.stats);
-            json_response(done.body)
+            state.metrics().record_run(done.stats());
+            done.into_json_response()
         }
         Ok(Err(problem)) => problem_response(&public(problem)),
         Err(what) => {
@@ -123,6 +157,27 @@ pub fn json_response(body: Vec<u8>) -> Response {
         header::CONTENT_TYPE,
         HeaderValue::from_static("application/json"),
     );
+    res
+}
+
+/// A `200 application/json` response sending the pieces one after the other, with their
+/// total length declared (the run has finished: nothing here can fail any more).
+pub fn pieces_response(pieces: Pieces) -> Response {
+    if pieces.parts.len() == 1 {
+        return json_response(pieces.into_done().body);
+    }
+    let len = pieces.len();
+    let parts = pieces
+        .parts
+        .into_iter()
+        .map(|p| Ok::<_, std::convert::Infallible>(bytes::Bytes::from(p)));
+    let mut res = Body::from_stream(futures_util::stream::iter(parts)).into_response();
+    let h = res.headers_mut();
+    h.insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/json"),
+    );
+    h.insert(header::CONTENT_LENGTH, HeaderValue::from(len));
     res
 }
 

@@ -8,10 +8,13 @@
 use super::state::AppState;
 use crate::job::RunStats;
 use axum::extract::{MatchedPath, Request, State};
+use axum::http::Method;
 use axum::middleware::Next;
 use axum::response::Response;
+use metrics::{Counter, Histogram};
 use metrics_exporter_prometheus::{PrometheusBuilder, PrometheusHandle, PrometheusRecorder};
-use std::sync::Arc;
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 /// Bucket bounds of the duration histogram, seconds: from sub-millisecond single steps to
@@ -26,6 +29,26 @@ const DURATION_BUCKETS: &[f64] = &[
 pub struct Metrics {
     recorder: Arc<PrometheusRecorder>,
     handle: PrometheusHandle,
+    /// Handles of the per-request series, registered on first use: registering builds the
+    /// labels and looks the series up each time, which cost more than the increment.
+    requests: Arc<Mutex<HashMap<String, Vec<RequestSeries>>>>,
+    runs: Arc<Mutex<Vec<RunSeries>>>,
+}
+
+/// The request counter and duration histogram of one route, method and status.
+struct RequestSeries {
+    method: Method,
+    status: u16,
+    count: Counter,
+    duration: Histogram,
+}
+
+/// The filter counters of one method.
+struct RunSeries {
+    method: &'static str,
+    steps: Counter,
+    updates: Counter,
+    rejected: Counter,
 }
 
 impl Default for Metrics {
@@ -47,6 +70,8 @@ impl Metrics {
         Self {
             recorder: Arc::new(recorder),
             handle,
+            requests: Arc::default(),
+            runs: Arc::default(),
         }
     }
 
@@ -55,17 +80,38 @@ impl Metrics {
     }
 
     /// Count one finished request and its duration.
-    pub fn record_request(&self, route: &str, method: &str, status: u16, secs: f64) {
-        let route = route.to_string();
-        let method = method.to_string();
-        self.with(|| {
-            metrics::counter!("tacit_http_requests_total",
-                "route" => route.clone(), "method" => method.clone(), "status" => status.to_string())
-            .increment(1);
-            metrics::histogram!("tacit_http_request_duration_seconds",
-                "route" => route, "method" => method)
-            .record(secs);
-        });
+    pub fn record_request(&self, route: &str, method: &Method, status: u16, secs: f64) {
+        let mut cache = self.requests.lock().unwrap_or_else(|p| p.into_inner());
+        let series = match cache.get_mut(route) {
+            Some(list) => list,
+            None => cache.entry(route.to_string()).or_default(),
+        };
+        let found = series
+            .iter()
+            .position(|s| s.status == status && s.method == *method);
+        let s = match found {
+            Some(i) => &series[i],
+            None => {
+                let (r, m) = (route.to_string(), method.as_str().to_string());
+                let (count, duration) = self.with(|| {
+                    (
+                        metrics::counter!("tacit_http_requests_total",
+                            "route" => r.clone(), "method" => m.clone(), "status" => status.to_string()),
+                        metrics::histogram!("tacit_http_request_duration_seconds",
+                            "route" => r, "method" => m),
+                    )
+                });
+                series.push(RequestSeries {
+                    method: method.clone(),
+                    status,
+                    count,
+                    duration,
+                });
+                &series[series.len() - 1]
+            }
+        };
+        s.count.increment(1);
+        s.duration.record(secs);
     }
 
     /// Count a request refused for lack of a job slot.
@@ -80,12 +126,24 @@ impl Metrics {
             return;
         }
         let m = stats.method;
-        self.with(|| {
-            metrics::counter!("tacit_filter_steps_total", "method" => m).increment(stats.steps);
-            metrics::counter!("tacit_filter_updates_total", "method" => m).increment(stats.updates);
-            metrics::counter!("tacit_filter_rejected_readings_total", "method" => m)
-                .increment(stats.rejected);
-        });
+        let mut runs = self.runs.lock().unwrap_or_else(|p| p.into_inner());
+        let i = match runs.iter().position(|r| r.method == m) {
+            Some(i) => i,
+            None => {
+                let series = self.with(|| RunSeries {
+                    method: m,
+                    steps: metrics::counter!("tacit_filter_steps_total", "method" => m),
+                    updates: metrics::counter!("tacit_filter_updates_total", "method" => m),
+                    rejected: metrics::counter!("tacit_filter_rejected_readings_total", "method" => m),
+                });
+                runs.push(series);
+                runs.len() - 1
+            }
+        };
+        let r = &runs[i];
+        r.steps.increment(stats.steps);
+        r.updates.increment(stats.updates);
+        r.rejected.increment(stats.rejected);
     }
 
     /// Count a panic caught in a handler or a job.
@@ -102,15 +160,12 @@ impl Metrics {
 /// Middleware: time each request and count it under its route template (not its raw
 /// path, which would let clients create unbounded label values).
 pub async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
-    let route = req
-        .extensions()
-        .get::<MatchedPath>()
-        .map_or_else(|| "unmatched".to_string(), |p| p.as_str().to_string());
-    let method = req.method().as_str().to_string();
+    let route = req.extensions().get::<MatchedPath>().cloned();
+    let method = req.method().clone();
     let start = Instant::now();
     let res = next.run(req).await;
     state.metrics().record_request(
-        &route,
+        route.as_ref().map_or("unmatched", MatchedPath::as_str),
         &method,
         res.status().as_u16(),
         start.elapsed().as_secs_f64(),

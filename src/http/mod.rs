@@ -21,7 +21,7 @@ pub use app::{app, layered};
 pub use auth::ApiKeys;
 pub use config::ServerConfig;
 pub use extract::JsonBody;
-pub use jobs::{run_job, run_job_sized, CancelOnDrop};
+pub use jobs::{run_job, run_job_sized, Answer, CancelOnDrop};
 pub use metrics::Metrics;
 pub use ndjson::{LineError, LineSplitter};
 pub use openapi::{openapi_json, OPENAPI_YAML};

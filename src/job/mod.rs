@@ -6,6 +6,7 @@
 
 use crate::config::Limits;
 mod filtering;
+pub mod records;
 pub mod write;
 
 use crate::problem::Problem;
@@ -33,14 +34,67 @@ pub struct Done {
     pub stats: RunStats,
 }
 
+/// A finished request whose JSON body is in pieces, to be sent one after the other.
+///
+/// A large batch answer is written in blocks by a second thread; keeping the blocks apart
+/// spares joining hundreds of megabytes into one buffer (and copying them while it grows).
+#[derive(Debug, Clone)]
+pub struct Pieces {
+    /// The body, in order.
+    pub parts: Vec<Vec<u8>>,
+    /// Work counters.
+    pub stats: RunStats,
+}
+
+impl Pieces {
+    /// Bytes of the whole body.
+    pub fn len(&self) -> usize {
+        self.parts.iter().map(Vec::len).sum()
+    }
+
+    /// True when the body is empty.
+    pub fn is_empty(&self) -> bool {
+        self.parts.iter().all(Vec::is_empty)
+    }
+
+    /// The body as one buffer.
+    pub fn into_done(self) -> Done {
+        let mut parts = self.parts.into_iter();
+        let mut body = parts.next().unwrap_or_default();
+        let rest: Vec<Vec<u8>> = parts.collect();
+        body.reserve_exact(rest.iter().map(Vec::len).sum());
+        for p in rest {
+            body.extend_from_slice(&p);
+        }
+        Done {
+            body,
+            stats: self.stats,
+        }
+    }
+}
+
 /// `POST /v1/estimate`: `{model, filter, prior, measurements, output?}`.
 /// `cancel` is polled between steps; when set the work stops early with an error.
 pub fn estimate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+    estimate_pieces(body, limits, cancel).map(Pieces::into_done)
+}
+
+/// [`estimate`] with the answer left in pieces (what the server sends).
+pub fn estimate_pieces(
+    body: &[u8],
+    limits: &Limits,
+    cancel: &AtomicBool,
+) -> Result<Pieces, Problem> {
     filtering::run_batch(body, limits, cancel, false)
 }
 
 /// `POST /v1/smooth`: same input as estimate, smoothed estimates out.
 pub fn smooth(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+    smooth_pieces(body, limits, cancel).map(Pieces::into_done)
+}
+
+/// [`smooth`] with the answer left in pieces.
+pub fn smooth_pieces(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Pieces, Problem> {
     filtering::run_batch(body, limits, cancel, true)
 }
 

@@ -1,5 +1,5 @@
 //! Hand-written JSON output for estimates, posteriors and summaries: names are escaped once
-//! per request, numbers go through `ryu` (shortest round-trip form, so a posterior sent back
+//! per request, numbers go through `zmij` (shortest round-trip form, so a posterior sent back
 //! as a prior is read to the same bits), and nothing is built as a tree first.
 
 use crate::diagnostics::nis::NisSummary;
@@ -28,7 +28,7 @@ fn key(name: &str) -> Vec<u8> {
 /// Append a finite number (callers have checked finiteness; a stray non-finite becomes null).
 pub fn num(buf: &mut Vec<u8>, x: f64) {
     if x.is_finite() {
-        let mut b = ryu::Buffer::new();
+        let mut b = zmij::Buffer::new();
         buf.extend_from_slice(b.format_finite(x).as_bytes());
     } else {
         buf.extend_from_slice(b"null");
@@ -101,6 +101,43 @@ impl Writer {
         buf.push(b']');
     }
 
+    /// A square `n × n` matrix stored by columns (as nalgebra stores it), as rows. A
+    /// covariance is symmetric, so an entry below the diagonal whose bits equal its mirror
+    /// above is copied from the mirror's text instead of being formatted again (the same
+    /// bytes either way; an entry that differs in any bit is formatted on its own).
+    fn square(&self, buf: &mut Vec<u8>, m: &[f64], n: usize) {
+        // Where each entry above the diagonal was written, for models of up to this many
+        // states (the array lives on the stack); larger ones format every entry.
+        const MIRROR_UP_TO: usize = 8;
+        let mut spans = [(0usize, 0usize); MIRROR_UP_TO * MIRROR_UP_TO];
+        let mirror = n <= MIRROR_UP_TO;
+        buf.push(b'[');
+        for i in 0..n {
+            if i > 0 {
+                buf.push(b',');
+            }
+            buf.push(b'[');
+            for j in 0..n {
+                if j > 0 {
+                    buf.push(b',');
+                }
+                let x = m[i + j * n];
+                if mirror && j < i && x.to_bits() == m[j + i * n].to_bits() {
+                    let (from, to) = spans[j * MIRROR_UP_TO + i];
+                    buf.extend_from_within(from..to);
+                } else {
+                    let from = buf.len();
+                    num(buf, x);
+                    if mirror && j > i {
+                        spans[i * MIRROR_UP_TO + j] = (from, buf.len());
+                    }
+                }
+            }
+            buf.push(b']');
+        }
+        buf.push(b']');
+    }
+
     /// One estimate object; `obs` carries the innovations of the line's update, if any.
     pub fn estimate(
         &self,
@@ -139,6 +176,13 @@ impl Writer {
         mean: &DVector<f64>,
         cov: &DMatrix<f64>,
     ) {
+        self.estimate_head(buf, t, mean.as_slice(), cov.as_slice());
+    }
+
+    /// `{"t":..,"mean":..,"std":..,"covariance":..` of one estimate (without its closing
+    /// brace), from the mean and the covariance stored by columns.
+    pub fn estimate_head(&self, buf: &mut Vec<u8>, t: &Instant, mean: &[f64], cov: &[f64]) {
+        let n = mean.len();
         buf.extend_from_slice(b"{\"t\":");
         self.time(buf, t);
         buf.extend_from_slice(b",\"mean\":");
@@ -148,42 +192,68 @@ impl Writer {
             self.vector(
                 buf,
                 &self.state_keys,
-                (0..mean.len()).map(|i| cov[(i, i)].max(0.0).sqrt()),
+                (0..n).map(|i| cov[i + i * n].max(0.0).sqrt()),
             );
         }
         if self.out.covariance == CovarianceOutput::Full {
             buf.extend_from_slice(b",\"covariance\":");
-            self.matrix(buf, cov);
+            self.square(buf, cov, n);
         }
     }
 
     /// `,"innovations":{...}` for the sensors read on the line (nothing when none were read
     /// or innovations are switched off).
     pub fn innovations(&self, buf: &mut Vec<u8>, obs: &ObsSpace) {
-        if !self.out.innovations || obs.checks.is_empty() {
+        if !self.wants_innovations(obs) {
             return;
         }
-        buf.extend_from_slice(b",\"innovations\":{");
         let m = obs.m;
         for (i, ck) in obs.checks.iter().enumerate() {
-            if i > 0 {
-                buf.push(b',');
-            }
-            buf.extend_from_slice(&self.sensor_keys[ck.sensor]);
-            buf.extend_from_slice(b"{\"residual\":");
             let rows = ck.row..ck.row + ck.dim;
-            self.scalar_or_list(buf, rows.clone().map(|r| obs.nu[r]));
-            buf.extend_from_slice(b",\"std\":");
-            self.scalar_or_list(buf, rows.map(|r| obs.s[r + r * m].max(0.0).sqrt()));
-            buf.extend_from_slice(b",\"nis\":");
-            num(buf, ck.nis);
-            buf.extend_from_slice(if ck.accepted {
-                b",\"accepted\":true}"
-            } else {
-                b",\"accepted\":false}"
-            });
+            self.innovation(
+                buf,
+                i == 0,
+                ck.sensor,
+                rows.clone().map(|r| obs.nu[r]),
+                rows.map(|r| obs.s[r + r * m]),
+                ck.nis,
+                ck.accepted,
+            );
         }
         buf.push(b'}');
+    }
+
+    /// Whether [`Writer::innovations`] writes anything for `obs`.
+    pub fn wants_innovations(&self, obs: &ObsSpace) -> bool {
+        self.out.innovations && !obs.checks.is_empty()
+    }
+
+    /// One sensor's entry of `"innovations"`; the first one opens the object (the caller
+    /// closes it). `variances` are the diagonal of S, reported as standard deviations.
+    #[allow(clippy::too_many_arguments)]
+    pub fn innovation(
+        &self,
+        buf: &mut Vec<u8>,
+        first: bool,
+        sensor: usize,
+        residuals: impl ExactSizeIterator<Item = f64>,
+        variances: impl ExactSizeIterator<Item = f64>,
+        nis: f64,
+        accepted: bool,
+    ) {
+        buf.extend_from_slice(if first { b",\"innovations\":{" } else { b"," });
+        buf.extend_from_slice(&self.sensor_keys[sensor]);
+        buf.extend_from_slice(b"{\"residual\":");
+        self.scalar_or_list(buf, residuals);
+        buf.extend_from_slice(b",\"std\":");
+        self.scalar_or_list(buf, variances.map(|v| v.max(0.0).sqrt()));
+        buf.extend_from_slice(b",\"nis\":");
+        num(buf, nis);
+        buf.extend_from_slice(if accepted {
+            b",\"accepted\":true}"
+        } else {
+            b",\"accepted\":false}"
+        });
     }
 
     fn scalar_or_list(&self, buf: &mut Vec<u8>, xs: impl ExactSizeIterator<Item = f64>) {
@@ -220,7 +290,7 @@ impl Writer {
         buf.extend_from_slice(b",\"mean\":");
         self.vector(buf, &self.state_keys, mean.iter().copied());
         buf.extend_from_slice(b",\"covariance\":");
-        self.matrix(buf, cov);
+        self.square(buf, cov.as_slice(), cov.nrows());
         if !self.input_keys.is_empty() {
             buf.extend_from_slice(b",\"inputs\":");
             self.vector(buf, &self.input_keys, inputs.iter().copied());
@@ -251,5 +321,45 @@ impl Writer {
             nis: counts.nis.summary(),
         };
         buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::spec::model::OutputConfig;
+
+    fn square_text(m: &[f64], n: usize) -> String {
+        let w = Writer {
+            state_keys: Vec::new(),
+            sensor_keys: Vec::new(),
+            input_keys: Vec::new(),
+            states_json: Vec::new(),
+            mode: TimeMode::Seconds,
+            out: OutputConfig::default(),
+        };
+        let mut buf = b"prefix".to_vec();
+        w.square(&mut buf, m, n);
+        String::from_utf8(buf).unwrap()
+    }
+
+    #[test]
+    fn a_square_matrix_is_written_by_rows_with_mirrored_entries_copied() {
+        // Stored by columns: m[i + j n] is row i, column j. zmij writes a positive
+        // exponent with its sign (1e+300), JSON either way.
+        let m = [1.0, 0.25, -3e-7, 0.25, 2.0, 1e300, -3e-7, 1e300, 3.5];
+        assert_eq!(
+            square_text(&m, 3),
+            "prefix[[1.0,0.25,-3e-7],[0.25,2.0,1e+300],[-3e-7,1e+300,3.5]]"
+        );
+        // An entry that differs from its mirror in the last bit is formatted on its own:
+        // 0.1 and the next double up, 0.10000000000000002 (shortest round-trip forms,
+        // common practice).
+        let a = 0.1f64;
+        let b = f64::from_bits(a.to_bits() + 1);
+        assert_eq!(
+            square_text(&[1.0, a, b, 2.0], 2),
+            "prefix[[1.0,0.10000000000000002],[0.1,2.0]]"
+        );
     }
 }

@@ -33,14 +33,14 @@ pub fn router() -> Router<AppState> {
 
 async fn estimate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
     run_job_sized(&state, "/v1/estimate", body.len(), move |limits, cancel| {
-        job::estimate(&body, limits, cancel)
+        job::estimate_pieces(&body, limits, cancel)
     })
     .await
 }
 
 async fn smooth(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
     run_job_sized(&state, "/v1/smooth", body.len(), move |limits, cancel| {
-        job::smooth(&body, limits, cancel)
+        job::smooth_pieces(&body, limits, cancel)
     })
     .await
 }
