@@ -321,7 +321,7 @@ impl Predictor {
 
     /// Number of grid steps for a discrete linear model over a gap `dt`.
     fn grid_steps(dt: f64, grid: f64) -> usize {
-        (dt / grid).round().max(0.0) as usize
+        crate::filter::linalg::round_half_away(dt / grid).max(0.0) as usize
     }
 
     /// Gaussian prediction over `dt > 0` from time `t0` with inputs `u`. When `phi` is
