@@ -136,6 +136,7 @@ pub fn mahalanobis(l: &[f64], m: usize, v: &[f64], tmp: &mut [f64]) -> f64 {
 }
 
 /// Replace `p` by `(p + p') / 2`: the single place where covariances are made symmetric.
+#[inline]
 pub fn symmetrize(p: &mut DMatrix<f64>) {
     let n = p.nrows();
     for j in 0..n {
@@ -192,6 +193,7 @@ pub fn all_finite(xs: &[f64]) -> bool {
 }
 
 /// `out = a bᵀ` for `a: r × k`, `b: c × k` (no allocation).
+#[inline]
 pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     let (r, k, c) = (a.nrows(), a.ncols(), b.nrows());
     let (a, b) = (a.as_slice(), b.as_slice());
@@ -206,6 +208,7 @@ pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
 /// matrices above 5 × 5 to a kernel that allocates a packing buffer on every call).
 /// Each entry sums `a_il b_lj` over `l` in order; the loop over `i` is innermost so
 /// independent entries proceed side by side.
+#[inline]
 pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     let (r, k, c) = (a.nrows(), a.ncols(), b.ncols());
     debug_assert_eq!(b.nrows(), k);
@@ -220,6 +223,7 @@ pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
 /// `o = a b`, or `o += a b` with `accumulate`, for column-major slices `a: r × k`,
 /// `b: k × c`, `o: r × c` given as `dims = (r, k, c)`. Column `j` of `o` accumulates
 /// the columns of `a` weighted by `b_lj`, `l` in order (contiguous inner loop).
+#[inline]
 pub fn gemm_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool) {
     fn run<const R: usize>(a: &[f64], b: &[f64], o: &mut [f64], k: usize, c: usize, acc: bool) {
         gemm_cols::<R, false>(a, b, o, (R, k, c), acc);
@@ -240,6 +244,7 @@ pub fn gemm_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize),
 /// `o = a bᵀ`, or `o += a bᵀ` with `accumulate`, for column-major slices `a: r × k`,
 /// `b: c × k`, `o: r × c` given as `dims = (r, k, c)`; the same loop order as
 /// [`gemm_nn`].
+#[inline]
 pub fn gemm_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool) {
     fn run<const R: usize>(a: &[f64], b: &[f64], o: &mut [f64], k: usize, c: usize, acc: bool) {
         gemm_cols::<R, true>(a, b, o, (R, k, c), acc);
@@ -297,6 +302,7 @@ enum SquareOp {
 /// constant, for `n ≤ 8` (the models dashboards post are mostly this small). The loops
 /// then unroll and vectorise without bounds checks. The kernels add in the same order
 /// as the general loops, so results are bit-identical. Returns `false` for larger `n`.
+#[inline]
 fn square(n: usize, op: SquareOp, a: &[f64], b: &[f64], o: &mut [f64]) -> bool {
     fn run<const N: usize>(op: SquareOp, a: &[f64], b: &[f64], o: &mut [f64]) {
         match op {
@@ -352,6 +358,7 @@ fn square_abt<const N: usize>(a: &[f64], b: &[f64], o: &mut [f64]) {
 }
 
 /// `p ← φ p φᵀ + q` through the scratch `tmp` (all `n × n`), then symmetrised.
+#[inline]
 pub fn congruence_plus(
     phi: &DMatrix<f64>,
     p: &mut DMatrix<f64>,
