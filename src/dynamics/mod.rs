@@ -7,5 +7,5 @@ mod ode;
 mod van_loan;
 
 pub use expm::Expm;
-pub use ode::{Dopri5, OdeError, OdeStats};
+pub use ode::{past_deadline, Dopri5, OdeError, OdeStats, DEADLINE_EVERY};
 pub use van_loan::{Discrete, Discretiser};

@@ -22,6 +22,21 @@ pub enum OdeError {
         /// Time reached.
         t: f64,
     },
+    /// The caller's wall-clock deadline passed (checked every [`DEADLINE_EVERY`] steps).
+    Deadline {
+        /// Time reached.
+        t: f64,
+    },
+}
+
+/// Steps between two looks at the clock: a long integration inside one gap stops within
+/// this many steps of its deadline, and the clock costs nothing measurable.
+pub const DEADLINE_EVERY: usize = 1024;
+
+/// Whether `deadline` has passed, looked at only on every [`DEADLINE_EVERY`]-th step.
+#[inline]
+pub fn past_deadline(deadline: Option<std::time::Instant>, step: usize) -> bool {
+    step % DEADLINE_EVERY == 0 && deadline.is_some_and(|d| std::time::Instant::now() > d)
 }
 
 impl std::fmt::Display for OdeError {
@@ -36,6 +51,12 @@ impl std::fmt::Display for OdeError {
             }
             Self::TooManySteps { t } => {
                 write!(f, "the integration needed too many steps and stopped at t = {t} (the model may be stiff)")
+            }
+            Self::Deadline { t } => {
+                write!(
+                    f,
+                    "the compute deadline passed during the integration, at t = {t}"
+                )
             }
         }
     }
@@ -136,6 +157,8 @@ pub struct Dopri5 {
     pub max_step: f64,
     /// Most steps in one call before giving up.
     pub max_steps: usize,
+    /// Wall-clock time after which a call gives up with [`OdeError::Deadline`].
+    pub deadline: Option<std::time::Instant>,
     /// Stages k1..k7.
     k: [Vec<f64>; 7],
     /// Argument of the intermediate stages.
@@ -153,6 +176,7 @@ impl Dopri5 {
             atol: 1e-9,
             max_step: f64::INFINITY,
             max_steps: 1_000_000,
+            deadline: None,
             k: std::array::from_fn(|_| vec![0.0; dim]),
             y_stage: vec![0.0; dim],
             y_new: vec![0.0; dim],
@@ -199,6 +223,7 @@ impl Dopri5 {
             return Err(OdeError::NonFinite { t: t0 });
         }
         let (rtol, atol, max_steps) = (self.rtol, self.atol, self.max_steps);
+        let deadline = self.deadline;
         let max_step = if self.max_step > 0.0 {
             self.max_step
         } else {
@@ -224,6 +249,9 @@ impl Dopri5 {
         loop {
             if steps >= max_steps {
                 return Err(failure.unwrap_or(OdeError::TooManySteps { t }));
+            }
+            if steps > 0 && past_deadline(deadline, steps) {
+                return Err(OdeError::Deadline { t });
             }
             steps += 1;
             // Stretch a step that would leave a sliver behind, clip one that overshoots.

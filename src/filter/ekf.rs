@@ -219,6 +219,10 @@ impl Estimator for Ekf {
         &self.cross
     }
 
+    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
+        self.pred.set_deadline(deadline);
+    }
+
     fn clone_box(&self) -> Box<dyn Estimator> {
         Box::new(self.clone())
     }

@@ -630,6 +630,10 @@ impl Estimator for Enkf {
         self.step
     }
 
+    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
+        self.pred.set_deadline(deadline);
+    }
+
     fn clone_box(&self) -> Box<dyn Estimator> {
         let mut c = self.clone();
         c.side = true;

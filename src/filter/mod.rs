@@ -26,6 +26,8 @@ pub enum FilterError {
     NotPositive(&'static str),
     /// The integrator gave up, for the stated reason.
     Integration(&'static str),
+    /// The request's compute deadline passed inside one prediction.
+    Deadline,
 }
 
 impl std::fmt::Display for FilterError {
@@ -36,6 +38,7 @@ impl std::fmt::Display for FilterError {
                 write!(f, "the {what} is no longer positive definite")
             }
             FilterError::Integration(why) => write!(f, "integration failed: {why}"),
+            FilterError::Deadline => write!(f, "the compute deadline passed during a prediction"),
         }
     }
 }
@@ -96,6 +99,10 @@ pub trait Estimator: Send {
     /// from something else (the ensemble's members) may defer that work until a step is
     /// done; [`crate::filter::run::Run`] calls this before anything reads the covariance.
     fn settle(&mut self) {}
+
+    /// Give up any prediction still integrating after `deadline` with
+    /// [`FilterError::Deadline`], so one long gap cannot outlast the request's budget.
+    fn set_deadline(&mut self, deadline: Option<std::time::Instant>);
 
     /// Note that one more measurement line was processed (random streams derive from it).
     fn advance_step(&mut self) {}

@@ -30,6 +30,7 @@ fn round_to_40_bits(x: f64) -> f64 {
 struct Rk4 {
     k: [Vec<f64>; 4],
     tmp: Vec<f64>,
+    deadline: Option<std::time::Instant>,
 }
 
 impl Rk4 {
@@ -37,6 +38,7 @@ impl Rk4 {
         Self {
             k: std::array::from_fn(|_| vec![0.0; dim]),
             tmp: vec![0.0; dim],
+            deadline: None,
         }
     }
 
@@ -53,6 +55,9 @@ impl Rk4 {
         let d = y.len();
         for s in 0..steps {
             let t = s as f64 * h;
+            if s > 0 && crate::dynamics::past_deadline(self.deadline, s) {
+                return Err(OdeError::Deadline { t });
+            }
             let [k1, k2, k3, k4] = &mut self.k;
             f(t, y, &mut k1[..d]);
             for i in 0..d {
@@ -87,6 +92,7 @@ fn ode_error(e: OdeError) -> FilterError {
         OdeError::TooManySteps { .. } => FilterError::Integration(
             "too many integration steps (set integration.max_step larger, or check the dynamics)",
         ),
+        OdeError::Deadline { .. } => FilterError::Deadline,
     }
 }
 
@@ -276,6 +282,14 @@ impl Predictor {
             xm: DMatrix::zeros(points, n),
             vtmp: DVector::zeros(n),
         }
+    }
+
+    /// Stop integrating once `deadline` has passed (see [`FilterError::Deadline`]).
+    pub fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
+        self.ode_g.deadline = deadline;
+        self.ode_p.deadline = deadline;
+        self.rk_g.deadline = deadline;
+        self.rk_p.deadline = deadline;
     }
 
     fn dopri(dim: usize, integration: &Integration) -> Dopri5 {

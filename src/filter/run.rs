@@ -159,7 +159,23 @@ impl Run {
         Ok(())
     }
 
+    /// Stop a prediction that is still integrating after `deadline` (the request's
+    /// compute budget); the step then fails with a deadline problem.
+    pub fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
+        self.est.set_deadline(deadline);
+    }
+
     fn failure(&self, e: FilterError, t: &Instant) -> Problem {
+        if matches!(e, FilterError::Deadline) {
+            return Problem::new(
+                ProblemKind::DeadlineExceeded,
+                format!(
+                    "the request needed more than the compute deadline; it stopped inside the prediction to line {} (t = {})",
+                    self.counts.steps + 1,
+                    fmt_time(t, self.mode)
+                ),
+            );
+        }
         Problem::new(
             ProblemKind::NumericalFailure,
             format!(

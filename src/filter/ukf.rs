@@ -223,6 +223,10 @@ impl Estimator for Ukf {
         &self.cross
     }
 
+    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
+        self.pred.set_deadline(deadline);
+    }
+
     fn clone_box(&self) -> Box<dyn Estimator> {
         Box::new(self.clone())
     }

@@ -84,6 +84,11 @@ impl<'a> Guard<'a> {
         }
     }
 
+    /// When the request's compute budget runs out, if it has one.
+    pub fn deadline(&self) -> Option<Clock> {
+        self.deadline
+    }
+
     /// Err when cancelled or past the deadline (checked on every 256th step).
     pub fn check(&self, step: usize) -> Result<(), Problem> {
         if step % 256 != 0 {
@@ -242,6 +247,8 @@ fn run_batch_overlapping(
         guard: Guard::new(limits, cancel),
         shape: Shape::of(&model),
     };
+    // Inside one long gap the integrator watches the same deadline.
+    run.set_deadline(ctx.guard.deadline());
     let mut preds = Predictions {
         at: &output.at,
         next: 0,

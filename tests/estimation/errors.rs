@@ -328,3 +328,38 @@ fn every_missing_section_is_reported_at_once() {
         "{p}"
     );
 }
+
+#[test]
+fn a_long_stiff_gap_stops_at_the_compute_deadline() {
+    // A stiff rate (λ = −10⁶ against a slowly moving target) over one gap of 1000 s: an
+    // explicit Runge–Kutta pair needs steps of a few microseconds, about 3·10⁸ of them, so
+    // it would give up only at its step limit (10⁶ steps). With a 5 ms budget the
+    // integrator must notice the deadline inside that one gap and answer 503, rather
+    // than run on until the step limit turns it into a numerical failure (422).
+    let body = json!({
+        "model": {
+            "states": ["x"],
+            "dynamics": {"rates": {"x": "-1e6*(x - sin(t))"}},
+            "process_noise": {"density": {"x": 0.01}},
+            "sensors": {"gauge": {"measures": "x", "std": 0.1}}
+        },
+        "filter": {"method": "ekf"},
+        "prior": {"t": 0.0, "mean": {"x": 0.0}, "std": {"x": 1.0}},
+        "measurements": [{"t": 1000.0, "values": {"gauge": 0.5}}]
+    });
+    let bytes = serde_json::to_vec(&body).unwrap();
+    let not_cancelled = std::sync::atomic::AtomicBool::new(false);
+    let mut limits = tacit::config::Limits {
+        deadline: Some(std::time::Duration::from_millis(5)),
+        ..Default::default()
+    };
+    let p = tacit::job::estimate(&bytes, &limits, &not_cancelled).unwrap_err();
+    assert_eq!(p.status, 503, "{p}");
+    assert!(p.detail.contains("compute deadline"), "{p}");
+    assert!(p.detail.contains("line 1"), "{p}");
+    // Without a deadline the same request ends at the integrator's step limit instead.
+    limits.deadline = None;
+    let p = tacit::job::estimate(&bytes, &limits, &not_cancelled).unwrap_err();
+    assert_eq!(p.status, 422, "{p}");
+    assert!(p.detail.contains("too many integration steps"), "{p}");
+}
