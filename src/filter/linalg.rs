@@ -198,7 +198,7 @@ pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     let (r, k, c) = (a.nrows(), a.ncols(), b.nrows());
     let (a, b) = (a.as_slice(), b.as_slice());
     let o = out.as_mut_slice();
-    if r == k && k == c && square(r, SquareOp::MulAbt, a, b, o) {
+    if r == k && k == c && square::<true>(r, a, b, o) {
         return;
     }
     gemm_nt(a, b, o, (r, k, c), false);
@@ -214,7 +214,7 @@ pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
     debug_assert_eq!(b.nrows(), k);
     let (a, b) = (a.as_slice(), b.as_slice());
     let o = out.as_mut_slice();
-    if r == k && k == c && square(r, SquareOp::MulAb, a, b, o) {
+    if r == k && k == c && square::<false>(r, a, b, o) {
         return;
     }
     gemm_nn(a, b, o, (r, k, c), false);
@@ -225,20 +225,7 @@ pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
 /// the columns of `a` weighted by `b_lj`, `l` in order (contiguous inner loop).
 #[inline]
 pub fn gemm_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool) {
-    fn run<const R: usize>(a: &[f64], b: &[f64], o: &mut [f64], k: usize, c: usize, acc: bool) {
-        gemm_cols::<R, false>(a, b, o, (R, k, c), acc);
-    }
-    let (r, k, c) = dims;
-    match r {
-        0 => {}
-        1 => run::<1>(a, b, o, k, c, accumulate),
-        2 => run::<2>(a, b, o, k, c, accumulate),
-        3 => run::<3>(a, b, o, k, c, accumulate),
-        4 => run::<4>(a, b, o, k, c, accumulate),
-        5 => run::<5>(a, b, o, k, c, accumulate),
-        6 => run::<6>(a, b, o, k, c, accumulate),
-        _ => gemm_cols::<0, false>(a, b, o, dims, accumulate),
-    }
+    gemm::<false>(a, b, o, dims, accumulate);
 }
 
 /// `o = a bᵀ`, or `o += a bᵀ` with `accumulate`, for column-major slices `a: r × k`,
@@ -246,19 +233,28 @@ pub fn gemm_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize),
 /// [`gemm_nn`].
 #[inline]
 pub fn gemm_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool) {
-    fn run<const R: usize>(a: &[f64], b: &[f64], o: &mut [f64], k: usize, c: usize, acc: bool) {
-        gemm_cols::<R, true>(a, b, o, (R, k, c), acc);
-    }
-    let (r, k, c) = dims;
-    match r {
+    gemm::<true>(a, b, o, dims, accumulate);
+}
+
+/// [`gemm_nn`] (`T = false`) or [`gemm_nt`] (`T = true`), with the row count fixed at
+/// compile time for up to 6 rows.
+#[inline]
+fn gemm<const T: bool>(
+    a: &[f64],
+    b: &[f64],
+    o: &mut [f64],
+    dims: (usize, usize, usize),
+    acc: bool,
+) {
+    match dims.0 {
         0 => {}
-        1 => run::<1>(a, b, o, k, c, accumulate),
-        2 => run::<2>(a, b, o, k, c, accumulate),
-        3 => run::<3>(a, b, o, k, c, accumulate),
-        4 => run::<4>(a, b, o, k, c, accumulate),
-        5 => run::<5>(a, b, o, k, c, accumulate),
-        6 => run::<6>(a, b, o, k, c, accumulate),
-        _ => gemm_cols::<0, true>(a, b, o, dims, accumulate),
+        1 => gemm_cols::<1, T>(a, b, o, dims, acc),
+        2 => gemm_cols::<2, T>(a, b, o, dims, acc),
+        3 => gemm_cols::<3, T>(a, b, o, dims, acc),
+        4 => gemm_cols::<4, T>(a, b, o, dims, acc),
+        5 => gemm_cols::<5, T>(a, b, o, dims, acc),
+        6 => gemm_cols::<6, T>(a, b, o, dims, acc),
+        _ => gemm_cols::<0, T>(a, b, o, dims, acc),
     }
 }
 
@@ -289,66 +285,36 @@ fn gemm_cols<const R: usize, const T: bool>(
     }
 }
 
-/// A product of two square matrices that has a fixed-size kernel.
-#[derive(Clone, Copy)]
-enum SquareOp {
-    /// `A B`.
-    MulAb,
-    /// `A Bᵀ`.
-    MulAbt,
-}
-
-/// Run `op` on `n × n` column-major slices with a kernel whose size is a compile-time
-/// constant, for `n ≤ 8` (the models dashboards post are mostly this small). The loops
-/// then unroll and vectorise without bounds checks. The kernels add in the same order
-/// as the general loops, so results are bit-identical. Returns `false` for larger `n`.
+/// Run `a b` (`T = false`) or `a bᵀ` (`T = true`) on `n × n` column-major slices with a
+/// kernel whose size is a compile-time constant, for `n ≤ 8` (the models dashboards post
+/// are mostly this small). The loops then unroll and vectorise without bounds checks.
+/// The kernel adds in the same order as the general loops, so results are bit-identical.
+/// Returns `false` for larger `n`.
 #[inline]
-fn square(n: usize, op: SquareOp, a: &[f64], b: &[f64], o: &mut [f64]) -> bool {
-    fn run<const N: usize>(op: SquareOp, a: &[f64], b: &[f64], o: &mut [f64]) {
-        match op {
-            SquareOp::MulAb => square_ab::<N>(a, b, o),
-            SquareOp::MulAbt => square_abt::<N>(a, b, o),
-        }
-    }
+fn square<const T: bool>(n: usize, a: &[f64], b: &[f64], o: &mut [f64]) -> bool {
     match n {
-        1 => run::<1>(op, a, b, o),
-        2 => run::<2>(op, a, b, o),
-        3 => run::<3>(op, a, b, o),
-        4 => run::<4>(op, a, b, o),
-        5 => run::<5>(op, a, b, o),
-        6 => run::<6>(op, a, b, o),
-        7 => run::<7>(op, a, b, o),
-        8 => run::<8>(op, a, b, o),
+        1 => square_kernel::<1, T>(a, b, o),
+        2 => square_kernel::<2, T>(a, b, o),
+        3 => square_kernel::<3, T>(a, b, o),
+        4 => square_kernel::<4, T>(a, b, o),
+        5 => square_kernel::<5, T>(a, b, o),
+        6 => square_kernel::<6, T>(a, b, o),
+        7 => square_kernel::<7, T>(a, b, o),
+        8 => square_kernel::<8, T>(a, b, o),
         _ => return false,
     }
     true
 }
 
-/// `o = a b` for `N × N` column-major matrices (column `j` of `o` accumulates the
-/// columns of `a` weighted by column `j` of `b`, in order).
+/// `o = a b` or `o = a bᵀ` for `N × N` column-major matrices: column `j` of `o`
+/// accumulates the columns of `a` weighted by `b_lj` (or `b_jl`), `l` in order.
 #[inline(always)]
-fn square_ab<const N: usize>(a: &[f64], b: &[f64], o: &mut [f64]) {
+fn square_kernel<const N: usize, const T: bool>(a: &[f64], b: &[f64], o: &mut [f64]) {
     let (a, b, o) = (&a[..N * N], &b[..N * N], &mut o[..N * N]);
     for j in 0..N {
         let mut col = [0.0; N];
         for l in 0..N {
-            let w = b[l + j * N];
-            for i in 0..N {
-                col[i] += a[i + l * N] * w;
-            }
-        }
-        o[j * N..(j + 1) * N].copy_from_slice(&col);
-    }
-}
-
-/// `o = a bᵀ` for `N × N` column-major matrices, each entry summed over `l` in order.
-#[inline(always)]
-fn square_abt<const N: usize>(a: &[f64], b: &[f64], o: &mut [f64]) {
-    let (a, b, o) = (&a[..N * N], &b[..N * N], &mut o[..N * N]);
-    for j in 0..N {
-        let mut col = [0.0; N];
-        for l in 0..N {
-            let w = b[j + l * N];
+            let w = if T { b[j + l * N] } else { b[l + j * N] };
             for i in 0..N {
                 col[i] += a[i + l * N] * w;
             }
