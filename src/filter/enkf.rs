@@ -87,7 +87,7 @@ pub struct Enkf {
     sq: Vec<f64>,
     /// Running sums, one per output of the innermost loop.
     acc: Vec<f64>,
-    /// Eigenvalues of the transform's symmetric matrix, and the solver's scratch.
+    /// Eigenvalues of the transform's symmetric matrix, and the solver's scratch (3 per row).
     lam: Vec<f64>,
     escr: Vec<f64>,
     /// G = Ỹ Ỹᵀ of the low-rank form, then its eigenvectors.
@@ -172,7 +172,7 @@ impl Enkf {
             sq: vec![0.0; nn],
             acc: vec![0.0; n.max(mm).max(nn)],
             lam: vec![0.0; nn.max(mm)],
-            escr: vec![0.0; nn.max(mm)],
+            escr: vec![0.0; 3 * nn.max(mm)],
             gbuf: vec![0.0; mm * mm],
         };
         f.refresh_moments();
