@@ -428,6 +428,39 @@ impl Enkf {
     }
 }
 
+impl Enkf {
+    /// The joint NIS νᵀS⁻¹ν of the accepted rows from the transform's own quantities,
+    /// without forming S: with M = I + ỸỸᵀ/(N−1) (so S = L_R M L_Rᵀ), Woodbury's identity
+    /// gives M⁻¹d̃ = d̃ − Ỹ [(N−1)I + ỸᵀỸ]⁻¹ Ỹᵀd̃ = d̃ − Ỹw̄ =: r, and
+    /// NIS = d̃ᵀM⁻¹d̃ = rᵀMr = rᵀr + |Ỹᵀr|²/(N−1), a sum of squares (never negative).
+    /// (Woodbury: Golub & Van Loan 2013, *Matrix Computations*, §2.1.4.)
+    fn transform_nis(&mut self) -> f64 {
+        let (nn, ma) = (self.x.nrows(), self.obs.ma);
+        let r = &mut self.eps[..ma];
+        r.copy_from_slice(&self.dtil[..ma]);
+        for j in 0..nn {
+            let wj = self.wbar[j];
+            for (ra, &y) in r.iter_mut().zip(self.yt.column(j).iter()) {
+                *ra -= y * wj;
+            }
+        }
+        let rr: f64 = r.iter().map(|v| v * v).sum();
+        let yr: f64 = (0..nn)
+            .map(|j| {
+                let t: f64 = self
+                    .yt
+                    .column(j)
+                    .iter()
+                    .zip(r.iter())
+                    .map(|(y, v)| y * v)
+                    .sum();
+                t * t
+            })
+            .sum();
+        rr + yr / (nn as f64 - 1.0)
+    }
+}
+
 impl Estimator for Enkf {
     fn predict(
         &mut self,
@@ -524,47 +557,67 @@ impl Estimator for Enkf {
                 self.za[r + k * m] = zs[r * nn + k] - self.ybar[r];
             }
         }
-        // The transform needs only S; the perturbed update also needs C = Cov(x, y) for K.
+        // The perturbed update needs all of S and C = Cov(x, y) for K. The transform needs
+        // only each sensor's diagonal block of S for its own NIS (none when the joint NIS,
+        // which it computes itself, settles the line).
         let need_c = self.cfg.update == EnsembleUpdate::Perturbed;
+        let only_check = !need_c && self.obs.joint_is_only_check(gate);
         if need_c {
             self.fill_anomalies();
         }
         let za = &self.za[..m * nn];
-        for c in 0..m {
-            // Rows r ≤ c; the sum is symmetric, so it fills (c, r) as well.
-            let acc = &mut self.acc[..=c];
-            acc.fill(-0.0);
-            for k in 0..nn {
-                let w = za[c + k * m];
-                for (s, &zr) in acc.iter_mut().zip(&za[k * m..k * m + c + 1]) {
-                    *s += zr * w;
-                }
-            }
-            for (r, &sum) in acc.iter().enumerate() {
-                self.obs.s[r + c * m] = sum / (nf - 1.0);
-                self.obs.s[c + r * m] = sum / (nf - 1.0);
-            }
-            if need_c {
-                let acc = &mut self.acc[..n];
+        let spans = match (need_c, only_check) {
+            (true, _) => 1,
+            (false, true) => 0,
+            (false, false) => self.obs.checks.len(),
+        };
+        for span in 0..spans {
+            let (lo, hi) = if need_c {
+                (0, m)
+            } else {
+                let ck = &self.obs.checks[span];
+                (ck.row, ck.row + ck.dim)
+            };
+            for c in lo..hi {
+                // Rows lo ≤ r ≤ c; the sum is symmetric, so it fills (c, r) as well.
+                let acc = &mut self.acc[..=c - lo];
                 acc.fill(-0.0);
                 for k in 0..nn {
                     let w = za[c + k * m];
-                    for (s, &ai) in acc.iter_mut().zip(&self.anom[k * n..(k + 1) * n]) {
-                        *s += ai * w;
+                    for (s, &zr) in acc.iter_mut().zip(&za[k * m + lo..k * m + c + 1]) {
+                        *s += zr * w;
                     }
                 }
-                for i in 0..n {
-                    self.obs.c[i + c * n] = acc[i] / (nf - 1.0);
+                for (d, &sum) in acc.iter().enumerate() {
+                    let r = lo + d;
+                    self.obs.s[r + c * m] = sum / (nf - 1.0);
+                    self.obs.s[c + r * m] = sum / (nf - 1.0);
+                }
+                if need_c {
+                    let acc = &mut self.acc[..n];
+                    acc.fill(-0.0);
+                    for k in 0..nn {
+                        let w = za[c + k * m];
+                        for (s, &ai) in acc.iter_mut().zip(&self.anom[k * n..(k + 1) * n]) {
+                            *s += ai * w;
+                        }
+                    }
+                    for i in 0..n {
+                        self.obs.c[i + c * n] = acc[i] / (nf - 1.0);
+                    }
                 }
             }
         }
-        if !self.obs.gate(gate)? {
+        let any = if need_c {
+            self.obs.gate(gate)?
+        } else {
+            self.obs.gate_blocks(gate)?
+        };
+        if !any {
             return Ok(false);
         }
         if need_c {
             self.obs.gain()?;
-        } else {
-            self.obs.factor()?;
         }
         let ma = self.obs.ma;
         let r = &self.obs.r_acc[..ma * ma];
@@ -586,7 +639,11 @@ impl Estimator for Enkf {
         }
         match self.cfg.update {
             EnsembleUpdate::Perturbed => self.perturbed(),
-            EnsembleUpdate::Deterministic => self.transform()?,
+            EnsembleUpdate::Deterministic => {
+                self.transform()?;
+                let nis = self.transform_nis();
+                self.obs.set_joint_nis(nis, only_check);
+            }
         }
         self.refresh_mean();
         if !self.x.iter().all(|v| v.is_finite()) {
@@ -686,6 +743,93 @@ mod tests {
         assert!(full.update(&model, &reading, &[], 0.0, None).unwrap());
         for (a, b) in fast.x.iter().zip(full.x.iter()) {
             assert!((a - b).abs() < 1e-12 * (1.0 + b.abs()), "{a} vs {b}");
+        }
+    }
+
+    #[test]
+    fn transform_nis_equals_the_direct_innovation_form() {
+        // NIS = νᵀS⁻¹ν with S = Y'Y'ᵀ/(N−1) + R formed from the members and solved by
+        // nalgebra's Cholesky (the textbook definition, Bar-Shalom et al. 2001, §5.4) must
+        // equal the value the transform derives through Woodbury's identity, for the
+        // low-rank and the full form, and for a gated line whose NIS comes from the block.
+        let model = crate::spec::validate::model(
+            &json!({"states": ["a", "b", "c"], "dynamics": {"rates": {"a": "b", "b": "-a"}},
+                    "sensors": {"s1": {"measures": "a + c", "std": 0.3},
+                                "s2": {"measures": ["b*b", "a"], "std": [0.5, 0.2]}}}),
+            "/model",
+            &Limits::default(),
+        )
+        .unwrap();
+        let cfg = Ensemble {
+            members: 25,
+            seed: 9,
+            inflation: 1.0,
+            update: EnsembleUpdate::Deterministic,
+        };
+        let mean = DVector::from_vec(vec![1.0, 0.5, -0.2]);
+        let cov = DMatrix::from_diagonal(&DVector::from_vec(vec![0.4, 0.3, 0.2]));
+        let integ = Integration {
+            max_step: f64::INFINITY,
+            rtol: 1e-6,
+            atol: 1e-9,
+            fixed_step: None,
+        };
+        let base = Enkf::new(&model, integ, cfg, &mean, &cov, None, 0).unwrap();
+        let reading = Reading {
+            t: Instant::seconds(0.0),
+            sensors: vec![(0, 0), (1, 1)],
+            z: vec![0.6, 0.4, 1.3],
+            ..Default::default()
+        };
+        // The direct form from the members before the update.
+        let nn = 25;
+        let h = |x: &DMatrix<f64>, j: usize| {
+            DVector::from_vec(vec![
+                x[(j, 0)] + x[(j, 2)],
+                x[(j, 1)] * x[(j, 1)],
+                x[(j, 0)],
+            ])
+        };
+        let ys: Vec<DVector<f64>> = (0..nn).map(|j| h(&base.x, j)).collect();
+        let ybar = ys.iter().fold(DVector::zeros(3), |a, y| a + y) / nn as f64;
+        let mut s = DMatrix::from_diagonal(&DVector::from_vec(vec![0.09, 0.25, 0.04]));
+        for y in &ys {
+            s += (y - &ybar) * (y - &ybar).transpose() / (nn as f64 - 1.0);
+        }
+        let nu = DVector::from_vec(reading.z.clone()) - &ybar;
+        let direct = nu.dot(&s.clone().cholesky().unwrap().solve(&nu));
+        for full in [false, true] {
+            let mut f = base.clone();
+            f.always_full = full;
+            assert!(f.update(&model, &reading, &[], 0.0, None).unwrap());
+            let got = f.obs.joint_nis;
+            assert!(
+                (got - direct).abs() < 1e-10 * direct,
+                "{got} vs {direct} (full {full})"
+            );
+        }
+        // One sensor, gated: its NIS comes from its block, and the joint NIS is that value.
+        let one = Reading {
+            sensors: vec![(1, 0)],
+            z: vec![0.4, 1.3],
+            ..reading.clone()
+        };
+        let s2 = s.view((1, 1), (2, 2)).into_owned();
+        let nu2 = nu.rows(1, 2).into_owned();
+        let direct2 = nu2.dot(&s2.cholesky().unwrap().solve(&nu2));
+        let mut ungated = base.clone();
+        assert!(ungated.update(&model, &one, &[], 0.0, None).unwrap());
+        let mut gated = base.clone();
+        assert!(gated
+            .update(&model, &one, &[], 0.0, Some(&[1e9, 1e9]))
+            .unwrap());
+        for f in [&ungated, &gated] {
+            assert_eq!(f.obs.checks[0].nis, f.obs.joint_nis);
+            let got = f.obs.joint_nis;
+            assert!(
+                (got - direct2).abs() < 1e-10 * direct2,
+                "{got} vs {direct2}"
+            );
         }
     }
 }

@@ -143,14 +143,79 @@ impl ObsSpace {
         for i in 0..m * m {
             self.s[i] += self.r[i];
         }
+        self.innovations()?;
+        if !self.s[..m * m].iter().all(|x| x.is_finite()) {
+            return Err(FilterError::NonFinite("predicted reading"));
+        }
+        self.judge(thresholds)?;
+        self.compact(true);
+        Ok(self.ma > 0)
+    }
+
+    /// [`ObsSpace::gate`] when the filter filled only each sensor's diagonal block of S
+    /// (what the per-sensor NIS needs) and will set the joint NIS itself with
+    /// [`ObsSpace::set_joint_nis`]; only ν and R are compacted. With no gate and one sensor
+    /// on the line, that sensor's NIS is the joint NIS, so its block is not read (the filter
+    /// may leave it unfilled) and its NIS is set with the joint one.
+    pub fn gate_blocks(&mut self, thresholds: Option<&[f64]>) -> Result<bool, FilterError> {
+        let m = self.m;
+        self.innovations()?;
+        if self.joint_is_only_check(thresholds) {
+            self.checks[0].accepted = true;
+        } else {
+            for ck in &self.checks {
+                for b in ck.row..ck.row + ck.dim {
+                    for a in ck.row..ck.row + ck.dim {
+                        let v = self.s[a + b * m] + self.r[a + b * m];
+                        if !v.is_finite() {
+                            return Err(FilterError::NonFinite("predicted reading"));
+                        }
+                        self.s[a + b * m] = v;
+                    }
+                }
+            }
+            self.judge(thresholds)?;
+        }
+        self.compact(false);
+        Ok(self.ma > 0)
+    }
+
+    /// Whether the joint NIS alone settles the line: no gate and one sensor on it.
+    pub fn joint_is_only_check(&self, thresholds: Option<&[f64]>) -> bool {
+        thresholds.is_none() && self.checks.len() == 1
+    }
+
+    /// The joint NIS of the accepted rows, computed by the filter after
+    /// [`ObsSpace::gate_blocks`]; when one sensor holds every accepted row its own NIS
+    /// (judged from the same block) is kept as the joint value, and a sensor whose NIS was
+    /// left to the joint value takes it.
+    pub fn set_joint_nis(&mut self, nis: f64, only_check: bool) {
+        if only_check {
+            self.checks[0].nis = nis;
+        }
+        let mut accepted = self.checks.iter().filter(|c| c.accepted);
+        self.joint_nis = match (accepted.next(), accepted.next()) {
+            (Some(ck), None) if !only_check => ck.nis,
+            _ => nis,
+        };
+    }
+
+    /// ν = z − ẑ over the stacked rows; an error if it is not finite.
+    fn innovations(&mut self) -> Result<(), FilterError> {
+        let m = self.m;
         for i in 0..m {
             self.nu[i] = self.z[i] - self.zhat[i];
         }
-        if !self.nu[..m].iter().all(|x| x.is_finite())
-            || !self.s[..m * m].iter().all(|x| x.is_finite())
-        {
+        if !self.nu[..m].iter().all(|x| x.is_finite()) {
             return Err(FilterError::NonFinite("predicted reading"));
         }
+        Ok(())
+    }
+
+    /// Each sensor's NIS from its diagonal block of S (R included), and whether it passes
+    /// `thresholds`.
+    fn judge(&mut self, thresholds: Option<&[f64]>) -> Result<(), FilterError> {
+        let m = self.m;
         for ck in self.checks.iter_mut() {
             let d = ck.dim;
             for a in 0..d {
@@ -179,6 +244,12 @@ impl ObsSpace {
             );
             ck.accepted = thresholds.is_none_or(|t| ck.nis <= t[ck.sensor]);
         }
+        Ok(())
+    }
+
+    /// Gather the accepted rows of ν and R, and of S and C when `with_moments`.
+    fn compact(&mut self, with_moments: bool) {
+        let m = self.m;
         self.keep.clear();
         for ck in &self.checks {
             if ck.accepted {
@@ -191,14 +262,17 @@ impl ObsSpace {
         for (a, &ra) in self.keep.iter().enumerate() {
             self.nu_acc[a] = self.nu[ra];
             for (b, &rb) in self.keep.iter().enumerate() {
-                self.s_acc[a + b * ma] = self.s[ra + rb * m];
                 self.r_acc[a + b * ma] = self.r[ra + rb * m];
             }
-            for i in 0..n {
-                self.c_acc[i + a * n] = self.c[i + ra * n];
+            if with_moments {
+                for (b, &rb) in self.keep.iter().enumerate() {
+                    self.s_acc[a + b * ma] = self.s[ra + rb * m];
+                }
+                for i in 0..n {
+                    self.c_acc[i + a * n] = self.c[i + ra * n];
+                }
             }
         }
-        Ok(ma > 0)
     }
 
     /// Factor S over the accepted rows (into `l_acc`) and form the joint NIS; enough for
