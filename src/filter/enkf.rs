@@ -13,7 +13,9 @@
 //! Every random draw comes from a ChaCha20 stream selected by (seed, step, purpose), so a run
 //! split into requests that carry `members` and `step` continues bit for bit.
 
-use crate::filter::linalg::{cholesky, cholesky_psd, solve_lower, symmetric_eigen, symmetrize};
+use crate::filter::linalg::{
+    cholesky, cholesky_psd, dot4, gemm_nn, gemm_nt_upper, solve_lower, symmetric_eigen, symmetrize,
+};
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
 use crate::filter::{Estimator, FilterError};
@@ -74,6 +76,10 @@ pub struct Enkf {
     dtil: Vec<f64>,
     trans: DMatrix<f64>,
     xa: DMatrix<f64>,
+    /// Eigenvectors scaled by 1/√λ, `N × N`.
+    scaled: Vec<f64>,
+    /// Member anomalies, member-major (`N × n`, like the members).
+    xanom: Vec<f64>,
     // Contiguous scratch so that sums over members run with the output index innermost
     // (vectorised, no long chain of dependent additions); each output still adds its terms
     // in member order, so results are the same bit for bit as plain dot products.
@@ -166,6 +172,8 @@ impl Enkf {
             dtil: vec![0.0; mm],
             trans: DMatrix::zeros(nn, nn),
             xa: DMatrix::zeros(nn, n),
+            scaled: vec![0.0; nn * nn],
+            xanom: vec![0.0; nn * n],
             anom: vec![0.0; n * nn],
             za: vec![0.0; mm * nn],
             ytt: vec![0.0; nn * mm],
@@ -184,7 +192,23 @@ impl Enkf {
     /// covariance per line is enough, not one after every change of the members).
     fn refresh_mean(&mut self) {
         let (nn, n) = (self.x.nrows(), self.x.ncols());
-        for i in 0..n {
+        // Four columns at a time: four independent chains of additions, each still adding
+        // its members in order from −0.0 (as `Iterator::sum` does).
+        let xs = self.x.as_slice();
+        let mut i = 0;
+        while i + 4 <= n {
+            let mut acc = [-0.0; 4];
+            for k in 0..nn {
+                for (q, a) in acc.iter_mut().enumerate() {
+                    *a += xs[k + (i + q) * nn];
+                }
+            }
+            for (q, a) in acc.iter().enumerate() {
+                self.mean[i + q] = a / nn as f64;
+            }
+            i += 4;
+        }
+        for i in i..n {
             self.mean[i] = self.x.column(i).iter().sum::<f64>() / nn as f64;
         }
         self.cov_stale = true;
@@ -201,20 +225,11 @@ impl Enkf {
         let (nn, n) = (self.x.nrows(), self.x.ncols());
         self.cov_stale = false;
         self.fill_anomalies();
-        let a = &self.anom;
+        // Σₖ (x_ki − x̄_i)(x_kj − x̄_j) for i ≤ j, mirrored.
+        gemm_nt_upper(&self.anom, &self.anom, self.cov.as_mut_slice(), (n, nn, n));
         for j in 0..n {
-            // Σₖ (x_ki − x̄_i)(x_kj − x̄_j) for every i ≤ j at once (starting from −0.0,
-            // the neutral element `Iterator::sum` starts from).
-            let acc = &mut self.acc[..=j];
-            acc.fill(-0.0);
-            for k in 0..nn {
-                let w = a[j + k * n];
-                for (s, &ai) in acc.iter_mut().zip(&a[k * n..k * n + j + 1]) {
-                    *s += ai * w;
-                }
-            }
             for i in 0..=j {
-                let s = acc[i] / (nn as f64 - 1.0);
+                let s = self.cov[(i, j)] / (nn as f64 - 1.0);
                 self.cov[(i, j)] = s;
                 self.cov[(j, i)] = s;
             }
@@ -284,19 +299,11 @@ impl Enkf {
                 self.ytt[j + a * nn] = self.yt[(a, j)];
             }
         }
+        gemm_nt_upper(&self.ytt, &self.ytt, self.big.as_mut_slice(), (nn, ma, nn));
         for j in 0..nn {
-            let acc = &mut self.acc[..=j];
-            acc.fill(-0.0);
-            for a in 0..ma {
-                let w = self.ytt[j + a * nn];
-                for (s, &yi) in acc.iter_mut().zip(&self.ytt[a * nn..a * nn + j + 1]) {
-                    *s += yi * w;
-                }
-            }
-            for i in 0..=j {
-                let v = acc[i] + if i == j { nf - 1.0 } else { 0.0 };
-                self.big[(i, j)] = v;
-                self.big[(j, i)] = v;
+            self.big[(j, j)] += nf - 1.0;
+            for i in 0..j {
+                self.big[(j, i)] = self.big[(i, j)];
             }
         }
         // Eigenvectors overwrite `big`.
@@ -324,41 +331,53 @@ impl Enkf {
         for l in 0..nn {
             self.sq[l] = self.lam[l].sqrt();
         }
-        // The sum is symmetric in (i, j): compute j ≥ i and use it for both entries.
-        for i in 0..nn {
-            let acc = &mut self.acc[..nn - i];
-            acc.fill(-0.0);
-            for l in 0..nn {
-                // One division per (i, l) rather than per entry.
-                let f = v[(i, l)] / self.sq[l];
-                // Plain slices (not matrix column iterators) so the loop vectorises.
-                for (x, &vj) in acc.iter_mut().zip(&v.as_slice()[l * nn + i..(l + 1) * nn]) {
-                    *x += f * vj;
-                }
+        // Σₗ (vᵢₗ/√λₗ) vⱼₗ for i ≤ j (the sum is symmetric), one division per (i, l).
+        for l in 0..nn {
+            for i in 0..nn {
+                self.scaled[i + l * nn] = v[(i, l)] / self.sq[l];
             }
-            for (d, &sum) in acc.iter().enumerate() {
-                let j = i + d;
+        }
+        gemm_nt_upper(
+            &self.scaled,
+            v.as_slice(),
+            self.trans.as_mut_slice(),
+            (nn, nn, nn),
+        );
+        for j in 0..nn {
+            for i in 0..=j {
+                let sum = self.trans[(i, j)];
                 self.trans[(j, i)] = c * sum + self.wbar[i];
                 self.trans[(i, j)] = c * sum + self.wbar[j];
             }
         }
-        // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j), for all members j at once.
+        // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j): with `trans` = Tᵀ, Xₐ − x̄ = Tᵀ X'.
         for i in 0..n {
-            let acc = &mut self.acc[..nn];
-            acc.fill(-0.0);
             let m = self.mean[i];
-            for k in 0..nn {
-                let w = self.x[(k, i)] - m;
-                let tk = &self.trans.as_slice()[k * nn..(k + 1) * nn];
-                for (x, &t) in acc.iter_mut().zip(tk) {
-                    *x += w * t;
-                }
-            }
-            for j in 0..nn {
-                self.xa[(j, i)] = m + acc[j];
+            for (d, &x) in self.xanom[i * nn..(i + 1) * nn]
+                .iter_mut()
+                .zip(self.x.column(i).iter())
+            {
+                *d = x - m;
             }
         }
-        self.x.copy_from(&self.xa);
+        gemm_nn(
+            self.trans.as_slice(),
+            &self.xanom,
+            self.xa.as_mut_slice(),
+            (nn, nn, n),
+            false,
+        );
+        for i in 0..n {
+            let m = self.mean[i];
+            for (x, &d) in self
+                .x
+                .column_mut(i)
+                .iter_mut()
+                .zip(self.xa.column(i).iter())
+            {
+                *x = m + d;
+            }
+        }
         Ok(())
     }
 }
@@ -436,24 +455,20 @@ impl Enkf {
     /// (Woodbury: Golub & Van Loan 2013, *Matrix Computations*, §2.1.4.)
     fn transform_nis(&mut self) -> f64 {
         let (nn, ma) = (self.x.nrows(), self.obs.ma);
+        let mm = self.yt.nrows();
+        let yt = self.yt.as_slice();
         let r = &mut self.eps[..ma];
         r.copy_from_slice(&self.dtil[..ma]);
         for j in 0..nn {
             let wj = self.wbar[j];
-            for (ra, &y) in r.iter_mut().zip(self.yt.column(j).iter()) {
+            for (ra, &y) in r.iter_mut().zip(&yt[j * mm..j * mm + ma]) {
                 *ra -= y * wj;
             }
         }
-        let rr: f64 = r.iter().map(|v| v * v).sum();
+        let rr = dot4(r, r);
         let yr: f64 = (0..nn)
             .map(|j| {
-                let t: f64 = self
-                    .yt
-                    .column(j)
-                    .iter()
-                    .zip(r.iter())
-                    .map(|(y, v)| y * v)
-                    .sum();
+                let t = dot4(&yt[j * mm..j * mm + ma], r);
                 t * t
             })
             .sum();

@@ -254,7 +254,91 @@ fn gemm<const T: bool>(
         4 => gemm_cols::<4, T>(a, b, o, dims, acc),
         5 => gemm_cols::<5, T>(a, b, o, dims, acc),
         6 => gemm_cols::<6, T>(a, b, o, dims, acc),
+        r if r >= BLOCK && dims.2 >= BLOCK => gemm_blocked::<T>(a, b, o, dims, acc, false),
         _ => gemm_cols::<0, T>(a, b, o, dims, acc),
+    }
+}
+
+/// Rows and columns of `o` that [`gemm_blocked`] keeps in registers at once.
+const BLOCK: usize = 4;
+
+/// `o = a bᵀ` like [`gemm_nt`], but only the blocks of `o` that reach the upper triangle
+/// (i ≤ j) are computed: for a symmetric result (`a = b`, or a product known to be
+/// symmetric) whose caller reads the upper triangle and mirrors it.
+pub fn gemm_nt_upper(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize)) {
+    if dims.0 >= BLOCK && dims.2 >= BLOCK {
+        gemm_blocked::<true>(a, b, o, dims, false, true);
+    } else {
+        gemm_cols::<0, true>(a, b, o, dims, false);
+    }
+}
+
+/// [`gemm_cols`] for larger products, a `BLOCK × BLOCK` tile of `o` at a time with its
+/// running sums held in registers across the whole `l` loop (the column form loads and
+/// stores every sum on every `l`). Each entry still starts from 0 (or its old value with
+/// `accumulate`) and adds `a_il b_lj` over `l` in order, so results are bit-identical to
+/// [`gemm_cols`]. Rows and columns beyond the last whole tile take the column form. With
+/// `upper`, tiles wholly below the diagonal are skipped.
+fn gemm_blocked<const T: bool>(
+    a: &[f64],
+    b: &[f64],
+    o: &mut [f64],
+    dims: (usize, usize, usize),
+    accumulate: bool,
+    upper: bool,
+) {
+    let (r, k, c) = dims;
+    let (a, b, o) = (&a[..r * k], &b[..k * c], &mut o[..r * c]);
+    let weight = |l: usize, j: usize| if T { b[j + l * c] } else { b[l + j * k] };
+    let (rb, cb) = (r - r % BLOCK, c - c % BLOCK);
+    for j0 in (0..c).step_by(BLOCK) {
+        let cols = BLOCK.min(c - j0);
+        // Rows this column block needs: all, or those down to its last diagonal entry.
+        let rows = if upper { (j0 + cols).min(r) } else { r };
+        // Whole tiles first (only in whole column blocks).
+        let tiled = if j0 < cb {
+            rows.min(rb) / BLOCK * BLOCK
+        } else {
+            0
+        };
+        for i0 in (0..tiled).step_by(BLOCK) {
+            let mut acc = [[0.0; BLOCK]; BLOCK];
+            if accumulate {
+                for (q, col) in acc.iter_mut().enumerate() {
+                    col.copy_from_slice(&o[i0 + (j0 + q) * r..i0 + (j0 + q) * r + BLOCK]);
+                }
+            }
+            for l in 0..k {
+                let mut al = [0.0; BLOCK];
+                al.copy_from_slice(&a[i0 + l * r..i0 + l * r + BLOCK]);
+                for (q, col) in acc.iter_mut().enumerate() {
+                    let w = weight(l, j0 + q);
+                    for p in 0..BLOCK {
+                        col[p] += al[p] * w;
+                    }
+                }
+            }
+            for (q, col) in acc.iter().enumerate() {
+                o[i0 + (j0 + q) * r..i0 + (j0 + q) * r + BLOCK].copy_from_slice(col);
+            }
+        }
+        let i0 = tiled;
+        // What is left of these columns, one column at a time.
+        if i0 >= rows {
+            continue;
+        }
+        for j in j0..j0 + cols {
+            let oj = &mut o[i0 + j * r..rows + j * r];
+            if !accumulate {
+                oj.fill(0.0);
+            }
+            for l in 0..k {
+                let w = weight(l, j);
+                for (x, &y) in oj.iter_mut().zip(&a[i0 + l * r..rows + l * r]) {
+                    *x += y * w;
+                }
+            }
+        }
     }
 }
 
@@ -573,7 +657,7 @@ pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usi
 /// Σ aₖ bₖ over the shorter length, in four interleaved partial sums so that the
 /// additions pipeline and vectorise, combined as (s₀ + s₂) + (s₁ + s₃), then the tail.
 #[inline(always)]
-fn dot4(a: &[f64], b: &[f64]) -> f64 {
+pub fn dot4(a: &[f64], b: &[f64]) -> f64 {
     let len = a.len().min(b.len());
     let (a, b) = (&a[..len], &b[..len]);
     let mut s = [0.0; 4];
@@ -712,6 +796,57 @@ mod tests {
         let bad = [1.0, 2.0, 2.0, 1.0];
         let mut l2 = [0.0; 4];
         assert_eq!(cholesky_psd(&bad, &mut l2, 2).unwrap_err().column, 1);
+    }
+
+    #[test]
+    fn products_equal_the_textbook_triple_loop() {
+        // o_ij = Σ_l a_il b_lj (or b_jl) added in l order from 0 (the definition of the
+        // product), so every path, tiled or not, must match it bit for bit; sizes cover
+        // whole tiles, ragged edges on both sides and the small fixed-size kernels.
+        let val = |s: usize| ((s * 37 + 11) % 23) as f64 / 7.0 - 1.5;
+        for (r, k, c) in [
+            (3, 5, 2),
+            (7, 3, 9),
+            (8, 8, 8),
+            (13, 6, 10),
+            (40, 40, 40),
+            (41, 7, 5),
+        ] {
+            let a: Vec<f64> = (0..r * k).map(val).collect();
+            let b: Vec<f64> = (0..k * c).map(|s| val(s + 5)).collect();
+            let start: Vec<f64> = (0..r * c).map(|s| val(s + 9)).collect();
+            for t in [false, true] {
+                for accumulate in [false, true] {
+                    let mut o = start.clone();
+                    if t {
+                        gemm_nt(&a, &b, &mut o, (r, k, c), accumulate);
+                    } else {
+                        gemm_nn(&a, &b, &mut o, (r, k, c), accumulate);
+                    }
+                    for j in 0..c {
+                        for i in 0..r {
+                            let mut x = if accumulate { start[i + j * r] } else { 0.0 };
+                            for l in 0..k {
+                                x += a[i + l * r] * if t { b[j + l * c] } else { b[l + j * k] };
+                            }
+                            assert_eq!(o[i + j * r].to_bits(), x.to_bits(), "{r}x{k}x{c}");
+                        }
+                    }
+                }
+            }
+            // The upper-triangle form on a square result.
+            if r == c {
+                let mut o = vec![f64::NAN; r * c];
+                gemm_nt_upper(&a, &b, &mut o, (r, k, c));
+                let mut full = vec![0.0; r * c];
+                gemm_nt(&a, &b, &mut full, (r, k, c), false);
+                for j in 0..c {
+                    for i in 0..=j {
+                        assert_eq!(o[i + j * r].to_bits(), full[i + j * r].to_bits());
+                    }
+                }
+            }
+        }
     }
 
     #[test]
