@@ -601,18 +601,22 @@ impl Predictor {
                 }
                 let slots = program.slots();
                 let bvars = &mut self.bvars;
-                let bout = &mut self.bout;
                 let bws = self.bws.as_mut().expect("batch workspace");
                 let pe = &mut self.pe;
                 let w = &self.weights[..mp];
                 let qc = self.qc.as_slice();
                 let rhs = |s: f64, y: &[f64], dy: &mut [f64]| {
-                    bvars[..n * mp].copy_from_slice(&y[..n * mp]);
                     bvars[(n + nu) * mp..(n + nu + 1) * mp]
                         .iter_mut()
                         .for_each(|v| *v = t0 + s);
-                    program.eval_batch(&bvars[..slots * mp], mp, bws, bout);
-                    dy[..nm * mp].copy_from_slice(&bout[..nm * mp]);
+                    // States straight from the integrator, rates straight into it.
+                    program.eval_batch_split(
+                        &y[..n * mp],
+                        &bvars[n * mp..slots.max(n) * mp],
+                        mp,
+                        bws,
+                        &mut dy[..nm * mp],
+                    );
                     dy[nm * mp..n * mp].iter_mut().for_each(|v| *v = 0.0);
                     if with_q {
                         for i in 0..n {

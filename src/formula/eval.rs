@@ -169,6 +169,20 @@ impl Program {
     /// results are bit-for-bit those of [`Program::eval`] at each point. Panics (a caller
     /// bug) if `m` exceeds the capacity or a buffer is too short.
     pub fn eval_batch(&self, vars: &[f64], m: usize, ws: &mut BatchWorkspace, out: &mut [f64]) {
+        self.eval_batch_split(vars, &[], m, ws, out);
+    }
+
+    /// [`Program::eval_batch`] with the slots in two pieces: the first `head.len() / m`
+    /// slots from `head` (the states, straight from an integrator's vector), the rest from
+    /// `tail` (inputs and time), which saves the caller gathering them in one buffer.
+    pub fn eval_batch_split(
+        &self,
+        head: &[f64],
+        tail: &[f64],
+        m: usize,
+        ws: &mut BatchWorkspace,
+        out: &mut [f64],
+    ) {
         let cap = ws.cap;
         assert!(m <= cap, "formula: batch of {m} > workspace capacity {cap}");
         assert!(
@@ -176,8 +190,14 @@ impl Program {
             "formula: batch workspace made for another program"
         );
         let regs = &mut ws.regs[..];
+        let first = head.len() / m.max(1);
         for s in 0..self.n_slots {
-            regs[s * cap..s * cap + m].copy_from_slice(&vars[s * m..(s + 1) * m]);
+            let src = if s < first {
+                &head[s * m..(s + 1) * m]
+            } else {
+                &tail[(s - first) * m..(s - first + 1) * m]
+            };
+            regs[s * cap..s * cap + m].copy_from_slice(src);
         }
         let base = self.n_slots + self.consts.len();
         for (i, &ins) in self.tape.iter().enumerate() {
