@@ -111,44 +111,82 @@ impl Ekf {
             for j in 0..n {
                 self.hrow[j] = self.h[row + j * m];
             }
-            // c = P hᵀ, column by column (P is symmetric, so this is also h P).
-            self.ph.fill(0.0);
-            let p = self.cov.as_slice();
-            for (j, &hj) in self.hrow.iter().enumerate() {
-                for (c, &pij) in self.ph.iter_mut().zip(&p[j * n..(j + 1) * n]) {
-                    *c += pij * hj;
-                }
-            }
-            let hc: f64 = self.hrow.iter().zip(&self.ph).map(|(h, c)| h * c).sum();
-            let s = hc + self.obs.r_acc[a + a * ma];
-            if !(s > 0.0) || !s.is_finite() {
-                return Err(FilterError::NotPositive("innovation covariance"));
-            }
-            let hdx: f64 = self.hrow.iter().zip(&self.dx).map(|(h, d)| h * d).sum();
-            let nu = self.obs.nu_acc[a] - hdx;
-            nis += nu * nu / s;
-            let f = nu / s;
-            for i in 0..n {
-                let step = self.ph[i] * f;
-                self.mean[i] += step;
-                self.dx[i] += step;
-            }
-            // P − k cᵀ − c kᵀ + s k kᵀ with k = c / s.
-            let pm = self.cov.as_mut_slice();
-            for j in 0..n {
-                let kj = self.ph[j] / s;
-                let cj = self.ph[j];
-                for i in 0..n {
-                    let ki = self.ph[i] / s;
-                    let ci = self.ph[i];
-                    pm[i + j * n] += -ki * cj - ci * kj + s * ki * kj;
-                }
-            }
+            let bufs = RowBuffers {
+                p: self.cov.as_mut_slice(),
+                mean: self.mean.as_mut_slice(),
+                h: &self.hrow,
+                c: &mut self.ph,
+                dx: &mut self.dx,
+            };
+            let (nu, r) = (self.obs.nu_acc[a], self.obs.r_acc[a + a * ma]);
+            // The size fixed at compile time for small models, so the loops unroll.
+            nis += match n {
+                1 => row_update::<1>(bufs, nu, r),
+                2 => row_update::<2>(bufs, nu, r),
+                3 => row_update::<3>(bufs, nu, r),
+                4 => row_update::<4>(bufs, nu, r),
+                5 => row_update::<5>(bufs, nu, r),
+                6 => row_update::<6>(bufs, nu, r),
+                _ => row_update::<0>(bufs, nu, r),
+            }?;
         }
         symmetrize(&mut self.cov);
         ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
         Ok(nis)
     }
+}
+
+/// What one row's update reads and changes (see [`Ekf::sequential_update`]).
+struct RowBuffers<'a> {
+    p: &'a mut [f64],
+    mean: &'a mut [f64],
+    h: &'a [f64],
+    c: &'a mut [f64],
+    dx: &'a mut [f64],
+}
+
+/// One row of [`Ekf::sequential_update`] with innovation `nu0` (against the predicted
+/// mean) and noise variance `r`; returns the row's ν²/s. `N > 0` fixes the state count at
+/// compile time; `N = 0` takes it from the buffers.
+#[inline(always)]
+fn row_update<const N: usize>(b: RowBuffers, nu0: f64, r: f64) -> Result<f64, FilterError> {
+    let n = if N > 0 { N } else { b.mean.len() };
+    let (p, mean, h, c, dx) = (
+        &mut b.p[..n * n],
+        &mut b.mean[..n],
+        &b.h[..n],
+        &mut b.c[..n],
+        &mut b.dx[..n],
+    );
+    // c = P hᵀ, column by column (P is symmetric, so this is also h P).
+    c.fill(0.0);
+    for (j, &hj) in h.iter().enumerate() {
+        for (ci, &pij) in c.iter_mut().zip(&p[j * n..(j + 1) * n]) {
+            *ci += pij * hj;
+        }
+    }
+    let hc: f64 = h.iter().zip(c.iter()).map(|(h, c)| h * c).sum();
+    let s = hc + r;
+    if !(s > 0.0) || !s.is_finite() {
+        return Err(FilterError::NotPositive("innovation covariance"));
+    }
+    let hdx: f64 = h.iter().zip(dx.iter()).map(|(h, d)| h * d).sum();
+    let nu = nu0 - hdx;
+    let f = nu / s;
+    for i in 0..n {
+        let step = c[i] * f;
+        mean[i] += step;
+        dx[i] += step;
+    }
+    // P − k cᵀ − c kᵀ + s k kᵀ with k = c / s.
+    for j in 0..n {
+        let (kj, cj) = (c[j] / s, c[j]);
+        for i in 0..n {
+            let (ki, ci) = (c[i] / s, c[i]);
+            p[i + j * n] += -ki * cj - ci * kj + s * ki * kj;
+        }
+    }
+    Ok(nu * f)
 }
 
 impl Estimator for Ekf {
@@ -232,19 +270,23 @@ impl Estimator for Ekf {
         if !self.h[..m * n].iter().all(|x| x.is_finite()) {
             return Err(FilterError::NonFinite("sensor Jacobian"));
         }
-        // C = P Hᵀ (n × m), S = H C (m × m).
-        gemm_nt(
-            self.cov.as_slice(),
-            &self.h,
-            &mut self.obs.c,
-            (n, n, m),
-            false,
-        );
-        gemm_nn(&self.h, &self.obs.c, &mut self.obs.s, (m, n, m), false);
         let r = &self.obs.r[..m * m];
         let uncorrelated = (0..m).all(|b| (0..m).all(|a| a == b || r[a + b * m] == 0.0));
-        if uncorrelated && !self.always_stacked {
-            let only_check = self.obs.joint_is_only_check(gate);
+        let by_rows = uncorrelated && !self.always_stacked;
+        let only_check = by_rows && self.obs.joint_is_only_check(gate);
+        if !only_check {
+            // C = P Hᵀ (n × m), S = H C (m × m): the stacked update, or each sensor's own
+            // NIS for the gate.
+            gemm_nt(
+                self.cov.as_slice(),
+                &self.h,
+                &mut self.obs.c,
+                (n, n, m),
+                false,
+            );
+            gemm_nn(&self.h, &self.obs.c, &mut self.obs.s, (m, n, m), false);
+        }
+        if by_rows {
             if !self.obs.gate_blocks(gate)? {
                 return Ok(false);
             }
