@@ -274,7 +274,18 @@ impl Estimator for Ekf {
         let uncorrelated = (0..m).all(|b| (0..m).all(|a| a == b || r[a + b * m] == 0.0));
         let by_rows = uncorrelated && !self.always_stacked;
         let only_check = by_rows && self.obs.joint_is_only_check(gate);
-        if !only_check {
+        if only_check {
+            // Only the predicted variance h P hᵀ of each row (the answer reports it).
+            let p = self.cov.as_slice();
+            for r in 0..m {
+                let mut v = 0.0;
+                for j in 0..n {
+                    let pj: f64 = (0..n).map(|i| p[i + j * n] * self.h[r + i * m]).sum();
+                    v += self.h[r + j * m] * pj;
+                }
+                self.obs.s[r + r * m] = v;
+            }
+        } else {
             // C = P Hᵀ (n × m), S = H C (m × m): the stacked update, or each sensor's own
             // NIS for the gate.
             gemm_nt(
@@ -390,13 +401,23 @@ mod tests {
             z: vec![2.6, 0.4, 1.3],
             ..Default::default()
         };
-        // No gate; then a gate that rejects s1 (its NIS is far above 0.5) and keeps s2.
-        for gate in [None, Some(&[0.5, 1e9][..])] {
+        let one = Reading {
+            sensors: vec![(1, 0)],
+            z: vec![0.4, 1.3],
+            ..reading.clone()
+        };
+        // No gate; a gate that rejects s1 (its NIS is far above 0.5) and keeps s2; one
+        // sensor alone (whose NIS the row pass gives).
+        for (reading, gate) in [
+            (&reading, None),
+            (&reading, Some(&[0.5, 1e9][..])),
+            (&one, None),
+        ] {
             let mut rows = base.clone();
             let mut stacked = base.clone();
             stacked.always_stacked = true;
-            assert!(rows.update(&model, &reading, &[], 0.0, gate).unwrap());
-            assert!(stacked.update(&model, &reading, &[], 0.0, gate).unwrap());
+            assert!(rows.update(&model, reading, &[], 0.0, gate).unwrap());
+            assert!(stacked.update(&model, reading, &[], 0.0, gate).unwrap());
             let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * (1.0 + b.abs());
             for (a, b) in rows.mean.iter().zip(stacked.mean.iter()) {
                 assert!(close(*a, *b), "mean {a} vs {b}");
@@ -409,7 +430,13 @@ mod tests {
                 assert_eq!(a.accepted, b.accepted);
                 assert!(close(a.nis, b.nis), "sensor NIS {} vs {}", a.nis, b.nis);
             }
-            assert_eq!(rows.obs.ma, if gate.is_some() { 2 } else { 3 });
+            // Each row's predicted variance (reported with its innovation).
+            let m = rows.obs.m;
+            for r in 0..m {
+                let (a, b) = (rows.obs.s[r + r * m], stacked.obs.s[r + r * m]);
+                assert!(close(a, b), "S diagonal {a} vs {b}");
+            }
+            assert_eq!(rows.obs.ma, if gate.is_some() { 2 } else { m });
         }
     }
 }

@@ -573,14 +573,21 @@ impl Estimator for Enkf {
             }
         }
         // The perturbed update needs all of S and C = Cov(x, y) for K. The transform needs
-        // only each sensor's diagonal block of S for its own NIS (none when the joint NIS,
-        // which it computes itself, settles the line).
+        // only each sensor's diagonal block of S for its own NIS (only the diagonal, for
+        // the answer, when the joint NIS, which it computes itself, settles the line).
         let need_c = self.cfg.update == EnsembleUpdate::Perturbed;
         let only_check = !need_c && self.obs.joint_is_only_check(gate);
         if need_c {
             self.fill_anomalies();
         }
         let za = &self.za[..m * nn];
+        if only_check {
+            // Only the predicted variance of each row (the answer reports it).
+            for r in 0..m {
+                let sum: f64 = (0..nn).map(|k| za[r + k * m] * za[r + k * m]).sum();
+                self.obs.s[r + r * m] = sum / (nf - 1.0);
+            }
+        }
         let spans = match (need_c, only_check) {
             (true, _) => 1,
             (false, true) => 0,
@@ -822,6 +829,11 @@ mod tests {
                 (got - direct).abs() < 1e-10 * direct,
                 "{got} vs {direct} (full {full})"
             );
+            // Each row's predicted variance (reported with its innovation).
+            for r in 0..3 {
+                let got = f.obs.s[r + r * 3];
+                assert!((got - s[(r, r)]).abs() < 1e-12 * s[(r, r)], "S_rr {got}");
+            }
         }
         // One sensor, gated: its NIS comes from its block, and the joint NIS is that value.
         let one = Reading {
@@ -831,7 +843,7 @@ mod tests {
         };
         let s2 = s.view((1, 1), (2, 2)).into_owned();
         let nu2 = nu.rows(1, 2).into_owned();
-        let direct2 = nu2.dot(&s2.cholesky().unwrap().solve(&nu2));
+        let direct2 = nu2.dot(&s2.clone().cholesky().unwrap().solve(&nu2));
         let mut ungated = base.clone();
         assert!(ungated.update(&model, &one, &[], 0.0, None).unwrap());
         let mut gated = base.clone();
@@ -840,6 +852,10 @@ mod tests {
             .unwrap());
         for f in [&ungated, &gated] {
             assert_eq!(f.obs.checks[0].nis, f.obs.joint_nis);
+            for r in 0..2 {
+                let got = f.obs.s[r + r * 2];
+                assert!((got - s2[(r, r)]).abs() < 1e-12 * s2[(r, r)], "S_rr {got}");
+            }
             let got = f.obs.joint_nis;
             assert!(
                 (got - direct2).abs() < 1e-10 * direct2,

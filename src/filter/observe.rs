@@ -155,12 +155,20 @@ impl ObsSpace {
     /// [`ObsSpace::gate`] when the filter filled only each sensor's diagonal block of S
     /// (what the per-sensor NIS needs) and will set the joint NIS itself with
     /// [`ObsSpace::set_joint_nis`]; only ν and R are compacted. With no gate and one sensor
-    /// on the line, that sensor's NIS is the joint NIS, so its block is not read (the filter
-    /// may leave it unfilled) and its NIS is set with the joint one.
+    /// on the line, that sensor's NIS is the joint NIS, so the filter need fill only the
+    /// diagonal of S (each row's predicted variance, which the answer reports) and the
+    /// sensor's NIS is set with the joint one.
     pub fn gate_blocks(&mut self, thresholds: Option<&[f64]>) -> Result<bool, FilterError> {
         let m = self.m;
         self.innovations()?;
         if self.joint_is_only_check(thresholds) {
+            for a in 0..m {
+                let v = self.s[a + a * m] + self.r[a + a * m];
+                if !v.is_finite() {
+                    return Err(FilterError::NonFinite("predicted reading"));
+                }
+                self.s[a + a * m] = v;
+            }
             self.checks[0].accepted = true;
         } else {
             for ck in &self.checks {

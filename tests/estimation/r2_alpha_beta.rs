@@ -77,6 +77,27 @@ fn ekf_gain_converges_to_kalata_alpha_beta() {
 }
 
 #[test]
+fn innovation_std_converges_to_the_alpha_beta_value() {
+    // At steady state α = P⁻₁₁ / S and S = P⁻₁₁ + σ_z², so the innovation's standard
+    // deviation is σ_z / √(1 − α) (follows from Kalata 1984's α; common practice). The
+    // answer's `innovations.*.std` must converge to it, for every filter's update path.
+    for method in ["ekf", "ukf"] {
+        let (t, sigma_a, sigma_z) = (0.5, 0.3, 0.2);
+        let (alpha, _) = kalata(sigma_a * t * t / sigma_z);
+        let mut body = request(method, t, sigma_a, sigma_z, 3000);
+        body["output"] = json!({"innovations": true});
+        let out = ok(&body);
+        let last = out["estimates"].as_array().unwrap().last().unwrap().clone();
+        let std = f(&last["innovations"]["encoder"], "std");
+        let expected = sigma_z / (1.0 - alpha).sqrt();
+        assert!(
+            rel(std, expected, 1e-12) < 1e-8,
+            "{method}: innovation std {std} vs {expected}"
+        );
+    }
+}
+
+#[test]
 fn ukf_gain_converges_to_kalata_alpha_beta() {
     let (t, sigma_a, sigma_z) = (0.2, 1.5, 0.1);
     let (alpha, beta) = kalata(sigma_a * t * t / sigma_z);
