@@ -109,8 +109,13 @@ impl Writer {
         // Where each entry above the diagonal was written, for models of up to this many
         // states (the array lives on the stack); larger ones format every entry.
         const MIRROR_UP_TO: usize = 8;
-        let mut spans = [(0usize, 0usize); MIRROR_UP_TO * MIRROR_UP_TO];
+        // Entry (i, j), i < j, at `tri(i, j)`, as offsets from the matrix's first byte (a
+        // matrix of at most 64 numbers is far shorter than 64 kB): small enough to be
+        // zeroed in registers for every estimate, not by a call to memset.
+        let tri = |i: usize, j: usize| j * (j - 1) / 2 + i;
+        let mut spans = [(0u16, 0u16); MIRROR_UP_TO * (MIRROR_UP_TO - 1) / 2];
         let mirror = n <= MIRROR_UP_TO;
+        let start = buf.len();
         buf.push(b'[');
         for i in 0..n {
             if i > 0 {
@@ -123,13 +128,13 @@ impl Writer {
                 }
                 let x = m[i + j * n];
                 if mirror && j < i && x.to_bits() == m[j + i * n].to_bits() {
-                    let (from, to) = spans[j * MIRROR_UP_TO + i];
-                    buf.extend_from_within(from..to);
+                    let (from, to) = spans[tri(j, i)];
+                    buf.extend_from_within(start + from as usize..start + to as usize);
                 } else {
-                    let from = buf.len();
+                    let from = buf.len() - start;
                     num(buf, x);
                     if mirror && j > i {
-                        spans[i * MIRROR_UP_TO + j] = (from, buf.len());
+                        spans[tri(i, j)] = (from as u16, (buf.len() - start) as u16);
                     }
                 }
             }
@@ -361,5 +366,22 @@ mod tests {
             square_text(&[1.0, a, b, 2.0], 2),
             "prefix[[1.0,0.10000000000000002],[0.1,2.0]]"
         );
+        // The largest mirrored size and one past it, read back by serde_json: every entry
+        // must be its own value, whichever mirror it was copied from.
+        for n in [8usize, 9] {
+            let m: Vec<f64> = (0..n * n)
+                .map(|k| {
+                    let (i, j) = (k % n, k / n);
+                    (i + j) as f64 + 0.1 * (i * j) as f64 + 1e-3 * (i == j) as u8 as f64
+                })
+                .collect();
+            let text = square_text(&m, n);
+            let back: Vec<Vec<f64>> = serde_json::from_str(&text["prefix".len()..]).unwrap();
+            for (i, row) in back.iter().enumerate() {
+                for (j, v) in row.iter().enumerate() {
+                    assert_eq!(*v, m[i + j * n], "({i}, {j}) of {n}");
+                }
+            }
+        }
     }
 }
