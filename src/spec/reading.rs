@@ -193,6 +193,14 @@ impl<'m> ReadingParser<'m> {
     /// through `serde_path_to_error` to locate the bad field: tracking the path costs
     /// about as much as the parse itself, and almost every line is fine.
     pub fn parse(&self, text: &str, out: &mut Reading) -> Result<(), LineError> {
+        if self.mode == TimeMode::Seconds && self.parse_plain(text, out).is_some() {
+            return Ok(());
+        }
+        self.parse_full(text, out)
+    }
+
+    /// [`ReadingParser::parse`] by serde alone: any line, with its errors.
+    fn parse_full(&self, text: &str, out: &mut Reading) -> Result<(), LineError> {
         let mut de = serde_json::Deserializer::from_str(text);
         let fast = RawReading::deserialize(&mut de).and_then(|raw| de.end().map(|()| raw));
         let raw = match fast {
@@ -200,6 +208,73 @@ impl<'m> ReadingParser<'m> {
             Err(_) => return Err(self.parse_failed(text)),
         };
         self.resolve(raw, out).map_err(LineError::Invalid)
+    }
+
+    /// The usual line, `{"t": <number>, "values": {"<sensor>": <number> | [<numbers>] |
+    /// null, ...}}` with its keys in that order and its sensors in model order, read in one
+    /// pass over the bytes. `None` for anything else (other keys or orders, escapes in a
+    /// name, an unknown, repeated or out-of-order sensor, a wrong count of values, a number
+    /// out of range): the serde reader then reads the line and reports what is wrong, so
+    /// errors are the same as ever. Numbers are checked against JSON's grammar and then
+    /// converted by `f64::from_str`, which rounds correctly, as serde_json does with its
+    /// `float_roundtrip` feature: both readers give the same bits (tested).
+    fn parse_plain(&self, text: &str, out: &mut Reading) -> Option<()> {
+        let m = self.model;
+        let mut sc = Scan {
+            b: text.as_bytes(),
+            i: 0,
+        };
+        out.sensors.clear();
+        out.z.clear();
+        out.std_overrides.clear();
+        out.std.clear();
+        out.inputs.clear();
+        sc.eat(b'{')?;
+        (sc.key()? == "t").then_some(())?;
+        sc.eat(b':')?;
+        let t = sc.number()?;
+        sc.eat(b',')?;
+        (sc.key()? == "values").then_some(())?;
+        sc.eat(b':')?;
+        sc.eat(b'{')?;
+        if !sc.eat_if(b'}') {
+            let mut last = None;
+            loop {
+                let si = m.sensor_index(sc.key()?)?;
+                if last.is_some_and(|l| si <= l) {
+                    return None;
+                }
+                last = Some(si);
+                sc.eat(b':')?;
+                let dim = m.sensors[si].dim;
+                let start = out.z.len();
+                if sc.eat_if(b'[') {
+                    for k in 0..dim {
+                        if k > 0 {
+                            sc.eat(b',')?;
+                        }
+                        out.z.push(sc.number()?);
+                    }
+                    sc.eat(b']')?;
+                    out.sensors.push((si, start));
+                } else if sc.literal(b"null") {
+                    // No reading from this sensor on this line.
+                } else if dim == 1 {
+                    out.z.push(sc.number()?);
+                    out.sensors.push((si, start));
+                } else {
+                    return None;
+                }
+                if !sc.eat_if(b',') {
+                    break;
+                }
+            }
+            sc.eat(b'}')?;
+        }
+        sc.eat(b'}')?;
+        sc.end()?;
+        out.t = Instant::seconds(t);
+        Some(())
     }
 
     /// The error of a line that failed the fast parse, read again with path tracking so
@@ -374,6 +449,110 @@ impl<'m> ReadingParser<'m> {
     }
 }
 
+/// A cursor over one line's bytes for [`ReadingParser::parse_plain`]; every method skips
+/// JSON whitespace first and returns `None` (or false) on anything unexpected.
+struct Scan<'a> {
+    b: &'a [u8],
+    i: usize,
+}
+
+impl<'a> Scan<'a> {
+    fn ws(&mut self) {
+        while matches!(self.b.get(self.i), Some(b' ' | b'\t' | b'\n' | b'\r')) {
+            self.i += 1;
+        }
+    }
+
+    fn eat_if(&mut self, c: u8) -> bool {
+        self.ws();
+        let hit = self.b.get(self.i) == Some(&c);
+        self.i += hit as usize;
+        hit
+    }
+
+    fn eat(&mut self, c: u8) -> Option<()> {
+        self.eat_if(c).then_some(())
+    }
+
+    fn literal(&mut self, word: &[u8]) -> bool {
+        self.ws();
+        let hit = self.b[self.i..].starts_with(word);
+        if hit {
+            self.i += word.len();
+        }
+        hit
+    }
+
+    /// Whitespace to the end of the text.
+    fn end(&mut self) -> Option<()> {
+        self.ws();
+        (self.i == self.b.len()).then_some(())
+    }
+
+    /// A string without escapes or control characters (the usual key).
+    fn key(&mut self) -> Option<&'a str> {
+        self.eat(b'"')?;
+        let start = self.i;
+        loop {
+            match *self.b.get(self.i)? {
+                b'"' => break,
+                b'\\' => return None,
+                c if c < 0x20 => return None,
+                _ => self.i += 1,
+            }
+        }
+        let s = std::str::from_utf8(&self.b[start..self.i]).ok()?;
+        self.i += 1;
+        Some(s)
+    }
+
+    /// A finite JSON number: -?(0|[1-9][0-9]*)(.[0-9]+)?([eE][+-]?[0-9]+)?.
+    fn number(&mut self) -> Option<f64> {
+        self.ws();
+        let start = self.i;
+        let digit = |s: &Self| matches!(s.b.get(s.i), Some(b'0'..=b'9'));
+        let digits = |s: &mut Self| {
+            let from = s.i;
+            while digit(s) {
+                s.i += 1;
+            }
+            s.i > from
+        };
+        self.eat_if_raw(b'-');
+        match self.b.get(self.i)? {
+            b'0' => self.i += 1,
+            b'1'..=b'9' => {
+                digits(self);
+            }
+            _ => return None,
+        }
+        if self.eat_if_raw(b'.') && !digits(self) {
+            return None;
+        }
+        if matches!(self.b.get(self.i), Some(b'e' | b'E')) {
+            self.i += 1;
+            if !self.eat_if_raw(b'+') {
+                self.eat_if_raw(b'-');
+            }
+            if !digits(self) {
+                return None;
+            }
+        }
+        let x: f64 = std::str::from_utf8(&self.b[start..self.i])
+            .ok()?
+            .parse()
+            .ok()?;
+        x.is_finite().then_some(x)
+    }
+
+    /// `c` at the cursor itself, without skipping whitespace.
+    fn eat_if_raw(&mut self, c: u8) -> bool {
+        let hit = self.b.get(self.i) == Some(&c);
+        self.i += hit as usize;
+        hit
+    }
+}
+
 fn path_to_pointer(path: &serde_path_to_error::Path) -> String {
     use serde_path_to_error::Segment;
     let mut s = String::new();
@@ -400,5 +579,128 @@ pub fn clean_message(e: &serde_json::Error) -> String {
     match s.rfind(" at line ") {
         Some(i) => s[..i].to_string(),
         None => s,
+    }
+}
+
+#[cfg(test)]
+mod plain_line_tests {
+    use super::*;
+    use crate::config::Limits;
+    use serde_json::json;
+
+    fn model() -> Model {
+        crate::spec::validate::model(
+            &json!({"states": ["x", "y"], "dynamics": {"rates": {"x": "y"}},
+                    "sensors": {"a": {"measures": "x", "std": 1.0},
+                                "v": {"measures": ["x", "y"], "std": 1.0},
+                                "b": {"measures": "y", "std": 1.0}}}),
+            "/model",
+            &Limits::default(),
+        )
+        .unwrap()
+    }
+
+    /// The byte reader must take a line only when serde (the reference, with exact
+    /// float parsing) reads it the same way, bit for bit; what it refuses goes to serde.
+    fn check(p: &ReadingParser, line: &str) -> bool {
+        let (mut fast, mut full) = (Reading::default(), Reading::default());
+        let took = p.parse_plain(line, &mut fast).is_some();
+        let reference = p.parse_full(line, &mut full);
+        if took {
+            assert!(
+                reference.is_ok(),
+                "fast path took a line serde refuses: {line}"
+            );
+            assert_eq!(format!("{:?}", fast.t), format!("{:?}", full.t), "{line}");
+            assert_eq!(fast.sensors, full.sensors, "{line}");
+            let bits = |r: &Reading| r.z.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&fast), bits(&full), "{line}");
+        }
+        // And the public reader agrees with serde whichever path it took.
+        let mut public = Reading::default();
+        assert_eq!(
+            p.parse(line, &mut public).is_ok(),
+            reference.is_ok(),
+            "{line}"
+        );
+        took
+    }
+
+    #[test]
+    fn plain_lines_read_as_serde_reads_them() {
+        let m = model();
+        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let taken = [
+            r#"{"t":0.5,"values":{"a":1.25}}"#,
+            " { \"t\" : 1e-3 ,\n\"values\" : { \"a\" : -0 , \"v\" : [ 1 , 2.5E+2 ] } }\t",
+            r#"{"t":12345678901234567890,"values":{"a":0.1}}"#,
+            r#"{"t":1,"values":{}}"#,
+            r#"{"t":1,"values":{"a":null,"b":3}}"#,
+            r#"{"t":9007199254740993,"values":{"a":1.7976931348623157e308}}"#,
+            r#"{"t":5e-324,"values":{"a":2.2250738585072011e-308,"b":0.30000000000000004}}"#,
+            r#"{"t":123456789012345678901234567890e-10,"values":{"a":-0.0,"b":1E5}}"#,
+        ];
+        for line in taken {
+            assert!(check(&p, line), "fast path refused {line}");
+        }
+        let refused = [
+            r#"{"values":{"a":1},"t":2}"#,
+            r#"{"t":1,"values":{"b":1,"a":2}}"#,
+            r#"{"t":1,"values":{"a":1},"inputs":{}}"#,
+            r#"{"t":01,"values":{}}"#,
+            r#"{"t":1,"values":{"a":1,}}"#,
+            r#"{"t":1,"values":{"a":1}} x"#,
+            r#"{"t":1e999,"values":{}}"#,
+            r#"{"t":1,"values":{"zz":1}}"#,
+            r#"{"t":1,"values":{"a":1,"a":2}}"#,
+            r#"{"t":1,"values":{"v":3}}"#,
+            r#"{"t":1,"values":{"v":[1]}}"#,
+            r#"{"t":1,"values":{"v":[1,2,3]}}"#,
+            r#"{"t":1,"values":{"a":nul}}"#,
+            r#"{"t":1,"values":{"a":nullx}}"#,
+            r#"{"t":-,"values":{}}"#,
+            r#"{"t":1.,"values":{}}"#,
+            r#"{"t":.5,"values":{}}"#,
+            r#"{"t":1e,"values":{}}"#,
+            r#"{"t":+1,"values":{}}"#,
+            r#"{"t":1,"values":{"a":"1"}}"#,
+            r#"{"t":1,"values":{"a\u0062":1}}"#,
+            r#"{"t":1,"values":{"a":1}"#,
+            r#"{"t":1,"values":{"a":1}}}"#,
+            r#"{"t":"2026-01-01T00:00:00Z","values":{}}"#,
+            "",
+        ];
+        for line in refused {
+            assert!(!check(&p, line), "fast path took {line}");
+        }
+    }
+
+    #[test]
+    fn plain_numbers_round_as_serde_rounds() {
+        // 20,000 numbers in shortest, scientific, long and integer forms, seeded.
+        let m = model();
+        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let mut state = 0x9e3779b97f4a7c15u64;
+        let mut next = || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state
+        };
+        for k in 0..20_000 {
+            let bits = next();
+            let x = f64::from_bits(bits);
+            if !x.is_finite() {
+                continue;
+            }
+            let text = match k % 4 {
+                0 => format!("{x:?}"),
+                1 => format!("{x:e}"),
+                2 => format!("{:.25e}", x),
+                _ => format!("{}", (bits >> 11) as i64 - (1 << 52)),
+            };
+            let line = format!(r#"{{"t":{},"values":{{"a":{text}}}}}"#, k as f64 * 0.01);
+            assert!(check(&p, &line), "fast path refused {line}");
+        }
     }
 }
