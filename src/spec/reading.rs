@@ -221,6 +221,7 @@ impl<'m> ReadingParser<'m> {
     fn parse_plain(&self, text: &str, out: &mut Reading) -> Option<()> {
         let m = self.model;
         let mut sc = Scan {
+            s: text,
             b: text.as_bytes(),
             i: 0,
         };
@@ -452,6 +453,9 @@ impl<'m> ReadingParser<'m> {
 /// A cursor over one line's bytes for [`ReadingParser::parse_plain`]; every method skips
 /// JSON whitespace first and returns `None` (or false) on anything unexpected.
 struct Scan<'a> {
+    /// The line, and the same as bytes; slices of `s` at ASCII positions need no UTF-8
+    /// check.
+    s: &'a str,
     b: &'a [u8],
     i: usize,
 }
@@ -501,7 +505,7 @@ impl<'a> Scan<'a> {
                 _ => self.i += 1,
             }
         }
-        let s = std::str::from_utf8(&self.b[start..self.i]).ok()?;
+        let s = self.s.get(start..self.i)?;
         self.i += 1;
         Some(s)
     }
@@ -538,10 +542,7 @@ impl<'a> Scan<'a> {
                 return None;
             }
         }
-        let x: f64 = std::str::from_utf8(&self.b[start..self.i])
-            .ok()?
-            .parse()
-            .ok()?;
+        let x: f64 = self.s.get(start..self.i)?.parse().ok()?;
         x.is_finite().then_some(x)
     }
 
