@@ -63,6 +63,8 @@ pub struct Enkf {
     /// Whether the accepted readings' noise (and so `lr`) is diagonal: independent
     /// sensors, the usual case, where whitening is one division per entry.
     lr_diagonal: bool,
+    /// 1/√R_aa of the accepted readings when `lr_diagonal`.
+    inv_sd: Vec<f64>,
     ybar: Vec<f64>,
     eps: Vec<f64>,
     prev: DMatrix<f64>,
@@ -100,12 +102,13 @@ pub struct Enkf {
     gbuf: Vec<f64>,
 }
 
-/// `L_R⁻¹ v` in place for the `ma × ma` lower factor `lr`; a diagonal factor divides
-/// entry by entry (the same values the triangular solve gives, without its O(ma²) loop).
-fn whiten(lr: &[f64], diagonal: bool, ma: usize, v: &mut [f64]) {
+/// `L_R⁻¹ v` in place for the `ma × ma` lower factor `lr`; a diagonal factor multiplies
+/// entry by entry by `inv_sd`, the reciprocals of its diagonal (the triangular solve's
+/// values to rounding, without its O(ma²) loop or a division per entry).
+fn whiten(lr: &[f64], inv_sd: &[f64], diagonal: bool, ma: usize, v: &mut [f64]) {
     if diagonal {
-        for (a, x) in v.iter_mut().enumerate() {
-            *x /= lr[a + a * ma];
+        for (x, &w) in v.iter_mut().zip(&inv_sd[..ma]) {
+            *x *= w;
         }
     } else {
         solve_lower(&lr[..ma * ma], ma, v);
@@ -160,6 +163,7 @@ impl Enkf {
             lq: vec![0.0; n * n],
             lr: vec![0.0; mm * mm],
             lr_diagonal: false,
+            inv_sd: vec![0.0; mm],
             ybar: vec![0.0; mm],
             eps: vec![0.0; mm.max(n)],
             prev: DMatrix::zeros(nn, n),
@@ -281,7 +285,13 @@ impl Enkf {
                 let row = self.obs.keep[a];
                 self.eps[a] = zs[row * nn + j] - self.ybar[row];
             }
-            whiten(&self.lr, self.lr_diagonal, ma, &mut self.eps[..ma]);
+            whiten(
+                &self.lr,
+                &self.inv_sd,
+                self.lr_diagonal,
+                ma,
+                &mut self.eps[..ma],
+            );
             for a in 0..ma {
                 self.yt[(a, j)] = self.eps[a];
             }
@@ -289,7 +299,13 @@ impl Enkf {
         for a in 0..ma {
             self.dtil[a] = self.obs.nu_acc[a];
         }
-        whiten(&self.lr, self.lr_diagonal, ma, &mut self.dtil[..ma]);
+        whiten(
+            &self.lr,
+            &self.inv_sd,
+            self.lr_diagonal,
+            ma,
+            &mut self.dtil[..ma],
+        );
         if ma < nn && !self.always_full {
             return self.transform_low_rank();
         }
@@ -331,10 +347,11 @@ impl Enkf {
         for l in 0..nn {
             self.sq[l] = self.lam[l].sqrt();
         }
-        // Σₗ (vᵢₗ/√λₗ) vⱼₗ for i ≤ j (the sum is symmetric), one division per (i, l).
+        // Σₗ (vᵢₗ/√λₗ) vⱼₗ for i ≤ j (the sum is symmetric), one division per l.
         for l in 0..nn {
+            let inv = 1.0 / self.sq[l];
             for i in 0..nn {
-                self.scaled[i + l * nn] = v[(i, l)] / self.sq[l];
+                self.scaled[i + l * nn] = v[(i, l)] * inv;
             }
         }
         gemm_nt_upper(
@@ -654,6 +671,7 @@ impl Estimator for Enkf {
                     return Err(FilterError::NotPositive("reading noise"));
                 }
                 lr[a + a * ma] = d.sqrt();
+                self.inv_sd[a] = 1.0 / d.sqrt();
             }
         } else {
             cholesky(r, &mut self.lr[..ma * ma], ma)
