@@ -270,9 +270,7 @@ impl Estimator for Ekf {
         if !self.h[..m * n].iter().all(|x| x.is_finite()) {
             return Err(FilterError::NonFinite("sensor Jacobian"));
         }
-        let r = &self.obs.r[..m * m];
-        let uncorrelated = (0..m).all(|b| (0..m).all(|a| a == b || r[a + b * m] == 0.0));
-        let by_rows = uncorrelated && !self.always_stacked;
+        let by_rows = self.obs.r_diagonal && !self.always_stacked;
         let only_check = by_rows && self.obs.joint_is_only_check(gate);
         if only_check {
             // Only the predicted variance h P hᵀ of each row (the answer reports it).

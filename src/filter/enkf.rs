@@ -660,7 +660,8 @@ impl Estimator for Enkf {
         }
         let ma = self.obs.ma;
         let r = &self.obs.r_acc[..ma * ma];
-        self.lr_diagonal = (0..ma).all(|b| (0..ma).all(|a| a == b || r[a + b * ma] == 0.0));
+        // The accepted rows of a diagonal R.
+        self.lr_diagonal = self.obs.r_diagonal;
         if self.lr_diagonal {
             // Cholesky of a diagonal matrix: square roots of the diagonal.
             let lr = &mut self.lr[..ma * ma];

@@ -35,6 +35,10 @@ pub struct ObsSpace {
     pub m: usize,
     /// Rows accepted by the gate.
     pub ma: usize,
+    /// Whether R on the current line is diagonal (uncorrelated rows).
+    pub r_diagonal: bool,
+    /// Whether each model sensor's own R is diagonal.
+    sensor_diagonal: Vec<bool>,
     /// Sensors present on the line.
     pub checks: Vec<SensorCheck>,
     /// Stacked reading.
@@ -80,6 +84,15 @@ impl ObsSpace {
             n,
             m: 0,
             ma: 0,
+            r_diagonal: true,
+            sensor_diagonal: model
+                .sensors
+                .iter()
+                .map(|s| {
+                    let d = s.dim;
+                    (0..d).all(|b| (0..d).all(|a| a == b || s.r[(a, b)] == 0.0))
+                })
+                .collect(),
             checks: Vec::with_capacity(model.sensors.len()),
             z: vec![0.0; mm],
             zhat: vec![0.0; mm],
@@ -119,18 +132,31 @@ impl ObsSpace {
         }
         self.m = row;
         let m = row;
-        self.r[..m * m].iter_mut().for_each(|x| *x = 0.0);
+        self.r[..m * m].fill(0.0);
+        self.r_diagonal = true;
         for ck in &self.checks {
             let over = reading.std_overrides.iter().find(|(s, _)| *s == ck.sensor);
             let rs = &model.sensors[ck.sensor].r;
-            for a in 0..ck.dim {
-                for b in 0..ck.dim {
-                    let v = match over {
-                        Some(&(_, o)) if a == b => reading.std[o + a] * reading.std[o + a],
-                        Some(_) => 0.0,
-                        None => rs[(a, b)],
-                    };
-                    self.r[(ck.row + a) + (ck.row + b) * m] = v;
+            let at = |a: usize, b: usize| (ck.row + a) + (ck.row + b) * m;
+            match over {
+                // A per-reading std: independent components.
+                Some(&(_, o)) => {
+                    for a in 0..ck.dim {
+                        self.r[at(a, a)] = reading.std[o + a] * reading.std[o + a];
+                    }
+                }
+                None if self.sensor_diagonal[ck.sensor] => {
+                    for a in 0..ck.dim {
+                        self.r[at(a, a)] = rs[(a, a)];
+                    }
+                }
+                None => {
+                    self.r_diagonal = false;
+                    for b in 0..ck.dim {
+                        for a in 0..ck.dim {
+                            self.r[at(a, b)] = rs[(a, b)];
+                        }
+                    }
                 }
             }
         }
