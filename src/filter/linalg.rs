@@ -506,10 +506,26 @@ pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usi
                 f = d[j];
                 at!(j, i) = f;
                 let col = &v[j * n + j + 1..j * n + i];
-                g = e[j] + v[j + j * n] * f + dot4(col, &d[j + 1..i]);
-                for (ek, &vk) in e[j + 1..i].iter_mut().zip(col) {
-                    *ek += vk * f;
+                // One pass over the column: its dot product with d (four partial sums,
+                // as `dot4`) and e += column · f.
+                let (dd, ee) = (&d[j + 1..i], &mut e[j + 1..i]);
+                let mut part = [0.0; 4];
+                let mut cc = col.chunks_exact(4);
+                let mut cd = dd.chunks_exact(4);
+                let mut ce = ee.chunks_exact_mut(4);
+                for ((c4, d4), e4) in (&mut cc).zip(&mut cd).zip(&mut ce) {
+                    for q in 0..4 {
+                        part[q] += c4[q] * d4[q];
+                        e4[q] += c4[q] * f;
+                    }
                 }
+                let mut dot = (part[0] + part[2]) + (part[1] + part[3]);
+                let tail = cc.remainder().iter().zip(cd.remainder());
+                for ((&ck, &dk), ek) in tail.zip(ce.into_remainder()) {
+                    dot += ck * dk;
+                    *ek += ck * f;
+                }
+                g = e[j] + v[j + j * n] * f + dot;
                 e[j] = g;
             }
             f = 0.0;
