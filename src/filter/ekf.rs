@@ -366,9 +366,8 @@ impl Estimator for Ekf {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::config::Limits;
+    use crate::filter::test_fixtures::{integration, prior, three_states, two_sensors};
     use crate::spec::time::Instant;
-    use serde_json::json;
 
     #[test]
     fn row_at_a_time_update_equals_the_stacked_update() {
@@ -376,21 +375,9 @@ mod tests {
         // update (Simon 2006, §6.1, from memory): with H fixed at the predicted mean it must
         // give the stacked Joseph-form update's mean, covariance and NIS to rounding, with
         // and without a gate that turns one sensor away.
-        let model = crate::spec::validate::model(
-            &json!({"states": ["a", "b", "c"], "dynamics": {"rates": {"a": "b", "b": "-a"}},
-                    "sensors": {"s1": {"measures": "a + c", "std": 0.3},
-                                "s2": {"measures": ["b*b", "a"], "std": [0.5, 0.2]}}}),
-            "/model",
-            &Limits::default(),
-        )
-        .unwrap();
-        let integ = Integration {
-            max_step: f64::INFINITY,
-            rtol: 1e-6,
-            atol: 1e-9,
-            fixed_step: None,
-        };
-        let mean = DVector::from_vec(vec![1.0, 0.5, -0.2]);
+        let model = three_states(two_sensors());
+        let integ = integration();
+        let (mean, _) = prior();
         let cov = DMatrix::from_row_slice(3, 3, &[0.4, 0.1, 0.0, 0.1, 0.3, 0.05, 0.0, 0.05, 0.2]);
         let base = Ekf::new(&model, integ, mean, cov);
         let reading = Reading {

@@ -742,7 +742,7 @@ impl Estimator for Enkf {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::config::Limits;
+    use crate::filter::test_fixtures::{etkf, integration, prior, three_states, two_sensors};
     use crate::spec::time::Instant;
     use serde_json::json;
 
@@ -750,27 +750,9 @@ mod tests {
     fn low_rank_transform_equals_full_transform() {
         // Two forms of the same ETKF analysis (Hunt et al. 2007, §2.3) must agree to
         // rounding: the small-eigenproblem form is an identity of linear algebra.
-        let model = crate::spec::validate::model(
-            &json!({"states": ["a", "b", "c"], "dynamics": {"rates": {"a": "b", "b": "-a"}},
-                    "sensors": {"s": {"measures": ["a + c", "b*b"], "std": [0.3, 0.5]}}}),
-            "/model",
-            &Limits::default(),
-        )
-        .unwrap();
-        let cfg = Ensemble {
-            members: 25,
-            seed: 4,
-            inflation: 1.0,
-            update: EnsembleUpdate::Deterministic,
-        };
-        let mean = DVector::from_vec(vec![1.0, 0.5, -0.2]);
-        let cov = DMatrix::from_diagonal(&DVector::from_vec(vec![0.4, 0.3, 0.2]));
-        let integ = Integration {
-            max_step: f64::INFINITY,
-            rtol: 1e-6,
-            atol: 1e-9,
-            fixed_step: None,
-        };
+        let model = three_states(json!({"s": {"measures": ["a + c", "b*b"], "std": [0.3, 0.5]}}));
+        let cfg = etkf(4);
+        let ((mean, cov), integ) = (prior(), integration());
         let mut fast = Enkf::new(&model, integ, cfg, &mean, &cov, None, 0).unwrap();
         let mut full = fast.clone();
         full.always_full = true;
@@ -793,28 +775,9 @@ mod tests {
         // nalgebra's Cholesky (the textbook definition, Bar-Shalom et al. 2001, §5.4) must
         // equal the value the transform derives through Woodbury's identity, for the
         // low-rank and the full form, and for a gated line whose NIS comes from the block.
-        let model = crate::spec::validate::model(
-            &json!({"states": ["a", "b", "c"], "dynamics": {"rates": {"a": "b", "b": "-a"}},
-                    "sensors": {"s1": {"measures": "a + c", "std": 0.3},
-                                "s2": {"measures": ["b*b", "a"], "std": [0.5, 0.2]}}}),
-            "/model",
-            &Limits::default(),
-        )
-        .unwrap();
-        let cfg = Ensemble {
-            members: 25,
-            seed: 9,
-            inflation: 1.0,
-            update: EnsembleUpdate::Deterministic,
-        };
-        let mean = DVector::from_vec(vec![1.0, 0.5, -0.2]);
-        let cov = DMatrix::from_diagonal(&DVector::from_vec(vec![0.4, 0.3, 0.2]));
-        let integ = Integration {
-            max_step: f64::INFINITY,
-            rtol: 1e-6,
-            atol: 1e-9,
-            fixed_step: None,
-        };
+        let model = three_states(two_sensors());
+        let cfg = etkf(9);
+        let ((mean, cov), integ) = (prior(), integration());
         let base = Enkf::new(&model, integ, cfg, &mean, &cov, None, 0).unwrap();
         let reading = Reading {
             t: Instant::seconds(0.0),

@@ -237,7 +237,8 @@ pub fn gemm_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize),
 }
 
 /// [`gemm_nn`] (`T = false`) or [`gemm_nt`] (`T = true`), with the row count fixed at
-/// compile time for up to 6 rows.
+/// compile time for up to 6 rows and in register tiles ([`gemm_blocked`]) from 7 rows and
+/// 4 columns.
 #[inline]
 fn gemm<const T: bool>(
     a: &[f64],

@@ -9,6 +9,8 @@ pub mod observe;
 pub mod predict;
 pub mod run;
 pub mod smoother;
+#[cfg(test)]
+mod test_fixtures;
 pub mod ukf;
 
 use crate::spec::model::Model;
