@@ -116,6 +116,7 @@ impl Ekf {
                 mean: self.mean.as_mut_slice(),
                 h: &self.hrow,
                 c: &mut self.ph,
+                k: &mut self.k,
                 dx: &mut self.dx,
             };
             let (nu, r) = (self.obs.nu_acc[a], self.obs.r_acc[a + a * ma]);
@@ -142,6 +143,8 @@ struct RowBuffers<'a> {
     mean: &'a mut [f64],
     h: &'a [f64],
     c: &'a mut [f64],
+    /// The row's gain c / s.
+    k: &'a mut [f64],
     dx: &'a mut [f64],
 }
 
@@ -151,11 +154,12 @@ struct RowBuffers<'a> {
 #[inline(always)]
 fn row_update<const N: usize>(b: RowBuffers, nu0: f64, r: f64) -> Result<f64, FilterError> {
     let n = if N > 0 { N } else { b.mean.len() };
-    let (p, mean, h, c, dx) = (
+    let (p, mean, h, c, k, dx) = (
         &mut b.p[..n * n],
         &mut b.mean[..n],
         &b.h[..n],
         &mut b.c[..n],
+        &mut b.k[..n],
         &mut b.dx[..n],
     );
     // c = P hᵀ, column by column (P is symmetric, so this is also h P).
@@ -178,12 +182,14 @@ fn row_update<const N: usize>(b: RowBuffers, nu0: f64, r: f64) -> Result<f64, Fi
         mean[i] += step;
         dx[i] += step;
     }
-    // P − k cᵀ − c kᵀ + s k kᵀ with k = c / s.
+    // P − k cᵀ − c kᵀ + s k kᵀ with k = c / s (formed once, not once per entry).
+    for (ki, &ci) in k.iter_mut().zip(c.iter()) {
+        *ki = ci / s;
+    }
     for j in 0..n {
-        let (kj, cj) = (c[j] / s, c[j]);
+        let (kj, cj) = (k[j], c[j]);
         for i in 0..n {
-            let (ki, ci) = (c[i] / s, c[i]);
-            p[i + j * n] += -ki * cj - ci * kj + s * ki * kj;
+            p[i + j * n] += -k[i] * cj - c[i] * kj + s * k[i] * kj;
         }
     }
     Ok(nu * f)

@@ -61,7 +61,7 @@ pub struct Enkf {
     lq: Vec<f64>,
     lr: Vec<f64>,
     /// Whether the accepted readings' noise (and so `lr`) is diagonal: independent
-    /// sensors, the usual case, where whitening is one division per entry.
+    /// sensors, the usual case, where whitening is one multiplication per entry.
     lr_diagonal: bool,
     /// 1/√R_aa of the accepted readings when `lr_diagonal`.
     inv_sd: Vec<f64>,
@@ -671,8 +671,9 @@ impl Estimator for Enkf {
                 if !(d > 0.0) || !d.is_finite() {
                     return Err(FilterError::NotPositive("reading noise"));
                 }
-                lr[a + a * ma] = d.sqrt();
-                self.inv_sd[a] = 1.0 / d.sqrt();
+                let sd = d.sqrt();
+                lr[a + a * ma] = sd;
+                self.inv_sd[a] = 1.0 / sd;
             }
         } else {
             cholesky(r, &mut self.lr[..ma * ma], ma)

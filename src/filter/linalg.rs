@@ -819,7 +819,7 @@ mod tests {
     fn products_equal_the_textbook_triple_loop() {
         // o_ij = Σ_l a_il b_lj (or b_jl) added in l order from 0 (the definition of the
         // product), so every path, tiled or not, must match it bit for bit; sizes cover
-        // whole tiles, ragged edges on both sides and the small fixed-size kernels.
+        // whole tiles, ragged edges on both sides, the fixed-row kernels and the square ones.
         let val = |s: usize| ((s * 37 + 11) % 23) as f64 / 7.0 - 1.5;
         for (r, k, c) in [
             (3, 5, 2),
@@ -861,6 +861,25 @@ mod tests {
                     for i in 0..=j {
                         assert_eq!(o[i + j * r].to_bits(), full[i + j * r].to_bits());
                     }
+                }
+            }
+        }
+        // The square matrix products, whose sizes up to 8 take the fixed-size kernels.
+        for n in 1..=9 {
+            let a = DMatrix::from_fn(n, n, |i, j| val(i + 3 * j));
+            let b = DMatrix::from_fn(n, n, |i, j| val(2 * i + j + 1));
+            let (mut ab, mut abt) = (DMatrix::zeros(n, n), DMatrix::zeros(n, n));
+            mul_ab(&a, &b, &mut ab);
+            mul_abt(&a, &b, &mut abt);
+            for j in 0..n {
+                for i in 0..n {
+                    let (mut x, mut y) = (0.0, 0.0);
+                    for l in 0..n {
+                        x += a[(i, l)] * b[(l, j)];
+                        y += a[(i, l)] * b[(j, l)];
+                    }
+                    assert_eq!(ab[(i, j)].to_bits(), x.to_bits(), "a b, n = {n}");
+                    assert_eq!(abt[(i, j)].to_bits(), y.to_bits(), "a bᵀ, n = {n}");
                 }
             }
         }

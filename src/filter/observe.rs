@@ -309,9 +309,9 @@ impl ObsSpace {
         }
     }
 
-    /// Factor S over the accepted rows (into `l_acc`) and form the joint NIS; enough for
-    /// updates that do not use the gain (the ensemble transform).
-    pub fn factor(&mut self) -> Result<(), FilterError> {
+    /// Factor S over the accepted rows (into `l_acc`) and form the joint NIS, for
+    /// [`ObsSpace::gain`].
+    fn factor(&mut self) -> Result<(), FilterError> {
         let ma = self.ma;
         if ma == 1 {
             // One scalar reading: the same formula as its gate check, ν² / s.

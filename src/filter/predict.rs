@@ -213,7 +213,7 @@ impl Predictor {
             ProcessNoise::PerStep { q, drift } => (DMatrix::zeros(n, n), q.clone(), drift.clone()),
         };
         let drift_zero = drift.iter().all(|d| *d == 0.0);
-        let q_zero = is_zero(&qc) && is_zero(&q_step) && drift.iter().all(|d| *d == 0.0);
+        let q_zero = is_zero(&qc) && is_zero(&q_step) && drift_zero;
         let (disc, dcache, b_lin, has_offset) = match &model.dynamics {
             Dynamics::Linear {
                 time: LinearTime::Continuous,
