@@ -14,7 +14,8 @@
 //! split into requests that carry `members` and `step` continues bit for bit.
 
 use crate::filter::linalg::{
-    cholesky, cholesky_psd, dot4, gemm_nn, gemm_nt_upper, solve_lower, symmetric_eigen, symmetrize,
+    all_finite, cholesky, cholesky_psd, dot4, gemm_nn, gemm_nt_upper, solve_lower, symmetric_eigen,
+    symmetrize,
 };
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
@@ -243,9 +244,10 @@ impl Enkf {
     /// `anom[i + k n] = x_ki − x̄_i` from the current members and mean.
     fn fill_anomalies(&mut self) {
         let (nn, n) = (self.x.nrows(), self.x.ncols());
+        let xs = self.x.as_slice();
         for i in 0..n {
             let m = self.mean[i];
-            for (k, &v) in self.x.column(i).iter().enumerate() {
+            for (k, &v) in xs[i * nn..(i + 1) * nn].iter().enumerate() {
                 self.anom[i + k * n] = v - m;
             }
         }
@@ -329,18 +331,40 @@ impl Enkf {
             return Err(FilterError::NotPositive("ensemble transform matrix"));
         }
         // w̄ = V Λ⁻¹ Vᵀ Ỹᵀ d̃ ; W = √(N−1) V Λ^{-1/2} Vᵀ.
-        let v = &self.big;
+        let v = self.big.as_slice();
+        // Each sum below runs over its index in order from −0.0, with the outputs as
+        // independent running sums (the inner loops are over outputs, so they vectorise).
         // Ỹᵀ d̃ once (it does not depend on k), kept in `sq` until the square roots below.
-        for j in 0..nn {
-            self.sq[j] = (0..ma).map(|a| self.yt[(a, j)] * self.dtil[a]).sum::<f64>();
+        let sq = &mut self.sq[..nn];
+        sq.fill(-0.0);
+        for a in 0..ma {
+            let d = self.dtil[a];
+            for (s, &y) in sq.iter_mut().zip(&self.ytt[a * nn..(a + 1) * nn]) {
+                *s += y * d;
+            }
         }
+        // g = Λ⁻¹ Vᵀ (Ỹᵀ d̃).
+        let g = &mut self.gvec.as_mut_slice()[..nn];
+        g.fill(-0.0);
+        for j in 0..nn {
+            let sj = sq[j];
+            for (gk, vk) in g.iter_mut().zip(v[j..].iter().step_by(nn)) {
+                *gk += vk * sj;
+            }
+        }
+        for (gk, &l) in g.iter_mut().zip(&self.lam[..nn]) {
+            *gk /= l;
+        }
+        // w̄ = V g.
+        let wbar = &mut self.wbar.as_mut_slice()[..nn];
+        wbar.fill(-0.0);
         for k in 0..nn {
-            let ytd: f64 = (0..nn).map(|j| v[(j, k)] * self.sq[j]).sum();
-            self.gvec[k] = ytd / self.lam[k];
+            let gk = g[k];
+            for (w, &vjk) in wbar.iter_mut().zip(&v[k * nn..(k + 1) * nn]) {
+                *w += vjk * gk;
+            }
         }
-        for j in 0..nn {
-            self.wbar[j] = (0..nn).map(|k| v[(j, k)] * self.gvec[k]).sum();
-        }
+        let v = &self.big;
         // T(i, j) = c Σₗ vᵢₗ vⱼₗ / √λₗ + w̄ᵢ, stored transposed (`trans[(j, i)] = T(i, j)`)
         // so that the next product runs down contiguous columns.
         let c = (nf - 1.0).sqrt();
@@ -368,12 +392,11 @@ impl Enkf {
             }
         }
         // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j): with `trans` = Tᵀ, Xₐ − x̄ = Tᵀ X'.
+        let xs = self.x.as_slice();
         for i in 0..n {
             let m = self.mean[i];
-            for (d, &x) in self.xanom[i * nn..(i + 1) * nn]
-                .iter_mut()
-                .zip(self.x.column(i).iter())
-            {
+            let col = &xs[i * nn..(i + 1) * nn];
+            for (d, &x) in self.xanom[i * nn..(i + 1) * nn].iter_mut().zip(col) {
                 *d = x - m;
             }
         }
@@ -384,14 +407,11 @@ impl Enkf {
             (nn, nn, n),
             false,
         );
+        let (xs, xa) = (self.x.as_mut_slice(), self.xa.as_slice());
         for i in 0..n {
             let m = self.mean[i];
-            for (x, &d) in self
-                .x
-                .column_mut(i)
-                .iter_mut()
-                .zip(self.xa.column(i).iter())
-            {
+            let col = &xa[i * nn..(i + 1) * nn];
+            for (x, &d) in xs[i * nn..(i + 1) * nn].iter_mut().zip(col) {
                 *x = m + d;
             }
         }
@@ -550,7 +570,7 @@ impl Estimator for Enkf {
                 }
             }
         }
-        if !self.x.iter().all(|v| v.is_finite()) {
+        if !all_finite(self.x.as_slice()) {
             return Err(FilterError::NonFinite("forecast members"));
         }
         Ok(())
@@ -567,10 +587,11 @@ impl Estimator for Enkf {
         let (nn, n) = (self.x.nrows(), self.x.ncols());
         // Multiplicative inflation of the forecast anomalies.
         if self.cfg.inflation != 1.0 {
+            let (xs, infl) = (self.x.as_mut_slice(), self.cfg.inflation);
             for i in 0..n {
                 let m = self.mean[i];
-                for j in 0..nn {
-                    self.x[(j, i)] = m + self.cfg.inflation * (self.x[(j, i)] - m);
+                for x in &mut xs[i * nn..(i + 1) * nn] {
+                    *x = m + infl * (*x - m);
                 }
             }
             self.refresh_mean();
@@ -580,8 +601,17 @@ impl Estimator for Enkf {
         let m = self.obs.m;
         let zs = &self.pobs.zs;
         let nf = nn as f64;
+        // ȳ_r = Σₖ y_rk / N with the rows as independent running sums (members still
+        // added in order, from −0.0 as `Iterator::sum` starts).
+        let acc = &mut self.acc[..m];
+        acc.fill(-0.0);
+        for k in 0..nn {
+            for (r, s) in acc.iter_mut().enumerate() {
+                *s += zs[r * nn + k];
+            }
+        }
         for r in 0..m {
-            self.ybar[r] = (0..nn).map(|k| zs[r * nn + k]).sum::<f64>() / nf;
+            self.ybar[r] = acc[r] / nf;
             self.obs.zhat[r] = self.ybar[r];
         }
         for r in 0..m {
@@ -599,10 +629,17 @@ impl Estimator for Enkf {
         }
         let za = &self.za[..m * nn];
         if only_check {
-            // Only the predicted variance of each row (the answer reports it).
+            // Only the predicted variance of each row (the answer reports it), all rows'
+            // sums at once over each member's contiguous anomalies.
+            let acc = &mut self.acc[..m];
+            acc.fill(-0.0);
+            for zk in za.chunks_exact(m) {
+                for (s, &z) in acc.iter_mut().zip(zk) {
+                    *s += z * z;
+                }
+            }
             for r in 0..m {
-                let sum: f64 = (0..nn).map(|k| za[r + k * m] * za[r + k * m]).sum();
-                self.obs.s[r + r * m] = sum / (nf - 1.0);
+                self.obs.s[r + r * m] = acc[r] / (nf - 1.0);
             }
         }
         let spans = match (need_c, only_check) {
@@ -688,7 +725,7 @@ impl Estimator for Enkf {
             }
         }
         self.refresh_mean();
-        if !self.x.iter().all(|v| v.is_finite()) {
+        if !all_finite(self.x.as_slice()) {
             return Err(FilterError::NonFinite("analysis members"));
         }
         Ok(true)

@@ -48,7 +48,7 @@ impl std::fmt::Display for FilterError {
 /// `Ok` when every entry of `a` and `b` is finite, else `NonFinite(what)`: the check that
 /// keeps NaN and infinities out of every answer.
 pub fn ensure_finite(a: &[f64], b: &[f64], what: &'static str) -> Result<(), FilterError> {
-    if a.iter().chain(b).all(|x| x.is_finite()) {
+    if linalg::all_finite(a) && linalg::all_finite(b) {
         Ok(())
     } else {
         Err(FilterError::NonFinite(what))

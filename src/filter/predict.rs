@@ -13,7 +13,7 @@
 //! Everything is preallocated at construction; a prediction allocates nothing.
 
 use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
-use crate::filter::linalg::{congruence_plus, symmetrize};
+use crate::filter::linalg::{all_finite, congruence_plus, symmetrize};
 use crate::filter::{ensure_finite, FilterError};
 use crate::formula::{BatchWorkspace, Program, Workspace};
 use crate::spec::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
@@ -75,7 +75,7 @@ impl Rk4 {
             for i in 0..d {
                 y[i] += h / 6.0 * (k1[i] + 2.0 * k2[i] + 2.0 * k3[i] + k4[i]);
             }
-            if !y.iter().all(|x| x.is_finite()) {
+            if !all_finite(y) {
                 return Err(OdeError::NonFinite { t: t + h });
             }
         }
