@@ -19,5 +19,6 @@ pub mod formula;
 pub mod http;
 pub mod job;
 pub mod problem;
+pub mod simd;
 pub mod simulate;
 pub mod spec;

@@ -2,6 +2,7 @@
 //! use on preallocated buffers, and the one home of covariance repair (symmetrising,
 //! semi-definite Cholesky). Nothing here allocates.
 
+use crate::simd::multiversion;
 use nalgebra::DMatrix;
 
 /// Why a factorisation failed.
@@ -265,32 +266,53 @@ fn gemm<const T: bool>(
         4 => gemm_cols::<4, T>(a, b, o, dims, acc),
         5 => gemm_cols::<5, T>(a, b, o, dims, acc),
         6 => gemm_cols::<6, T>(a, b, o, dims, acc),
-        r if r >= BLOCK && dims.2 >= BLOCK => gemm_blocked::<T>(a, b, o, dims, acc, false),
+        r if r >= BLOCK && dims.2 >= BLOCK => {
+            if T {
+                gemm_blocked_nt(a, b, o, dims, acc, false)
+            } else {
+                gemm_blocked_nn(a, b, o, dims, acc, false)
+            }
+        }
         _ => gemm_cols::<0, T>(a, b, o, dims, acc),
     }
 }
 
-/// Rows and columns of `o` that [`gemm_blocked`] keeps in registers at once.
+/// Columns of `o` in one tile of [`gemm_blocked`] (its rows are `RB`), and the least row
+/// and column count that takes the tiled form.
 const BLOCK: usize = 4;
+
+multiversion! {
+    /// [`gemm_blocked`] for `o = a b`.
+    fn gemm_blocked_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool, upper: bool) => gemm_blocked::<false, 8>, gemm_blocked::<false, 4>;
+}
+
+multiversion! {
+    /// [`gemm_blocked`] for `o = a bᵀ`.
+    fn gemm_blocked_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool, upper: bool) => gemm_blocked::<true, 8>, gemm_blocked::<true, 4>;
+}
 
 /// `o = a bᵀ` like [`gemm_nt`], but only the blocks of `o` that reach the upper triangle
 /// (i ≤ j) are computed: for a symmetric result (`a = b`, or a product known to be
 /// symmetric) whose caller reads the upper triangle and mirrors it.
 pub fn gemm_nt_upper(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize)) {
     if dims.0 >= BLOCK && dims.2 >= BLOCK {
-        gemm_blocked::<true>(a, b, o, dims, false, true);
+        gemm_blocked_nt(a, b, o, dims, false, true);
     } else {
         gemm_cols::<0, true>(a, b, o, dims, false);
     }
 }
 
-/// [`gemm_cols`] for larger products, a `BLOCK × BLOCK` tile of `o` at a time with its
+/// [`gemm_cols`] for larger products, an `RB × BLOCK` tile of `o` at a time with its
 /// running sums held in registers across the whole `l` loop (the column form loads and
 /// stores every sum on every `l`). Each entry still starts from 0 (or its old value with
 /// `accumulate`) and adds `a_il b_lj` over `l` in order, so results are bit-identical to
 /// [`gemm_cols`]. Rows and columns beyond the last whole tile take the column form. With
-/// `upper`, tiles wholly below the diagonal are skipped.
-fn gemm_blocked<const T: bool>(
+/// `upper`, tiles wholly below the diagonal are skipped. `RB` rows (four doubles, or
+/// eight) are one or two registers of the baseline copy or of the AVX2 copy, which makes
+/// the tile's sums eight registers, enough independent chains to hide the additions'
+/// latency without running out of registers.
+#[inline(always)]
+fn gemm_blocked<const T: bool, const RB: usize>(
     a: &[f64],
     b: &[f64],
     o: &mut [f64],
@@ -301,37 +323,21 @@ fn gemm_blocked<const T: bool>(
     let (r, k, c) = dims;
     let (a, b, o) = (&a[..r * k], &b[..k * c], &mut o[..r * c]);
     let weight = |l: usize, j: usize| if T { b[j + l * c] } else { b[l + j * k] };
-    let (rb, cb) = (r - r % BLOCK, c - c % BLOCK);
+    let (rb, cb) = (r - r % RB, c - c % BLOCK);
     for j0 in (0..c).step_by(BLOCK) {
         let cols = BLOCK.min(c - j0);
         // Rows this column block needs: all, or those down to its last diagonal entry.
         let rows = if upper { (j0 + cols).min(r) } else { r };
         // Whole tiles first (only in whole column blocks).
-        let tiled = if j0 < cb {
-            rows.min(rb) / BLOCK * BLOCK
-        } else {
-            0
-        };
-        for i0 in (0..tiled).step_by(BLOCK) {
-            let mut acc = [[0.0; BLOCK]; BLOCK];
-            if accumulate {
-                for (q, col) in acc.iter_mut().enumerate() {
-                    col.copy_from_slice(&o[i0 + (j0 + q) * r..i0 + (j0 + q) * r + BLOCK]);
-                }
-            }
-            for l in 0..k {
-                let mut al = [0.0; BLOCK];
-                al.copy_from_slice(&a[i0 + l * r..i0 + l * r + BLOCK]);
-                for (q, col) in acc.iter_mut().enumerate() {
-                    let w = weight(l, j0 + q);
-                    for p in 0..BLOCK {
-                        col[p] += al[p] * w;
-                    }
-                }
-            }
-            for (q, col) in acc.iter().enumerate() {
-                o[i0 + (j0 + q) * r..i0 + (j0 + q) * r + BLOCK].copy_from_slice(col);
-            }
+        let tiled = if j0 < cb { rows.min(rb) / RB * RB } else { 0 };
+        for i0 in (0..tiled).step_by(RB) {
+            tile::<T, RB>(a, b, o, dims, (i0, j0), accumulate);
+        }
+        // One narrower tile where a whole one still fits (the diagonal blocks of `upper`).
+        let mut tiled = tiled;
+        if RB > BLOCK && j0 < cb && tiled + BLOCK <= rows {
+            tile::<T, BLOCK>(a, b, o, dims, (tiled, j0), accumulate);
+            tiled += BLOCK;
         }
         let i0 = tiled;
         // What is left of these columns, one column at a time.
@@ -350,6 +356,39 @@ fn gemm_blocked<const T: bool>(
                 }
             }
         }
+    }
+}
+
+/// One `R × BLOCK` tile of [`gemm_blocked`], rows from `i0`, columns from `j0`: the sums
+/// stay in registers over the whole `l` loop and add in order of `l`.
+#[inline(always)]
+fn tile<const T: bool, const R: usize>(
+    a: &[f64],
+    b: &[f64],
+    o: &mut [f64],
+    (r, k, c): (usize, usize, usize),
+    (i0, j0): (usize, usize),
+    accumulate: bool,
+) {
+    let weight = |l: usize, j: usize| if T { b[j + l * c] } else { b[l + j * k] };
+    let mut acc = [[0.0; R]; BLOCK];
+    if accumulate {
+        for (q, col) in acc.iter_mut().enumerate() {
+            col.copy_from_slice(&o[i0 + (j0 + q) * r..i0 + (j0 + q) * r + R]);
+        }
+    }
+    for l in 0..k {
+        let mut al = [0.0; R];
+        al.copy_from_slice(&a[i0 + l * r..i0 + l * r + R]);
+        for (q, col) in acc.iter_mut().enumerate() {
+            let w = weight(l, j0 + q);
+            for p in 0..R {
+                col[p] += al[p] * w;
+            }
+        }
+    }
+    for (q, col) in acc.iter().enumerate() {
+        o[i0 + (j0 + q) * r..i0 + (j0 + q) * r + R].copy_from_slice(col);
     }
 }
 
@@ -448,6 +487,7 @@ fn pythag(a: f64, b: f64) -> f64 {
     }
 }
 
+multiversion! {
 /// Eigen-decomposition of a symmetric `n × n` matrix held column-major in `v` (only its
 /// values are read; it is overwritten with the orthonormal eigenvectors as columns),
 /// eigenvalues ascending into `d`, `scratch` (length ≥ 3n) as scratch. Householder
@@ -464,7 +504,18 @@ fn pythag(a: f64, b: f64) -> f64 {
 ///
 /// It replaces nalgebra's `symmetric_eigen`, which allocates its factors on every call,
 /// in the ensemble transform that runs once per reading line.
-pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usize) -> bool {
+pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usize) -> bool => symmetric_eigen_body::<16>, symmetric_eigen_body::<8>;
+}
+
+/// The body of [`symmetric_eigen`], inlined into its baseline and its AVX2 copy, with the
+/// rotations applied to `B` rows at a time (see [`rotate_columns`]).
+#[inline(always)]
+fn symmetric_eigen_body<const B: usize>(
+    v: &mut [f64],
+    d: &mut [f64],
+    scratch: &mut [f64],
+    n: usize,
+) -> bool {
     if n == 0 {
         return true;
     }
@@ -648,7 +699,7 @@ pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usi
                     cs[i] = c;
                     ss[i] = s;
                 }
-                rotate_columns(v, n, l, m, cs, ss);
+                rotate_columns::<B>(v, n, l, m, cs, ss);
                 p = -s * s2 * c3 * el1 * e[l] / dl1;
                 e[l] = s * p;
                 d[l] = c * p;
@@ -705,8 +756,22 @@ pub fn dot4(a: &[f64], b: &[f64]) -> f64 {
 /// column-major): (vᵢ, vᵢ₊₁) ← (c vᵢ − s vᵢ₊₁, s vᵢ + c vᵢ₊₁), the update `tql2` makes
 /// inside its loop. Rows are independent, so each block of rows carries its running
 /// column through the whole sweep in registers: one load and one store per rotation.
-fn rotate_columns(v: &mut [f64], n: usize, l: usize, m: usize, cs: &[f64], ss: &[f64]) {
+/// Blocks of `B` rows first (16 fit the AVX2 copy's registers, 8 the baseline's), then
+/// of 8, 2 and 1.
+#[inline(always)]
+fn rotate_columns<const B: usize>(
+    v: &mut [f64],
+    n: usize,
+    l: usize,
+    m: usize,
+    cs: &[f64],
+    ss: &[f64],
+) {
     let mut k0 = 0;
+    while k0 + B <= n {
+        rotate_rows::<B>(v, n, k0, (l, m), cs, ss);
+        k0 += B;
+    }
     while k0 + 8 <= n {
         rotate_rows::<8>(v, n, k0, (l, m), cs, ss);
         k0 += 8;
@@ -757,6 +822,43 @@ mod tests {
             }
         }
         a
+    }
+
+    #[test]
+    fn avx2_copies_compute_the_same_bits_as_the_baseline() {
+        // The kernels compiled for AVX2 (src/simd.rs) must round exactly as the baseline
+        // body: IEEE 754 operations in the same order give the same result whatever the
+        // register width. On a CPU without AVX2 both calls run the baseline copy.
+        let n = 40;
+        let y: Vec<f64> = (0..n * n)
+            .map(|k| ((k * 7 + 3) % 11) as f64 / 5.0 - 1.0 + (k as f64 * 0.37).sin())
+            .collect();
+        let mut a = vec![0.0; n * n];
+        for j in 0..n {
+            for i in 0..n {
+                a[i + j * n] = (0..n).map(|k| y[k + i * n] * y[k + j * n]).sum::<f64>();
+            }
+        }
+        let (mut v1, mut d1, mut e1) = (a.clone(), vec![0.0; n], vec![0.0; 3 * n]);
+        let (mut v2, mut d2, mut e2) = (a.clone(), vec![0.0; n], vec![0.0; 3 * n]);
+        assert!(symmetric_eigen_body::<8>(&mut v1, &mut d1, &mut e1, n));
+        assert!(symmetric_eigen(&mut v2, &mut d2, &mut e2, n));
+        let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&v1), bits(&v2), "eigenvectors");
+        assert_eq!(bits(&d1), bits(&d2), "eigenvalues");
+        for (r, k, c) in [(13, 11, 9), (40, 40, 40), (8, 3, 17)] {
+            for (acc, upper) in [(false, false), (true, false), (false, true)] {
+                let o0: Vec<f64> = (0..r * c).map(|q| (q as f64 * 0.91).cos()).collect();
+                let (mut o1, mut o2) = (o0.clone(), o0.clone());
+                gemm_blocked::<false, 4>(&y, &y, &mut o1, (r, k, c), acc, upper);
+                gemm_blocked_nn(&y, &y, &mut o2, (r, k, c), acc, upper);
+                assert_eq!(bits(&o1), bits(&o2), "a b, {r}×{k}×{c}");
+                let (mut o1, mut o2) = (o0.clone(), o0);
+                gemm_blocked::<true, 4>(&y, &y, &mut o1, (r, k, c), acc, upper);
+                gemm_blocked_nt(&y, &y, &mut o2, (r, k, c), acc, upper);
+                assert_eq!(bits(&o1), bits(&o2), "a bᵀ, {r}×{k}×{c}");
+            }
+        }
     }
 
     #[test]
