@@ -487,6 +487,25 @@ fn pythag(a: f64, b: f64) -> f64 {
     }
 }
 
+/// `(r, 1/r)` with r = √(a² + b²) as [`pythag`]. On the QL sweep's critical path: where
+/// the plain formula is safe, 1/r = r · (1/(a² + b²)), so the square root and the
+/// division run side by side instead of one after the other (within two ulps of 1/r, which
+/// the rotations' c² + s² = 1 does not notice at the iteration's tolerance).
+#[inline(always)]
+fn pythag_and_reciprocal(a: f64, b: f64) -> (f64, f64) {
+    const LO: f64 = 1e-150;
+    const HI: f64 = 1e150;
+    let (x, y) = (a.abs(), b.abs());
+    if x.max(y) < HI && (x == 0.0 || x > LO) && (y == 0.0 || y > LO) && x.max(y) > 0.0 {
+        let q = a * a + b * b;
+        let r = q.sqrt();
+        (r, r * (1.0 / q))
+    } else {
+        let r = a.hypot(b);
+        (r, 1.0 / r)
+    }
+}
+
 multiversion! {
 /// Eigen-decomposition of a symmetric `n × n` matrix held column-major in `v` (only its
 /// values are read; it is overwritten with the orthonormal eigenvectors as columns),
@@ -686,12 +705,11 @@ fn symmetric_eigen_body<const B: usize>(
                     let (ei, di) = (e[i], d[i]);
                     g = c * ei;
                     h = c * p;
-                    r = pythag(p, ei);
+                    let ri;
+                    (r, ri) = pythag_and_reciprocal(p, ei);
                     // c dᵢ − s g with c = p/r, s = eᵢ/r: the numerator does not wait for r.
                     let num = p * di - ei * g;
                     e[i + 1] = s * r;
-                    // One division on the iteration's critical path instead of two.
-                    let ri = 1.0 / r;
                     s = ei * ri;
                     c = p * ri;
                     d[i + 1] = h + s * (c * g + s * di);
