@@ -190,44 +190,89 @@ impl Program {
             "formula: batch workspace made for another program"
         );
         let regs = &mut ws.regs[..];
-        let first = head.len() / m.max(1);
-        for s in 0..self.n_slots {
-            let src = if s < first {
-                &head[s * m..(s + 1) * m]
-            } else {
-                &tail[(s - first) * m..(s - first + 1) * m]
-            };
-            regs[s * cap..s * cap + m].copy_from_slice(src);
-        }
+        // Slots are read where they are (no copy into the register file).
+        let inputs = Inputs {
+            head,
+            tail,
+            first: head.len() / m.max(1),
+            slots: self.n_slots,
+        };
         let base = self.n_slots + self.consts.len();
         for (i, &ins) in self.tape.iter().enumerate() {
-            batch_step(ins, regs, cap, m, base + i);
+            batch_step(ins, regs, inputs, (cap, m, base + i));
         }
+        // An output may be a slot itself (a formula that is just a name).
+        let all = Args {
+            regs,
+            inputs,
+            cap,
+            m,
+        };
         for (k, &r) in self.out_regs.iter().enumerate() {
-            let r = r as usize;
-            out[k * m..(k + 1) * m].copy_from_slice(&regs[r * cap..r * cap + m]);
+            out[k * m..(k + 1) * m].copy_from_slice(row(&all, r));
         }
     }
 }
 
-/// Split the register file at `dst` (arguments always precede it in SSA order) into the
-/// destination row and the rows before it.
+/// Where a batch's slot values are: the first `first` slots in `head`, the others up
+/// to `slots` in `tail`, each slot `m` points long.
+#[derive(Clone, Copy)]
+struct Inputs<'a> {
+    head: &'a [f64],
+    tail: &'a [f64],
+    first: usize,
+    slots: usize,
+}
+
+/// The arguments an instruction may read: the slots, and the register rows before its
+/// destination (arguments always precede it in SSA order).
+struct Args<'a> {
+    regs: &'a [f64],
+    inputs: Inputs<'a>,
+    cap: usize,
+    m: usize,
+}
+
+/// Split the register file at `dst` into the rows before it (with the slots, as
+/// [`Args`]) and the destination row.
 #[inline(always)]
-fn rows(regs: &mut [f64], cap: usize, m: usize, dst: usize) -> (&[f64], &mut [f64]) {
+fn rows<'a>(
+    regs: &'a mut [f64],
+    inputs: Inputs<'a>,
+    (cap, m, dst): (usize, usize, usize),
+) -> (Args<'a>, &'a mut [f64]) {
     let (src, rest) = regs.split_at_mut(dst * cap);
-    (src, &mut rest[..m])
+    let args = Args {
+        regs: src,
+        inputs,
+        cap,
+        m,
+    };
+    (args, &mut rest[..m])
 }
 
 #[inline(always)]
-fn row(src: &[f64], cap: usize, m: usize, r: u32) -> &[f64] {
-    let r = r as usize * cap;
-    &src[r..r + m]
+fn row<'a>(src: &Args<'a>, r: u32) -> &'a [f64] {
+    let (r, m, ins) = (r as usize, src.m, &src.inputs);
+    if r >= ins.slots {
+        &src.regs[r * src.cap..r * src.cap + m]
+    } else if r < ins.first {
+        &ins.head[r * m..(r + 1) * m]
+    } else {
+        &ins.tail[(r - ins.first) * m..(r - ins.first + 1) * m]
+    }
 }
 
 #[inline(always)]
-fn un(regs: &mut [f64], cap: usize, m: usize, dst: usize, a: u32, f: impl Fn(f64) -> f64) {
-    let (src, d) = rows(regs, cap, m, dst);
-    for (d, &x) in d.iter_mut().zip(row(src, cap, m, a)) {
+fn un(
+    regs: &mut [f64],
+    inputs: Inputs<'_>,
+    at: (usize, usize, usize),
+    a: u32,
+    f: impl Fn(f64) -> f64,
+) {
+    let (src, d) = rows(regs, inputs, at);
+    for (d, &x) in d.iter_mut().zip(row(&src, a)) {
         *d = f(x);
     }
 }
@@ -235,16 +280,13 @@ fn un(regs: &mut [f64], cap: usize, m: usize, dst: usize, a: u32, f: impl Fn(f64
 #[inline(always)]
 fn bin(
     regs: &mut [f64],
-    (cap, m, dst): (usize, usize, usize),
-    a: u32,
-    b: u32,
+    inputs: Inputs<'_>,
+    at: (usize, usize, usize),
+    (a, b): (u32, u32),
     f: impl Fn(f64, f64) -> f64,
 ) {
-    let (src, d) = rows(regs, cap, m, dst);
-    let it = d
-        .iter_mut()
-        .zip(row(src, cap, m, a))
-        .zip(row(src, cap, m, b));
+    let (src, d) = rows(regs, inputs, at);
+    let it = d.iter_mut().zip(row(&src, a)).zip(row(&src, b));
     for ((d, &x), &y) in it {
         *d = f(x, y);
     }
@@ -252,43 +294,38 @@ fn bin(
 
 /// One instruction over the first `m` points. Each arm applies the same scalar code as
 /// [`instr::value`], so batch and point evaluation agree bit for bit.
-fn batch_step(ins: Instr, regs: &mut [f64], cap: usize, m: usize, dst: usize) {
+fn batch_step(ins: Instr, regs: &mut [f64], inputs: Inputs<'_>, at: (usize, usize, usize)) {
     use Instr::*;
-    let at = (cap, m, dst);
     match ins {
-        Neg(a) => un(regs, cap, m, dst, a, |x| -x),
-        Sin(a) => un(regs, cap, m, dst, a, f64::sin),
-        Cos(a) => un(regs, cap, m, dst, a, f64::cos),
-        Tan(a) => un(regs, cap, m, dst, a, f64::tan),
-        Asin(a) => un(regs, cap, m, dst, a, f64::asin),
-        Acos(a) => un(regs, cap, m, dst, a, f64::acos),
-        Atan(a) => un(regs, cap, m, dst, a, f64::atan),
-        Sinh(a) => un(regs, cap, m, dst, a, f64::sinh),
-        Cosh(a) => un(regs, cap, m, dst, a, f64::cosh),
-        Tanh(a) => un(regs, cap, m, dst, a, f64::tanh),
-        Exp(a) => un(regs, cap, m, dst, a, f64::exp),
-        Ln(a) => un(regs, cap, m, dst, a, f64::ln),
-        Log10(a) => un(regs, cap, m, dst, a, f64::log10),
-        Sqrt(a) => un(regs, cap, m, dst, a, f64::sqrt),
-        Abs(a) => un(regs, cap, m, dst, a, f64::abs),
-        Sign(a) => un(regs, cap, m, dst, a, instr::sign),
-        Powi(a, k) => un(regs, cap, m, dst, a, |x| x.powi(k)),
-        Add(a, b) => bin(regs, at, a, b, |x, y| x + y),
-        Sub(a, b) => bin(regs, at, a, b, |x, y| x - y),
-        Mul(a, b) => bin(regs, at, a, b, |x, y| x * y),
-        Div(a, b) => bin(regs, at, a, b, |x, y| x / y),
-        Pow(a, b) => bin(regs, at, a, b, f64::powf),
-        Atan2(a, b) => bin(regs, at, a, b, f64::atan2),
-        Min(a, b) => bin(regs, at, a, b, instr::min2),
-        Max(a, b) => bin(regs, at, a, b, instr::max2),
-        Hypot(a, b) => bin(regs, at, a, b, f64::hypot),
+        Neg(a) => un(regs, inputs, at, a, |x| -x),
+        Sin(a) => un(regs, inputs, at, a, f64::sin),
+        Cos(a) => un(regs, inputs, at, a, f64::cos),
+        Tan(a) => un(regs, inputs, at, a, f64::tan),
+        Asin(a) => un(regs, inputs, at, a, f64::asin),
+        Acos(a) => un(regs, inputs, at, a, f64::acos),
+        Atan(a) => un(regs, inputs, at, a, f64::atan),
+        Sinh(a) => un(regs, inputs, at, a, f64::sinh),
+        Cosh(a) => un(regs, inputs, at, a, f64::cosh),
+        Tanh(a) => un(regs, inputs, at, a, f64::tanh),
+        Exp(a) => un(regs, inputs, at, a, f64::exp),
+        Ln(a) => un(regs, inputs, at, a, f64::ln),
+        Log10(a) => un(regs, inputs, at, a, f64::log10),
+        Sqrt(a) => un(regs, inputs, at, a, f64::sqrt),
+        Abs(a) => un(regs, inputs, at, a, f64::abs),
+        Sign(a) => un(regs, inputs, at, a, instr::sign),
+        Powi(a, k) => un(regs, inputs, at, a, |x| x.powi(k)),
+        Add(a, b) => bin(regs, inputs, at, (a, b), |x, y| x + y),
+        Sub(a, b) => bin(regs, inputs, at, (a, b), |x, y| x - y),
+        Mul(a, b) => bin(regs, inputs, at, (a, b), |x, y| x * y),
+        Div(a, b) => bin(regs, inputs, at, (a, b), |x, y| x / y),
+        Pow(a, b) => bin(regs, inputs, at, (a, b), f64::powf),
+        Atan2(a, b) => bin(regs, inputs, at, (a, b), f64::atan2),
+        Min(a, b) => bin(regs, inputs, at, (a, b), instr::min2),
+        Max(a, b) => bin(regs, inputs, at, (a, b), instr::max2),
+        Hypot(a, b) => bin(regs, inputs, at, (a, b), f64::hypot),
         Clamp(a, b, c) => {
-            let (src, d) = rows(regs, cap, m, dst);
-            let (x, lo, hi) = (
-                row(src, cap, m, a),
-                row(src, cap, m, b),
-                row(src, cap, m, c),
-            );
+            let (src, d) = rows(regs, inputs, at);
+            let (x, lo, hi) = (row(&src, a), row(&src, b), row(&src, c));
             for (((d, &x), &lo), &hi) in d.iter_mut().zip(x).zip(lo).zip(hi) {
                 *d = instr::clamp3(x, lo, hi);
             }

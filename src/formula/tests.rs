@@ -577,6 +577,12 @@ fn batch_equals_point_evaluation_bit_for_bit() {
                 );
             }
         }
+        // The same slots given in two pieces (the first slot in `head`, the second in
+        // `tail`), as the integrators pass them.
+        let mut split = vec![0.0; p.outputs() * m];
+        p.eval_batch_split(&vars[..m], &vars[m..], m, &mut bws, &mut split);
+        let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&split), bits(&out), "{formulas:?} split");
         // A smaller batch in the same workspace.
         p.eval_batch(
             &[points[3][0], points[3][1]],
