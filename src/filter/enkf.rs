@@ -279,23 +279,42 @@ impl Enkf {
 
     fn transform(&mut self) -> Result<(), FilterError> {
         let (nn, n, ma) = (self.x.nrows(), self.x.ncols(), self.obs.ma);
+        let mm = self.yt.nrows();
         let zs = &self.pobs.zs;
         let nf = nn as f64;
         // Ỹ = L_R⁻¹ Y' (ma × N) and d̃ = L_R⁻¹ (z − ȳ).
-        for j in 0..nn {
+        if self.lr_diagonal {
+            // Row a of Ỹ is the contiguous row of predicted readings over the members,
+            // scaled: build Ỹᵀ (`ytt`) in that order, then Ỹ from it.
             for a in 0..ma {
                 let row = self.obs.keep[a];
-                self.eps[a] = zs[row * nn + j] - self.ybar[row];
+                let (yb, w) = (self.ybar[row], self.inv_sd[a]);
+                let src = &zs[row * nn..(row + 1) * nn];
+                for (t, &z) in self.ytt[a * nn..(a + 1) * nn].iter_mut().zip(src) {
+                    *t = (z - yb) * w;
+                }
             }
-            whiten(
-                &self.lr,
-                &self.inv_sd,
-                self.lr_diagonal,
-                ma,
-                &mut self.eps[..ma],
-            );
+            let (ytt, yt) = (&self.ytt, self.yt.as_mut_slice());
+            for j in 0..nn {
+                for a in 0..ma {
+                    yt[a + j * mm] = ytt[j + a * nn];
+                }
+            }
+        } else {
+            for j in 0..nn {
+                for a in 0..ma {
+                    let row = self.obs.keep[a];
+                    self.eps[a] = zs[row * nn + j] - self.ybar[row];
+                }
+                solve_lower(&self.lr[..ma * ma], ma, &mut self.eps[..ma]);
+                for a in 0..ma {
+                    self.yt[(a, j)] = self.eps[a];
+                }
+            }
             for a in 0..ma {
-                self.yt[(a, j)] = self.eps[a];
+                for j in 0..nn {
+                    self.ytt[j + a * nn] = self.yt[(a, j)];
+                }
             }
         }
         for a in 0..ma {
@@ -312,11 +331,6 @@ impl Enkf {
             return self.transform_low_rank();
         }
         // A = (N−1) I + ỸᵀỸ, column j for all i ≤ j at once from Ỹ transposed.
-        for a in 0..ma {
-            for j in 0..nn {
-                self.ytt[j + a * nn] = self.yt[(a, j)];
-            }
-        }
         gemm_nt_upper(&self.ytt, &self.ytt, self.big.as_mut_slice(), (nn, ma, nn));
         for j in 0..nn {
             self.big[(j, j)] += nf - 1.0;
