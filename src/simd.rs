@@ -2,7 +2,7 @@
 //!
 //! The release build targets baseline x86-64 (SSE2, two doubles per instruction) so that
 //! it runs on any x86-64 server. Most servers also have AVX2 (four doubles per
-//! instruction); [`multiversion!`] compiles a kernel twice, once for each, and calls the
+//! instruction); `with_avx2_copy!` compiles a kernel twice, once for each, and calls the
 //! AVX2 copy when the CPU reports AVX2.
 //!
 //! Both copies compute the same bits. Rust never fuses a multiplication and an addition
@@ -30,16 +30,16 @@ pub fn has_avx2() -> bool {
     }
 }
 
-/// `multiversion!(vis fn name(args) -> R => body_fn);` defines `name`, which calls
+/// `with_avx2_copy!(vis fn name(args) -> R => body_fn);` defines `name`, which calls
 /// `body_fn(args)` compiled for AVX2 when the CPU has it and as compiled for the baseline
 /// otherwise. `body_fn` must be `#[inline(always)]` (and so must everything hot it
 /// calls), or it would be compiled once, for the baseline only.
 ///
 /// `=> wide_fn, base_fn;` names a different body for each copy (the same computation
 /// blocked for the register count of each: sixteen of two doubles, or of four).
-macro_rules! multiversion {
+macro_rules! with_avx2_copy {
     ($(#[$meta:meta])* $vis:vis fn $name:ident($($arg:ident: $ty:ty),* $(,)?) $(-> $ret:ty)? => $body:path;) => {
-        $crate::simd::multiversion! {
+        $crate::simd::with_avx2_copy! {
             $(#[$meta])* $vis fn $name($($arg: $ty),*) $(-> $ret)? => $body, $body;
         }
     };
@@ -65,4 +65,4 @@ macro_rules! multiversion {
     };
 }
 
-pub(crate) use multiversion;
+pub(crate) use with_avx2_copy;

@@ -9,7 +9,7 @@
 //! When the accepted readings' noise is uncorrelated (R diagonal, the usual case of
 //! independent gauges) the same update is made one row at a time (sequential processing,
 //! e.g. Simon 2006, *Optimal State Estimation*, §6.1, from memory), which needs no
-//! factorisation and only rank-one corrections; see [`Ekf::sequential_update`].
+//! factorisation and only rank-one corrections; see `Ekf::sequential_update`.
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
 use crate::filter::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt, symmetrize};

@@ -2,7 +2,7 @@
 //! use on preallocated buffers, and the one home of covariance repair (symmetrising,
 //! semi-definite Cholesky). Nothing here allocates.
 
-use crate::simd::multiversion;
+use crate::simd::with_avx2_copy;
 use nalgebra::DMatrix;
 
 /// Why a factorisation failed.
@@ -281,12 +281,12 @@ fn gemm<const T: bool>(
 /// and column count that takes the tiled form.
 const BLOCK: usize = 4;
 
-multiversion! {
+with_avx2_copy! {
     /// [`gemm_blocked`] for `o = a b`.
     fn gemm_blocked_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool, upper: bool) => gemm_blocked::<false, 8>, gemm_blocked::<false, 4>;
 }
 
-multiversion! {
+with_avx2_copy! {
     /// [`gemm_blocked`] for `o = a bᵀ`.
     fn gemm_blocked_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool, upper: bool) => gemm_blocked::<true, 8>, gemm_blocked::<true, 4>;
 }
@@ -506,7 +506,7 @@ fn pythag_and_reciprocal(a: f64, b: f64) -> (f64, f64) {
     }
 }
 
-multiversion! {
+with_avx2_copy! {
 /// Eigen-decomposition of a symmetric `n × n` matrix held column-major in `v` (only its
 /// values are read; it is overwritten with the orthonormal eigenvectors as columns),
 /// eigenvalues ascending into `d`, `scratch` (length ≥ 3n) as scratch. Householder
@@ -518,7 +518,7 @@ multiversion! {
 /// Two changes of order from the published routines, neither changing what is computed:
 /// the dot products add in four interleaved partial sums ([`dot4`]), and each QL sweep
 /// first computes its plane rotations (a chain of dependent square roots and divisions)
-/// and then applies them all to the eigenvector columns ([`rotate_columns`]), so that the
+/// and then applies them all to the eigenvector columns (`rotate_columns`), so that the
 /// chain is not held up by the column updates.
 ///
 /// It replaces nalgebra's `symmetric_eigen`, which allocates its factors on every call,

@@ -340,7 +340,7 @@ impl ObsSpace {
         Ok(())
     }
 
-    /// [`ObsSpace::factor`], then the gain transposed Kᵀ = S⁻¹ Cᵀ.
+    /// `ObsSpace::factor`, then the gain transposed Kᵀ = S⁻¹ Cᵀ.
     pub fn gain(&mut self) -> Result<(), FilterError> {
         let (ma, n) = (self.ma, self.n);
         self.factor()?;
