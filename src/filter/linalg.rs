@@ -487,22 +487,26 @@ fn pythag(a: f64, b: f64) -> f64 {
     }
 }
 
-/// `(r, 1/r)` with r = √(a² + b²) as [`pythag`]. On the QL sweep's critical path: where
-/// the plain formula is safe, 1/r = r · (1/(a² + b²)), so the square root and the
-/// division run side by side instead of one after the other (within two ulps of 1/r, which
-/// the rotations' c² + s² = 1 does not notice at the iteration's tolerance).
+/// One plane rotation of the QL sweep: with r = √(a² + b²) (as [`pythag`]), returns
+/// `(r, 1/r, num/r)`. On the sweep's critical path: where the plain formula is safe,
+/// 1/r = r · (1/q) and num/r = (num · (1/q)) · r with q = a² + b², so the square root and
+/// the division run side by side instead of one after the other, and the next p waits for
+/// one multiplication after the root (each within two ulps of the quotient, which the
+/// rotations' c² + s² = 1 does not notice at the iteration's tolerance).
 #[inline(always)]
-fn pythag_and_reciprocal(a: f64, b: f64) -> (f64, f64) {
+fn rotation(a: f64, b: f64, num: f64) -> (f64, f64, f64) {
     const LO: f64 = 1e-150;
     const HI: f64 = 1e150;
     let (x, y) = (a.abs(), b.abs());
     if x.max(y) < HI && (x == 0.0 || x > LO) && (y == 0.0 || y > LO) && x.max(y) > 0.0 {
         let q = a * a + b * b;
         let r = q.sqrt();
-        (r, r * (1.0 / q))
+        let iq = 1.0 / q;
+        (r, r * iq, (num * iq) * r)
     } else {
         let r = a.hypot(b);
-        (r, 1.0 / r)
+        let ri = 1.0 / r;
+        (r, ri, num * ri)
     }
 }
 
@@ -554,11 +558,20 @@ fn symmetric_eigen_body<const B: usize>(
         d[j] = at!(n - 1, j);
     }
     for i in (1..n).rev() {
-        let mut scale = 0.0;
-        let mut h = 0.0;
-        for k in 0..i {
-            scale += d[k].abs();
+        // Σ |d_k| in four partial sums (the scale only guards against overflow, so its
+        // order of additions does not matter).
+        let mut part = [0.0; 4];
+        let mut chunks = d[..i].chunks_exact(4);
+        for c4 in &mut chunks {
+            for q in 0..4 {
+                part[q] += c4[q].abs();
+            }
         }
+        let mut scale = (part[0] + part[2]) + (part[1] + part[3]);
+        for x in chunks.remainder() {
+            scale += x.abs();
+        }
+        let mut h = 0.0;
         if scale == 0.0 {
             e[i] = d[i - 1];
             for j in 0..i {
@@ -567,10 +580,12 @@ fn symmetric_eigen_body<const B: usize>(
                 at!(j, i) = 0.0;
             }
         } else {
-            for k in 0..i {
-                d[k] /= scale;
-                h += d[k] * d[k];
+            // Scaled by one reciprocal (the reflector does not depend on the scale).
+            let inv = 1.0 / scale;
+            for x in &mut d[..i] {
+                *x *= inv;
             }
+            h = dot4(&d[..i], &d[..i]);
             let mut f = d[i - 1];
             let mut g = h.sqrt();
             if f > 0.0 {
@@ -705,15 +720,15 @@ fn symmetric_eigen_body<const B: usize>(
                     let (ei, di) = (e[i], d[i]);
                     g = c * ei;
                     h = c * p;
-                    let ri;
-                    (r, ri) = pythag_and_reciprocal(p, ei);
                     // c dᵢ − s g with c = p/r, s = eᵢ/r: the numerator does not wait for r.
                     let num = p * di - ei * g;
+                    let (ri, next);
+                    (r, ri, next) = rotation(p, ei, num);
                     e[i + 1] = s * r;
                     s = ei * ri;
                     c = p * ri;
                     d[i + 1] = h + s * (c * g + s * di);
-                    p = num * ri;
+                    p = next;
                     cs[i] = c;
                     ss[i] = s;
                 }
