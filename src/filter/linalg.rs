@@ -597,38 +597,60 @@ fn symmetric_eigen_body<const B: usize>(
             for j in 0..i {
                 e[j] = 0.0;
             }
-            // e = A d over the lower triangle (column j below the diagonal is contiguous).
-            for j in 0..i {
-                f = d[j];
-                at!(j, i) = f;
-                let col = &v[j * n + j + 1..j * n + i];
-                // One pass over the column: its dot product with d (four partial sums,
-                // as `dot4`) and e += column · f.
-                let (dd, ee) = (&d[j + 1..i], &mut e[j + 1..i]);
-                let mut part = [0.0; 4];
-                let mut cc = col.chunks_exact(4);
-                let mut cd = dd.chunks_exact(4);
-                let mut ce = ee.chunks_exact_mut(4);
-                for ((c4, d4), e4) in (&mut cc).zip(&mut cd).zip(&mut ce) {
+            // e = A d over the lower triangle (column j below the diagonal is contiguous),
+            // two columns per pass: their dot products with d (four partial sums each, as
+            // `dot4`) and e += column · d_j, each e_k still adding column j before j + 1.
+            let mut j = 0;
+            while j + 1 < i {
+                let (f0, f1) = (d[j], d[j + 1]);
+                at!(j, i) = f0;
+                at!(j + 1, i) = f1;
+                let c01 = at!(j + 1, j);
+                e[j + 1] += c01 * f0;
+                let lo = j + 2;
+                let col0 = &v[j * n + lo..j * n + i];
+                let col1 = &v[(j + 1) * n + lo..(j + 1) * n + i];
+                let (dd, ee) = (&d[lo..i], &mut e[lo..i]);
+                let (mut p0, mut p1) = ([0.0; 4], [0.0; 4]);
+                let (mut c0, mut c1) = (col0.chunks_exact(4), col1.chunks_exact(4));
+                let (mut cd, mut ce) = (dd.chunks_exact(4), ee.chunks_exact_mut(4));
+                for (((a4, b4), d4), e4) in (&mut c0).zip(&mut c1).zip(&mut cd).zip(&mut ce) {
                     for q in 0..4 {
-                        part[q] += c4[q] * d4[q];
-                        e4[q] += c4[q] * f;
+                        p0[q] += a4[q] * d4[q];
+                        p1[q] += b4[q] * d4[q];
+                        e4[q] += a4[q] * f0;
+                        e4[q] += b4[q] * f1;
                     }
                 }
-                let mut dot = (part[0] + part[2]) + (part[1] + part[3]);
-                let tail = cc.remainder().iter().zip(cd.remainder());
-                for ((&ck, &dk), ek) in tail.zip(ce.into_remainder()) {
-                    dot += ck * dk;
-                    *ek += ck * f;
+                let mut dot0 = (p0[0] + p0[2]) + (p0[1] + p0[3]);
+                let mut dot1 = (p1[0] + p1[2]) + (p1[1] + p1[3]);
+                let tail = c0
+                    .remainder()
+                    .iter()
+                    .zip(c1.remainder())
+                    .zip(cd.remainder());
+                for (((&a, &b), &dk), ek) in tail.zip(ce.into_remainder()) {
+                    dot0 += a * dk;
+                    dot1 += b * dk;
+                    *ek += a * f0;
+                    *ek += b * f1;
                 }
-                g = e[j] + v[j + j * n] * f + dot;
-                e[j] = g;
+                e[j] += at!(j, j) * f0 + (c01 * d[j + 1] + dot0);
+                e[j + 1] += at!(j + 1, j + 1) * f1 + dot1;
+                j += 2;
             }
-            f = 0.0;
-            for j in 0..i {
-                e[j] /= h;
-                f += e[j] * d[j];
+            if j < i {
+                // The last column alone: only its diagonal entry is inside the block.
+                f = d[j];
+                at!(j, i) = f;
+                e[j] += at!(j, j) * f;
             }
+            // e ← e / h (one reciprocal), f = eᵀd.
+            let inv_h = 1.0 / h;
+            for x in &mut e[..i] {
+                *x *= inv_h;
+            }
+            f = dot4(&e[..i], &d[..i]);
             let hh = f / (h + h);
             for j in 0..i {
                 e[j] -= hh * d[j];
