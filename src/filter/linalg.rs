@@ -329,17 +329,15 @@ fn gemm_blocked<const T: bool, const RB: usize>(
         // Rows this column block needs: all, or those down to its last diagonal entry.
         let rows = if upper { (j0 + cols).min(r) } else { r };
         // Whole tiles first (only in whole column blocks).
-        let tiled = if j0 < cb { rows.min(rb) / RB * RB } else { 0 };
-        for i0 in (0..tiled).step_by(RB) {
-            tile::<T, RB>(a, b, o, dims, (i0, j0), accumulate);
+        let mut i0 = if j0 < cb { rows.min(rb) / RB * RB } else { 0 };
+        for t0 in (0..i0).step_by(RB) {
+            tile::<T, RB>(a, b, o, dims, (t0, j0), accumulate);
         }
         // One narrower tile where a whole one still fits (the diagonal blocks of `upper`).
-        let mut tiled = tiled;
-        if RB > BLOCK && j0 < cb && tiled + BLOCK <= rows {
-            tile::<T, BLOCK>(a, b, o, dims, (tiled, j0), accumulate);
-            tiled += BLOCK;
+        if RB > BLOCK && j0 < cb && i0 + BLOCK <= rows {
+            tile::<T, BLOCK>(a, b, o, dims, (i0, j0), accumulate);
+            i0 += BLOCK;
         }
-        let i0 = tiled;
         // What is left of these columns, one column at a time.
         if i0 >= rows {
             continue;
@@ -471,16 +469,22 @@ pub fn congruence_plus(
     symmetrize(p);
 }
 
-/// `√(a² + b²)`: the plain formula where squaring can neither overflow nor lose
-/// precision to underflow (much cheaper than libm's `hypot`, and as accurate to within an
-/// ulp, which the QL iteration does not notice), `hypot` outside that range.
+/// Whether `a² + b²` can be formed plainly: squaring can neither overflow nor lose
+/// precision to underflow.
 #[inline(always)]
-fn pythag(a: f64, b: f64) -> f64 {
+fn squares_are_safe(a: f64, b: f64) -> bool {
     const LO: f64 = 1e-150;
     const HI: f64 = 1e150;
     let (x, y) = (a.abs(), b.abs());
-    let big = x.max(y);
-    if big < HI && (x == 0.0 || x > LO) && (y == 0.0 || y > LO) {
+    x.max(y) < HI && (x == 0.0 || x > LO) && (y == 0.0 || y > LO)
+}
+
+/// `√(a² + b²)`: the plain formula where [`squares_are_safe`] (much cheaper than libm's
+/// `hypot`, and as accurate to within an ulp, which the QL iteration does not notice),
+/// `hypot` outside that range.
+#[inline(always)]
+fn pythag(a: f64, b: f64) -> f64 {
+    if squares_are_safe(a, b) {
         (a * a + b * b).sqrt()
     } else {
         a.hypot(b)
@@ -488,17 +492,14 @@ fn pythag(a: f64, b: f64) -> f64 {
 }
 
 /// One plane rotation of the QL sweep: with r = √(a² + b²) (as [`pythag`]), returns
-/// `(r, 1/r, num/r)`. On the sweep's critical path: where the plain formula is safe,
-/// 1/r = r · (1/q) and num/r = (num · (1/q)) · r with q = a² + b², so the square root and
-/// the division run side by side instead of one after the other, and the next p waits for
-/// one multiplication after the root (each within two ulps of the quotient, which the
-/// rotations' c² + s² = 1 does not notice at the iteration's tolerance).
+/// `(r, 1/r, num/r)`. On the sweep's critical path: where the plain formula is safe (and
+/// r ≠ 0), 1/r = r · (1/q) and num/r = (num · (1/q)) · r with q = a² + b², so the square
+/// root and the division run side by side instead of one after the other, and the next p
+/// waits for one multiplication after the root (each within two ulps of the quotient,
+/// which the rotations' c² + s² = 1 does not notice at the iteration's tolerance).
 #[inline(always)]
 fn rotation(a: f64, b: f64, num: f64) -> (f64, f64, f64) {
-    const LO: f64 = 1e-150;
-    const HI: f64 = 1e150;
-    let (x, y) = (a.abs(), b.abs());
-    if x.max(y) < HI && (x == 0.0 || x > LO) && (y == 0.0 || y > LO) && x.max(y) > 0.0 {
+    if squares_are_safe(a, b) && (a != 0.0 || b != 0.0) {
         let q = a * a + b * b;
         let r = q.sqrt();
         let iq = 1.0 / q;
@@ -519,11 +520,14 @@ with_avx2_copy! {
 /// `tred2`, `tql2`). Returns false when the QL iteration fails to converge or a value is
 /// not finite.
 ///
-/// Two changes of order from the published routines, neither changing what is computed:
-/// the dot products add in four interleaved partial sums ([`dot4`]), and each QL sweep
-/// first computes its plane rotations (a chain of dependent square roots and divisions)
-/// and then applies them all to the eigenvector columns (`rotate_columns`), so that the
-/// chain is not held up by the column updates.
+/// Changes from the published routines that alter only the order of operations and the
+/// last bits (each Householder step and QL rotation stays an exact orthogonal
+/// transformation to rounding): the sums add in four interleaved partial sums
+/// ([`dot4`]); A·d reads two columns of the lower triangle per pass; scalings by 1/scale
+/// and 1/h multiply by one reciprocal; each QL sweep first computes its plane rotations
+/// (a chain of dependent square roots and divisions, shortened by `rotation`) and then
+/// applies them all to the eigenvector columns (`rotate_columns`), so that the chain is
+/// not held up by the column updates.
 ///
 /// It replaces nalgebra's `symmetric_eigen`, which allocates its factors on every call,
 /// in the ensemble transform that runs once per reading line.

@@ -21,7 +21,8 @@ pub struct Workspace {
 pub struct BatchWorkspace {
     /// Most points one call may evaluate (also the register stride).
     cap: usize,
-    /// Register `r`, point `j` at `r * cap + j`.
+    /// Register `r`, point `j` at `r * cap + j` (the slots' rows stay unused: batches read
+    /// the slots from the caller's buffers).
     regs: Vec<f64>,
 }
 
