@@ -1,7 +1,9 @@
 //! R10: integration accuracy of nonlinear-rate models, against the closed-form solution of
 //! the damped harmonic oscillator (any mechanics text; common practice):
 //!   x(t) = e^{−ζωt} (x₀ cos ω_d t + (v₀ + ζω x₀)/ω_d sin ω_d t),  ω_d = ω√(1−ζ²).
-//! A line with no readings gives the pure prediction, so the mean follows the flow.
+//! A line with no readings gives the pure prediction, so the mean follows the flow. A
+//! second plant, a crane trolley under a constant drive force, checks the constant term of
+//! affine rates against x(t) = x₀ + v₀t + F t²/(2m).
 
 use super::support::{matrix, ok, rel};
 use serde_json::{json, Value};
@@ -109,23 +111,26 @@ fn affine_rates_are_discretised_exactly() {
 }
 
 #[test]
-fn constant_term_of_affine_rates_follows_free_fall() {
-    // A load dropped from a hoist, v' = -g: x(t) = x0 + v0 t - g t²/2, v(t) = v0 - g t
-    // (kinematics, common practice). The constant term is discretised with the state.
-    let g = 9.80665;
+fn constant_term_of_affine_rates_follows_the_trolley_under_constant_force() {
+    // An overhead crane trolley of 850 kg pushed by its drive with a constant 1.2 kN and
+    // negligible rolling losses (an invented plant): v' = F/m, so
+    // x(t) = x0 + v0 t + F t²/(2m), v(t) = v0 + F t/m (Newton's second law integrated
+    // twice; common practice). The constant term F/m is discretised with the state.
+    let (force, mass) = (1200.0, 850.0);
     let lines: Vec<Value> = (1..=8).map(|k| json!({"t": k as f64 * 0.125})).collect();
     let out = ok(&json!({
         "model": {
             "states": ["x", "v"],
-            "parameters": {"g": g},
-            "dynamics": {"rates": {"x": "v", "v": "-g"}},
+            "parameters": {"force": force, "mass": mass},
+            "dynamics": {"rates": {"x": "v", "v": "force/mass"}},
             "process_noise": {"density": {"v": 0.01}},
-            "sensors": {"probe": {"measures": "x", "std": 0.1}}
+            "sensors": {"encoder": {"measures": "x", "std": 0.1}}
         },
         "filter": {"method": "ekf"},
-        "prior": {"t": 0.0, "mean": {"x": 20.0, "v": 1.5}, "std": {"x": 0.01, "v": 0.01}},
+        "prior": {"t": 0.0, "mean": {"x": 3.0, "v": 0.4}, "std": {"x": 0.01, "v": 0.01}},
         "measurements": lines
     }));
+    let a = force / mass;
     for e in out["estimates"].as_array().unwrap() {
         let t = e["t"].as_f64().unwrap();
         let (x, v) = (
@@ -133,9 +138,9 @@ fn constant_term_of_affine_rates_follows_free_fall() {
             e["mean"]["v"].as_f64().unwrap(),
         );
         assert!(
-            (x - (20.0 + 1.5 * t - 0.5 * g * t * t)).abs() < 1e-12,
+            (x - (3.0 + 0.4 * t + 0.5 * a * t * t)).abs() < 1e-12,
             "t={t} x={x}"
         );
-        assert!((v - (1.5 - g * t)).abs() < 1e-12, "t={t} v={v}");
+        assert!((v - (0.4 + a * t)).abs() < 1e-12, "t={t} v={v}");
     }
 }
