@@ -36,7 +36,7 @@ fn every_route_is_documented_and_every_documented_path_is_routed() {
         .map(|(m, p, _)| (m, p))
         .collect();
     assert_eq!(routed, documented);
-    // And the router has every route of API.md's endpoint table.
+    // And the router has every route of the README's endpoint table.
     for (m, p) in [
         ("POST", "/v1/estimate"),
         ("POST", "/v1/estimate/stream"),

@@ -1,5 +1,5 @@
 """Writes tests/data/dare_fixtures.json: steady-state predicted covariances of linear
-filters computed by SciPy's general-purpose DARE solver (R3 in ../shared/REFERENCES.md).
+filters computed by SciPy's general-purpose DARE solver (R3 in docs/references.md).
 
 For the filter, the predicted covariance P solves the dual of the control DARE:
     P = F P F' - F P H' (H P H' + R)^-1 H P F' + Q,

@@ -1,4 +1,4 @@
-//! The estimation core checked against sources outside the project (../shared/REFERENCES.md
+//! The estimation core checked against sources outside the project (docs/references.md
 //! R1–R10), plus resumption, properties and request validation. These call the same job
 //! functions the server does, so the whole path from JSON in to JSON out is exercised.
 
