@@ -1,7 +1,8 @@
 //! The contract file against the code: every routed path is documented and every
-//! documented path is routed, keys are declared where they apply, and every example
-//! matches its schema (checked with a JSON Schema 2020-12 validator, the dialect of
-//! OpenAPI 3.1).
+//! documented path is routed, keys are declared where they apply, every example matches
+//! its schema (checked with a JSON Schema 2020-12 validator, the dialect of OpenAPI 3.1),
+//! and every example answer is the running server's real answer to its paired example
+//! request, so the examples cannot drift from the service.
 
 use serde_json::{json, Value};
 use std::collections::BTreeSet;
@@ -296,7 +297,7 @@ async fn real_requests_and_answers_match_the_contract_file() {
     let model = json!({
         "states": ["pos", "vel"],
         "inputs": ["force"],
-        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "drift": 1e-4}},
+        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "random_walk": 1e-4}},
         "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel*abs(vel))/mass"}},
         "process_noise": {"density": {"vel": 0.05}},
         "sensors": {"encoder": {"measures": "pos", "std": 0.002}, "pair": {"measures": ["pos", "vel"], "covariance": [[1e-4, 0], [0, 1e-2]]}}
@@ -304,7 +305,7 @@ async fn real_requests_and_answers_match_the_contract_file() {
     let prior =
         json!({"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 1.0, "vel": 5.0}});
     let sim_req = json!({"model": model, "prior": prior, "times": {"start": 0.1, "step": 0.1, "count": 6}, "seed": 3,
-        "inputs": [{"t": 0.0, "inputs": {"force": 2.5}}], "readings": {"pair": {"every": 2, "dropout": 0.1, "outliers": {"probability": 0.1, "scale": 10}}}});
+        "inputs": [{"t": 0.0, "inputs": {"force": 2.5}}], "sampling": {"pair": {"every": 2, "dropout": 0.1, "outliers": {"probability": 0.1, "scale": 10}}}});
     assert_documented(&d, "SimulateRequest", &sim_req);
     let post = |path: &'static str, body: Value| {
         let c = s.client.clone();
@@ -334,4 +335,267 @@ async fn real_requests_and_answers_match_the_contract_file() {
     assert_documented(&d, "Problem", &bad.body);
     let info = answer(s.client.get(s.url("/v1/info")).send().await.unwrap()).await;
     assert_documented(&d, "Info", &info.body);
+}
+
+/// Relative tolerance for numbers in an example answer against the live answer. Examples
+/// carry the answer's digits, so only a changed number (or a printing change beyond the
+/// sixth significant digit) trips it.
+const EXAMPLE_RTOL: f64 = 1e-6;
+
+/// Where `example` and `actual` disagree, appended to `out` as `path: reason`. Keys must
+/// be the same at every level and arrays the same length, except that an abridged example
+/// may leave out keys and show only a leading part of an array. Numbers agree within
+/// `EXAMPLE_RTOL` of the larger magnitude; strings, booleans and nulls exactly.
+fn disagreements(
+    example: &Value,
+    actual: &Value,
+    abridged: bool,
+    path: &str,
+    out: &mut Vec<String>,
+) {
+    match (example, actual) {
+        (Value::Object(e), Value::Object(a)) => {
+            for (k, ev) in e {
+                let here = format!("{path}/{k}");
+                match a.get(k) {
+                    Some(av) => disagreements(ev, av, abridged, &here, out),
+                    None => out.push(format!("{here}: in the example, not in the answer")),
+                }
+            }
+            if !abridged {
+                for k in a.keys().filter(|k| !e.contains_key(*k)) {
+                    out.push(format!("{path}/{k}: in the answer, not in the example"));
+                }
+            }
+        }
+        (Value::Array(e), Value::Array(a)) => {
+            let length_ok = if abridged {
+                e.len() <= a.len()
+            } else {
+                e.len() == a.len()
+            };
+            if !length_ok {
+                out.push(format!(
+                    "{path}: {} items in the example, {} in the answer",
+                    e.len(),
+                    a.len()
+                ));
+            }
+            for (i, (ev, av)) in e.iter().zip(a).enumerate() {
+                disagreements(ev, av, abridged, &format!("{path}/{i}"), out);
+            }
+        }
+        (Value::Number(e), Value::Number(a)) => {
+            let (e, a) = (e.as_f64().unwrap(), a.as_f64().unwrap());
+            if (e - a).abs() > EXAMPLE_RTOL * e.abs().max(a.abs()) {
+                out.push(format!("{path}: {e} in the example, {a} in the answer"));
+            }
+        }
+        _ if example == actual => {}
+        _ => out.push(format!(
+            "{path}: {example} in the example, {actual} in the answer"
+        )),
+    }
+}
+
+/// An example request and the example answer of the same name, ready to send.
+struct Pair {
+    place: String,
+    method: String,
+    path: String,
+    media_type: Option<String>,
+    request: Option<Value>,
+    answer_media_type: String,
+    answer: Value,
+    abridged: bool,
+}
+
+/// Every example `200` answer with the request that produces it: the request example of
+/// the same name, or none for an operation without a body.
+fn paired_examples(doc: &Value) -> Vec<Pair> {
+    let mut pairs = Vec::new();
+    for (method, path, op) in operations(doc) {
+        let Some(ok) = op["responses"].get("200") else {
+            continue;
+        };
+        let ok_content = resolve(doc, ok)["content"].clone();
+        let Some(ok_content) = ok_content.as_object() else {
+            continue;
+        };
+        for (answer_mt, media) in ok_content {
+            if answer_mt.starts_with("text/") {
+                continue;
+            }
+            let Some(exs) = media.get("examples").and_then(Value::as_object) else {
+                continue;
+            };
+            for (name, ex) in exs {
+                let ex = resolve(doc, ex);
+                let request = match op.get("requestBody") {
+                    None => None,
+                    Some(body) => {
+                        let content = resolve(doc, body)["content"].clone();
+                        content.as_object().and_then(|c| {
+                            c.iter().find_map(|(mt, m)| {
+                                m["examples"]
+                                    .get(name)
+                                    .map(|r| (mt.clone(), resolve(doc, r)["value"].clone()))
+                            })
+                        })
+                    }
+                };
+                if op.get("requestBody").is_some() && request.is_none() {
+                    continue;
+                }
+                let (media_type, request) = match request {
+                    Some((mt, v)) => (Some(mt), Some(v)),
+                    None => (None, None),
+                };
+                pairs.push(Pair {
+                    place: format!("{method} {path} {name}"),
+                    method: method.clone(),
+                    path: path.clone(),
+                    media_type,
+                    request,
+                    answer_media_type: answer_mt.clone(),
+                    answer: ex["value"].clone(),
+                    abridged: ex.get("x-abridged").is_some(),
+                });
+            }
+        }
+    }
+    pairs
+}
+
+/// The example answer as JSON: NDJSON examples become the array of their lines.
+fn as_json(mt: &str, value: &Value) -> Value {
+    match mt {
+        "application/x-ndjson" => Value::Array(instances(mt, value)),
+        _ => value.clone(),
+    }
+}
+
+#[tokio::test]
+async fn every_example_answer_is_the_live_answer_to_its_example_request() {
+    use crate::support::start_default;
+    let d = doc();
+    let pairs = paired_examples(&d);
+    let names: Vec<&str> = pairs.iter().map(|p| p.place.as_str()).collect();
+    // Guards against a vacuous pass: the examples this file is known to pair.
+    for want in [
+        "POST /v1/estimate crane_trolley",
+        "POST /v1/estimate bottling_conveyor_linear",
+        "POST /v1/estimate/stream water_tower",
+        "POST /v1/estimate/stream failed_mid_stream",
+        "POST /v1/smooth kiln",
+        "POST /v1/simulate crane_trolley",
+        "POST /v1/check crane_trolley",
+        "GET /v1/info defaults",
+        "GET /healthz ok",
+    ] {
+        assert!(names.contains(&want), "{want} is not paired: {names:?}");
+    }
+    let s = start_default().await;
+    let mut faults = Vec::new();
+    for p in &pairs {
+        let url = s.url(&p.path);
+        let res = match (&p.request, &p.media_type) {
+            (Some(body), Some(mt)) => {
+                let bytes = match body {
+                    Value::String(text) => text.clone().into_bytes(),
+                    other => serde_json::to_vec(other).unwrap(),
+                };
+                s.client
+                    .post(url)
+                    .header("content-type", mt.as_str())
+                    .body(bytes)
+                    .send()
+                    .await
+            }
+            _ => {
+                assert_eq!(p.method, "GET", "{}: a body-less example answer", p.place);
+                s.client.get(url).send().await
+            }
+        }
+        .unwrap();
+        let status = res.status().as_u16();
+        let text = res.text().await.unwrap();
+        if status != 200 {
+            faults.push(format!("{}: status {status}: {text}", p.place));
+            continue;
+        }
+        let actual = match p.answer_media_type.as_str() {
+            "application/x-ndjson" => as_json(&p.answer_media_type, &Value::String(text)),
+            _ => serde_json::from_str(&text).unwrap_or_else(|e| panic!("{}: {e}: {text}", p.place)),
+        };
+        let example = as_json(&p.answer_media_type, &p.answer);
+        let mut out = Vec::new();
+        disagreements(&example, &actual, p.abridged, "", &mut out);
+        faults.extend(out.into_iter().map(|f| format!("{}: {f}", p.place)));
+    }
+    assert!(
+        faults.is_empty(),
+        "examples that differ from the live answers:\n{}",
+        faults.join("\n")
+    );
+}
+
+#[test]
+fn the_example_comparison_catches_drift() {
+    // Guards the test above: each kind of drift it exists to catch is reported.
+    let live = json!({"a": [1.0, 2.0, 3.0], "b": {"c": "ekf", "d": 0.5}});
+    let mut out = Vec::new();
+    disagreements(&live, &live, false, "", &mut out);
+    assert!(out.is_empty(), "{out:?}");
+    let within = json!({"a": [1.0 + 5e-7, 2.0, 3.0], "b": {"c": "ekf", "d": 0.5}});
+    disagreements(&within, &live, false, "", &mut out);
+    assert!(out.is_empty(), "{out:?}");
+    for (drifted, abridged, at) in [
+        (
+            json!({"a": [1.0 + 2e-6, 2.0, 3.0], "b": {"c": "ekf", "d": 0.5}}),
+            false,
+            "/a/0",
+        ),
+        (
+            json!({"a": [1.0, 2.0, 3.0], "b": {"c": "ukf", "d": 0.5}}),
+            false,
+            "/b/c",
+        ),
+        (
+            json!({"a": [1.0, 2.0, 3.0], "b": {"c": "ekf", "e": 0.5}}),
+            true,
+            "/b/e",
+        ),
+        (
+            json!({"a": [1.0, 2.0, 3.0], "b": {"c": "ekf"}}),
+            false,
+            "/b/d",
+        ),
+        (
+            json!({"a": [1.0, 2.0], "b": {"c": "ekf", "d": 0.5}}),
+            false,
+            "/a",
+        ),
+        (
+            json!({"a": [1.0, 2.0, 3.0, 4.0], "b": {"c": "ekf", "d": 0.5}}),
+            true,
+            "/a",
+        ),
+        (
+            json!({"a": [1.0, 2.0, 3.0], "b": {"c": "ekf", "d": "0.5"}}),
+            false,
+            "/b/d",
+        ),
+    ] {
+        let mut out = Vec::new();
+        disagreements(&drifted, &live, abridged, "", &mut out);
+        assert!(
+            out.iter().any(|f| f.starts_with(&format!("{at}:"))),
+            "{drifted}: {out:?}"
+        );
+    }
+    // An abridged example may show a leading part and leave keys out.
+    let mut out = Vec::new();
+    disagreements(&json!({"a": [1.0, 2.0]}), &live, true, "", &mut out);
+    assert!(out.is_empty(), "{out:?}");
 }
