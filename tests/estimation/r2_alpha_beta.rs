@@ -45,7 +45,7 @@ fn converged_gain(method: &str, t: f64, sigma_a: f64, sigma_z: f64) -> [f64; 2] 
     let prev = &est[est.len() - 2];
     let (x0, v0) = (f(&prev["mean"], "pos"), f(&prev["mean"], "vel"));
     let (x1, v1) = (f(&last["mean"], "pos"), f(&last["mean"], "vel"));
-    let nu = f(&last["innovations"]["encoder"], "residual");
+    let nu = f(&last["innovations"]["encoder"], "innovation");
     let k_mean = [(x1 - (x0 + t * v0)) / nu, (v1 - v0) / nu];
     for i in 0..2 {
         assert!(
@@ -88,7 +88,7 @@ fn innovation_std_converges_to_the_alpha_beta_value() {
         body["output"] = json!({"innovations": true});
         let out = ok(&body);
         let last = out["estimates"].as_array().unwrap().last().unwrap().clone();
-        let std = f(&last["innovations"]["encoder"], "std");
+        let std = f(&last["innovations"]["encoder"], "innovation_std");
         let expected = sigma_z / (1.0 - alpha).sqrt();
         assert!(
             rel(std, expected, 1e-12) < 1e-8,
