@@ -599,3 +599,94 @@ fn the_example_comparison_catches_drift() {
     disagreements(&json!({"a": [1.0, 2.0]}), &live, true, "", &mut out);
     assert!(out.is_empty(), "{out:?}");
 }
+
+/// The slugs `GET /problems/{slug}` documents.
+fn documented_slugs(doc: &Value) -> Vec<String> {
+    let params = doc["paths"]["/problems/{slug}"]["get"]["parameters"]
+        .as_array()
+        .expect("the problem pages are documented");
+    params[0]["schema"]["enum"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s.as_str().unwrap().to_string())
+        .collect()
+}
+
+/// Every problem `type` in the document's examples, inline or in NDJSON lines.
+fn example_problem_types(v: &Value, out: &mut Vec<String>) {
+    match v {
+        Value::Object(m) => {
+            if let (Some(Value::String(t)), Some(Value::Number(_))) =
+                (m.get("type"), m.get("status"))
+            {
+                out.push(t.clone());
+            }
+            m.values().for_each(|x| example_problem_types(x, out));
+        }
+        Value::Array(items) => items.iter().for_each(|x| example_problem_types(x, out)),
+        Value::String(text) if text.contains("\"error\"") => {
+            for line in text
+                .lines()
+                .filter_map(|l| serde_json::from_str::<Value>(l).ok())
+            {
+                example_problem_types(&line, out);
+            }
+        }
+        _ => {}
+    }
+}
+
+#[test]
+fn every_example_problem_type_is_a_documented_page() {
+    // RFC 9457 §3.1.1: a relative type URI is resolved against the document's base and,
+    // when dereferenced, should give human-readable documentation of the problem type.
+    let d = doc();
+    let slugs = documented_slugs(&d);
+    let mut types = Vec::new();
+    example_problem_types(&d["paths"], &mut types);
+    example_problem_types(&d["components"]["responses"], &mut types);
+    assert!(types.len() >= 8, "only {} problem examples", types.len());
+    for t in types {
+        let slug = t
+            .strip_prefix("/problems/")
+            .unwrap_or_else(|| panic!("{t} is not a relative /problems/<slug> reference"));
+        assert!(
+            slugs.iter().any(|s| s == slug),
+            "{t} has no documented page"
+        );
+    }
+}
+
+#[tokio::test]
+async fn every_documented_problem_page_is_served() {
+    use crate::support::{answer, start_default};
+    let d = doc();
+    let s = start_default().await;
+    for slug in documented_slugs(&d) {
+        let a = answer(
+            s.client
+                .get(s.url(&format!("/problems/{slug}")))
+                .send()
+                .await
+                .unwrap(),
+        )
+        .await;
+        assert_eq!(a.status, 200, "/problems/{slug}: {}", a.text);
+        assert!(
+            a.content_type.starts_with("text/html") || a.content_type.starts_with("text/plain"),
+            "/problems/{slug}: {}",
+            a.content_type
+        );
+        assert!(!a.text.trim().is_empty(), "/problems/{slug} is empty");
+    }
+    let a = answer(
+        s.client
+            .get(s.url("/problems/no-such-problem"))
+            .send()
+            .await
+            .unwrap(),
+    )
+    .await;
+    assert_eq!(a.status, 404, "{}", a.text);
+}
