@@ -90,8 +90,10 @@ fn linear_model() -> Value {
     })
 }
 
-/// A swinging crane load: θ'' = −(g/L) sin θ − c θ', read by a horizontal position sensor.
-fn pendulum_model() -> Value {
+/// The sway of an overhead crane's hook load on a 2 m rope: θ'' = −(g/L) sin θ − c θ'
+/// (rigid rope, point load; common practice), read by a sensor of the load's horizontal
+/// offset L sin θ from the trolley. Nonlinear in both the rates and the sensor.
+fn load_sway_model() -> Value {
     json!({
         "states": ["angle", "rate"],
         "parameters": {"g": 9.80665, "length": 2.0, "damping": 0.1},
@@ -132,7 +134,7 @@ fn nonlinear_filters_are_consistent() {
     let prior = json!({"t": 0.0, "mean": {"angle": 0.3, "rate": 0.0}, "std": {"angle": 0.05, "rate": 0.05}});
     for method in ["ekf", "ukf"] {
         let (nees, nis) = monte_carlo(
-            &pendulum_model(),
+            &load_sway_model(),
             &prior,
             &json!({"method": method}),
             80,
@@ -142,7 +144,7 @@ fn nonlinear_filters_are_consistent() {
         assert_consistent(method, &nees, &nis, 0.85);
     }
     let (nees, nis) = monte_carlo(
-        &pendulum_model(),
+        &load_sway_model(),
         &prior,
         &json!({"method": "enkf", "ensemble": {"members": 300, "update": "deterministic"}}),
         50,
