@@ -127,23 +127,27 @@ fn parent_decay_constant_is_recovered_from_daughter_readings() {
 
 #[test]
 fn the_closed_form_solves_the_chain_equations() {
-    // Guards the oracle itself: A_D from the closed form satisfies A_D' = λ_D (b A_P − A_D)
-    // (checked by a central difference of the closed form, not of any filter Jacobian) and
-    // peaks near 23 h after the elution, the ingrowth maximum t = ln(λ_D/λ_P)/(λ_D − λ_P).
+    // Guards the oracle itself: the closed form's time derivative, taken by hand,
+    //   A_D'(t) = b λ_D/(λ_D − λ_P) · A₀ (λ_D e^{−λ_D t} − λ_P e^{−λ_P t}),
+    // equals λ_D (b A_P − A_D), and A_D peaks at the ingrowth maximum
+    // t = ln(λ_D/λ_P)/(λ_D − λ_P), about 23 h after the elution for this pair.
     let (lp, ld) = (
         lambda_per_h(T_HALF_PARENT_H),
         lambda_per_h(T_HALF_DAUGHTER_H),
     );
-    for t in [1.0, 10.0, 50.0, 100.0] {
-        let h = 1e-4;
-        let slope = (bateman(t + h).1 - bateman(t - h).1) / (2.0 * h);
+    let slope =
+        |t: f64| BRANCH * ld / (ld - lp) * A0_GBQ * (ld * (-ld * t).exp() - lp * (-lp * t).exp());
+    for t in [0.0, 1.0, 10.0, 50.0, 100.0] {
         let (p, d) = bateman(t);
+        let rate = ld * (BRANCH * p - d);
         assert!(
-            (slope - ld * (BRANCH * p - d)).abs() < 1e-7,
-            "t={t}: {slope}"
+            (slope(t) - rate).abs() <= 1e-12 * rate.abs().max(1.0),
+            "t={t}: {} vs {rate}",
+            slope(t)
         );
     }
     let t_max = (ld / lp).ln() / (ld - lp);
     assert!((22.0..24.5).contains(&t_max), "{t_max}");
+    assert!(slope(t_max).abs() < 1e-12, "{}", slope(t_max));
     assert!(bateman(t_max).1 > bateman(t_max - 0.5).1 && bateman(t_max).1 > bateman(t_max + 0.5).1);
 }
