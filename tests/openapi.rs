@@ -2,7 +2,8 @@
 //! documented path is routed, keys are declared where they apply, every example matches
 //! its schema (checked with a JSON Schema 2020-12 validator, the dialect of OpenAPI 3.1),
 //! and every example answer is the running server's real answer to its paired example
-//! request, so the examples cannot drift from the service.
+//! request, so the examples cannot drift from the service. The README's worked examples
+//! are held to the same rule.
 
 use serde_json::{json, Value};
 use std::collections::BTreeSet;
@@ -689,4 +690,104 @@ async fn every_documented_problem_page_is_served() {
     )
     .await;
     assert_eq!(a.status, 404, "{}", a.text);
+}
+
+/// The text between `start` (exclusive) and the next `end` after it.
+fn between<'a>(text: &'a str, start: &str, end: &str) -> &'a str {
+    let from = text
+        .find(start)
+        .unwrap_or_else(|| panic!("README lacks {start:?}"))
+        + start.len();
+    let len = text[from..]
+        .find(end)
+        .unwrap_or_else(|| panic!("README lacks {end:?}"));
+    &text[from..from + len]
+}
+
+/// The README's two worked examples are the service's real answers too: the Quick start
+/// (an abridged answer: the estimates it shows are matched to the live ones by time) and
+/// the stream continued from its posterior (shown whole).
+#[tokio::test]
+async fn readme_examples_are_the_live_answers() {
+    use crate::support::start_default;
+    let readme = include_str!("../README.md");
+    let s = start_default().await;
+    let mut faults = Vec::new();
+
+    let request = between(
+        readme,
+        "/v1/estimate \\\n  -H 'Content-Type: application/json' \\\n  -d '",
+        "'\n```",
+    );
+    let request: Value = serde_json::from_str(request).expect("the Quick start request is JSON");
+    let shown = between(readme, "reformatted here):\n\n```json\n", "```");
+    let shown: String = shown
+        .lines()
+        .filter(|l| l.trim() != "...")
+        .collect::<Vec<_>>()
+        .join("\n");
+    let shown: Value =
+        serde_json::from_str(&shown).expect("the Quick start answer is JSON once `...` lines go");
+    let res = s
+        .client
+        .post(s.url("/v1/estimate"))
+        .json(&request)
+        .send()
+        .await
+        .unwrap();
+    let live: Value = res.json().await.unwrap();
+    for key in ["states", "posterior", "summary"] {
+        let mut out = Vec::new();
+        disagreements(&shown[key], &live[key], false, &format!("/{key}"), &mut out);
+        faults.extend(out);
+    }
+    let live_estimates = live["estimates"].as_array().unwrap();
+    assert_eq!(live_estimates.len(), 10);
+    for e in shown["estimates"].as_array().unwrap() {
+        match live_estimates.iter().find(|l| l["t"] == e["t"]) {
+            Some(l) => disagreements(
+                e,
+                l,
+                false,
+                &format!("/estimates at t={}", e["t"]),
+                &mut faults,
+            ),
+            None => faults.push(format!("no live estimate at t={}", e["t"])),
+        }
+    }
+
+    let script = between(readme, "printf '%s\\n' \\\n", "|\ncurl");
+    let lines: Vec<&str> = script
+        .lines()
+        .map(|l| l.trim().trim_end_matches(" \\").trim_matches('\''))
+        .collect();
+    assert_eq!(lines.len(), 3, "{lines:?}");
+    let body = lines.join("\n") + "\n";
+    let shown = between(readme, "--data-binary @-\n```\n\n```\n", "```");
+    let res = s
+        .client
+        .post(s.url("/v1/estimate/stream"))
+        .header("content-type", "application/x-ndjson")
+        .body(body)
+        .send()
+        .await
+        .unwrap();
+    let live = instances(
+        "application/x-ndjson",
+        &Value::String(res.text().await.unwrap()),
+    );
+    let shown = instances("application/x-ndjson", &Value::String(shown.to_string()));
+    disagreements(
+        &Value::Array(shown),
+        &Value::Array(live),
+        false,
+        "/stream",
+        &mut faults,
+    );
+
+    assert!(
+        faults.is_empty(),
+        "README examples that differ from the live answers:\n{}",
+        faults.join("\n")
+    );
 }
