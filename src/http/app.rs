@@ -3,9 +3,8 @@
 //!
 //! Kept apart from `main` so tests can build the same app and drive it on a real port.
 
-use super::auth::require_key;
 use super::jobs::panic_message;
-use super::metrics::track;
+use super::middleware::{require_key, track};
 use super::problem::{internal, problem_response};
 use super::routes;
 use super::state::AppState;

@@ -1,6 +1,7 @@
 //! Running one job off the async executor: take a job slot or shed with 503, run the work
-//! in `spawn_blocking` (or, for a small body, on the compute lane), stop it when the client goes away, and turn a panic into a logged
-//! 500 instead of a dropped connection.
+//! in `spawn_blocking` (or, for a small body, on the compute lane) inside the request's
+//! tracing span, stop it when the client goes away, and turn a panic into a logged 500
+//! instead of a dropped connection.
 
 use super::lane::SMALL_BODY;
 use super::problem::{internal, overloaded, problem_response, public};
@@ -115,7 +116,11 @@ where
     let guard = CancelOnDrop::new();
     let cancel = guard.flag();
     let st = state.clone();
+    // The request's span goes with the work to its thread, so a log line written there
+    // carries the request id, as the stream's worker does.
+    let span = tracing::Span::current();
     let job = move || {
+        let _entered = span.enter();
         // The slot is released only when the work really stops, so a disconnected
         // client's job still counts against the limit until it has noticed the flag.
         let _slot = slot;

@@ -3,19 +3,15 @@
 //!
 //! Each app owns its recorder and records through `metrics::with_local_recorder`, so
 //! several apps in one process (the integration tests start many) never fight over the
-//! process-wide recorder, and each `/metrics` shows only its own app.
+//! process-wide recorder, and each `/metrics` shows only its own app. The timing of each
+//! request is [`super::middleware::metrics`].
 
-use super::state::AppState;
 use crate::job::RunStats;
-use axum::extract::{MatchedPath, Request, State};
 use axum::http::Method;
-use axum::middleware::Next;
-use axum::response::Response;
 use metrics::{Counter, Histogram};
 use metrics_exporter_prometheus::{PrometheusBuilder, PrometheusHandle, PrometheusRecorder};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
-use std::time::Instant;
 
 /// Bucket bounds of the duration histogram, seconds: from sub-millisecond single steps to
 /// the default one-minute deadline.
@@ -155,20 +151,4 @@ impl Metrics {
     pub fn render(&self) -> String {
         self.handle.render()
     }
-}
-
-/// Middleware: time each request and count it under its route template (not its raw
-/// path, which would let clients create unbounded label values).
-pub async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
-    let route = req.extensions().get::<MatchedPath>().cloned();
-    let method = req.method().clone();
-    let start = Instant::now();
-    let res = next.run(req).await;
-    state.metrics().record_request(
-        route.as_ref().map_or("unmatched", MatchedPath::as_str),
-        &method,
-        res.status().as_u16(),
-        start.elapsed().as_secs_f64(),
-    );
-    res
 }

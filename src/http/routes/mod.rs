@@ -9,8 +9,10 @@ mod model;
 mod openapi;
 mod route;
 mod stream;
+mod table;
 
-pub use route::{all, mount, Route, ALL};
+pub use route::{mount, Route};
+pub use table::{all, ALL};
 
 /// The route groups by name, for callers that want one group's router alone.
 pub mod groups {
