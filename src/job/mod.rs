@@ -5,8 +5,10 @@
 //! the JSON answer. Failures are [`Problem`]s with JSON Pointers into the request.
 
 use crate::config::Limits;
+mod check;
 mod filtering;
 pub mod records;
+mod simulate;
 pub mod write;
 
 use crate::problem::Problem;
@@ -100,12 +102,12 @@ pub fn smooth_pieces(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Resul
 
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    crate::simulate::run(body, limits, cancel)
+    simulate::simulate(body, limits, cancel)
 }
 
 /// `POST /v1/check`: `{model, prior?}`.
 pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
-    crate::diagnostics::observability::check_request(body, limits)
+    check::check(body, limits)
 }
 
 /// `GET /v1/info`: version, methods and the limits in force.
