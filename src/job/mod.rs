@@ -7,8 +7,13 @@
 use crate::config::Limits;
 mod check;
 mod filtering;
+mod pipeline;
+mod plain;
 pub mod records;
+mod setup;
 mod simulate;
+mod smooth;
+mod stream;
 pub mod write;
 
 use crate::problem::Problem;
@@ -124,7 +129,7 @@ pub fn info(limits: &Limits) -> serde_json::Value {
 /// arrive one line at a time and each answer line is appended to the caller's buffer.
 /// Memory does not grow with the number of lines.
 pub struct StreamSession {
-    inner: filtering::Stream,
+    inner: stream::Stream,
 }
 
 impl StreamSession {
@@ -140,7 +145,7 @@ impl StreamSession {
                 "the header line is too large",
             ));
         }
-        filtering::Stream::start(header, limits).map(|inner| Self { inner })
+        stream::Stream::start(header, limits).map(|inner| Self { inner })
     }
 
     /// Apply one measurement line (1-based `line_no` for error pointers) and append its
