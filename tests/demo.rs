@@ -137,7 +137,7 @@ fn crane_velocity_is_recovered_and_the_glitches_are_gated() {
     // (c/m = 0.14 /s) is slow next to the filter's bandwidth (q/r)^{1/4} ≈ 6.5 /s, and
     // sampling at Δt = 0.05 s moves the discrete value by some per cent, so the band is
     // wide: [0.6, 1.5] × the closed form.
-    let dropout = json(s.simulate)["readings"]["encoder"]["dropout"]
+    let dropout = json(s.simulate)["sampling"]["encoder"]["dropout"]
         .as_f64()
         .expect("dropout");
     let r_density = sigma * sigma * dt / (1.0 - dropout);
@@ -181,7 +181,7 @@ fn water_tower_draw_off_is_recovered_from_the_level() {
     let area = model_number(s, "/parameters/area");
     let settings = json(s.simulate);
     let dt = settings["times"]["step"].as_f64().expect("step");
-    let dropout = settings["readings"]["level_gauge"]["dropout"]
+    let dropout = settings["sampling"]["level_gauge"]["dropout"]
         .as_f64()
         .expect("dropout");
     let b = 1.0 / (1000.0 * area);

@@ -304,7 +304,7 @@ async fn real_requests_and_answers_match_the_contract_file() {
     let prior =
         json!({"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 1.0, "vel": 5.0}});
     let sim_req = json!({"model": model, "prior": prior, "times": {"start": 0.1, "step": 0.1, "count": 6}, "seed": 3,
-        "inputs": [{"t": 0.0, "inputs": {"force": 2.5}}], "readings": {"pair": {"every": 2, "dropout": 0.1, "outliers": {"probability": 0.1, "scale": 10}}}});
+        "inputs": [{"t": 0.0, "inputs": {"force": 2.5}}], "sampling": {"pair": {"every": 2, "dropout": 0.1, "outliers": {"probability": 0.1, "scale": 10}}}});
     assert_documented(&d, "SimulateRequest", &sim_req);
     let post = |path: &'static str, body: Value| {
         let c = s.client.clone();

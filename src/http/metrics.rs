@@ -1,5 +1,6 @@
 //! Prometheus metrics of one app: requests by route and status, request durations, filter
-//! steps by method, rejected readings, shed requests.
+//! steps by filter (label `filter`: `method` is the HTTP method on the http series),
+//! rejected readings, shed requests.
 //!
 //! Each app owns its recorder and records through `metrics::with_local_recorder`, so
 //! several apps in one process (the integration tests start many) never fight over the
@@ -39,9 +40,9 @@ struct RequestSeries {
     duration: Histogram,
 }
 
-/// The filter counters of one method.
+/// The filter counters of one filter.
 struct RunSeries {
-    method: &'static str,
+    filter: &'static str,
     steps: Counter,
     updates: Counter,
     rejected: Counter,
@@ -94,7 +95,7 @@ impl Metrics {
                         metrics::counter!("tacit_http_requests_total",
                             "route" => r.clone(), "method" => m.clone(), "status" => status.to_string()),
                         metrics::histogram!("tacit_http_request_duration_seconds",
-                            "route" => r, "method" => m),
+                            "route" => r, "filter" => m),
                     )
                 });
                 series.push(RequestSeries {
@@ -118,19 +119,19 @@ impl Metrics {
 
     /// Add one job's filter work.
     pub fn record_run(&self, stats: &RunStats) {
-        if stats.method.is_empty() {
+        if stats.filter.is_empty() {
             return;
         }
-        let m = stats.method;
+        let m = stats.filter;
         let mut runs = self.runs.lock().unwrap_or_else(|p| p.into_inner());
-        let i = match runs.iter().position(|r| r.method == m) {
+        let i = match runs.iter().position(|r| r.filter == m) {
             Some(i) => i,
             None => {
                 let series = self.with(|| RunSeries {
-                    method: m,
-                    steps: metrics::counter!("tacit_filter_steps_total", "method" => m),
-                    updates: metrics::counter!("tacit_filter_updates_total", "method" => m),
-                    rejected: metrics::counter!("tacit_filter_rejected_readings_total", "method" => m),
+                    filter: m,
+                    steps: metrics::counter!("tacit_filter_steps_total", "filter" => m),
+                    updates: metrics::counter!("tacit_filter_updates_total", "filter" => m),
+                    rejected: metrics::counter!("tacit_filter_rejected_readings_total", "filter" => m),
                 });
                 runs.push(series);
                 runs.len() - 1

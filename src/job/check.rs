@@ -33,7 +33,7 @@ struct SensorInfo {
 struct Dimensions {
     states: usize,
     inputs: usize,
-    readings: usize,
+    measurement_size: usize,
 }
 
 #[derive(Serialize)]
@@ -160,7 +160,7 @@ pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
         dimensions: Dimensions {
             states: model.n(),
             inputs: model.nu(),
-            readings: model.sensors.iter().map(|s| s.dim).sum(),
+            measurement_size: model.sensors.iter().map(|s| s.dim).sum(),
         },
         observability: Full {
             rank: all.rank,

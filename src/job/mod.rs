@@ -23,7 +23,7 @@ use std::sync::atomic::AtomicBool;
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub struct RunStats {
     /// `ekf`, `ukf`, `enkf`, or `""` for requests that run no filter.
-    pub method: &'static str,
+    pub filter: &'static str,
     /// Estimates produced (one per measurement line).
     pub steps: u64,
     /// Updates applied (lines with at least one accepted reading).

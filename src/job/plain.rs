@@ -111,7 +111,7 @@ impl Source for ParseHere<'_, '_> {
 /// One run's counters, for metrics and logs.
 pub(super) fn stats(run: &Run) -> RunStats {
     RunStats {
-        method: run.config().method.name(),
+        filter: run.config().method.name(),
         steps: run.counts.steps,
         updates: run.counts.updates,
         rejected: run.counts.rejected,

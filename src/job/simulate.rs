@@ -28,7 +28,7 @@ fn probability(v: &Value, ptr: &str, errs: &mut Errors) -> Option<f64> {
 fn schedules(v: Option<Value>, model: &Model, errs: &mut Errors) -> Vec<Schedule> {
     let mut out = vec![Schedule::default(); model.sensors.len()];
     let Some(v) = v else { return out };
-    let Some(obj) = Obj::new(&v, "/readings", errs) else {
+    let Some(obj) = Obj::new(&v, "/sampling", errs) else {
         return out;
     };
     for (name, sv) in obj.map {
@@ -191,6 +191,12 @@ fn input_schedule(
 /// `POST /v1/simulate`.
 pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
     let env = request::envelope(body)?;
+    if env.readings.is_some() {
+        return Err(Problem::field(
+            "/readings",
+            "the sampling schedule is now called 'sampling' (v2); 'readings' is no longer read",
+        ));
+    }
     let [model_v, prior_v, times_v] = request::sections([
         (env.model, "model"),
         (env.prior, "prior"),
@@ -211,7 +217,7 @@ pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Don
         Some(s) => whole(&s, "/seed", &mut errs).unwrap_or(0),
         None => 0,
     };
-    let sched = schedules(request::optional_section(env.readings)?, &model, &mut errs);
+    let sched = schedules(request::optional_section(env.sampling)?, &model, &mut errs);
     if !errs.is_empty() {
         return Err(Problem::invalid(errs.into_vec()));
     }
@@ -259,7 +265,7 @@ pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Don
     Ok(Done {
         body: buf,
         stats: RunStats {
-            method: "",
+            filter: "",
             steps: times.len() as u64,
             updates: 0,
             rejected: 0,

@@ -45,7 +45,7 @@ fn converged_gain(method: &str, t: f64, sigma_a: f64, sigma_z: f64) -> [f64; 2] 
     let prev = &est[est.len() - 2];
     let (x0, v0) = (f(&prev["mean"], "pos"), f(&prev["mean"], "vel"));
     let (x1, v1) = (f(&last["mean"], "pos"), f(&last["mean"], "vel"));
-    let nu = f(&last["innovations"]["encoder"], "residual");
+    let nu = f(&last["innovations"]["encoder"], "innovation");
     let k_mean = [(x1 - (x0 + t * v0)) / nu, (v1 - v0) / nu];
     for i in 0..2 {
         assert!(
@@ -80,7 +80,7 @@ fn ekf_gain_converges_to_kalata_alpha_beta() {
 fn innovation_std_converges_to_the_alpha_beta_value() {
     // At steady state α = P⁻₁₁ / S and S = P⁻₁₁ + σ_z², so the innovation's standard
     // deviation is σ_z / √(1 − α) (follows from Kalata 1984's α; common practice). The
-    // answer's `innovations.*.std` must converge to it, for every filter's update path.
+    // answer's `innovations.*.innovation_std` must converge to it, for every filter's update path.
     for method in ["ekf", "ukf"] {
         let (t, sigma_a, sigma_z) = (0.5, 0.3, 0.2);
         let (alpha, _) = kalata(sigma_a * t * t / sigma_z);
@@ -88,7 +88,7 @@ fn innovation_std_converges_to_the_alpha_beta_value() {
         body["output"] = json!({"innovations": true});
         let out = ok(&body);
         let last = out["estimates"].as_array().unwrap().last().unwrap().clone();
-        let std = f(&last["innovations"]["encoder"], "std");
+        let std = f(&last["innovations"]["encoder"], "innovation_std");
         let expected = sigma_z / (1.0 - alpha).sqrt();
         assert!(
             rel(std, expected, 1e-12) < 1e-8,

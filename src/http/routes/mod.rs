@@ -7,6 +7,7 @@ mod info;
 mod metrics;
 mod model;
 mod openapi;
+mod problems;
 mod route;
 mod stream;
 mod table;
@@ -22,5 +23,6 @@ pub mod groups {
     pub use super::metrics::router as metrics;
     pub use super::model::router as model;
     pub use super::openapi::router as openapi;
+    pub use super::problems::router as problems;
     pub use super::stream::router as stream;
 }

@@ -4,13 +4,14 @@
 //! route cannot be served without being documented, nor documented without being served.
 
 use super::route::Route;
-use super::{estimate, health, info, metrics, model, openapi, stream};
+use super::{estimate, health, info, metrics, model, openapi, problems, stream};
 
 /// Every route group of the service.
 pub const ALL: &[&[Route]] = &[
     health::ROUTES,
     metrics::ROUTES,
     openapi::ROUTES,
+    problems::ROUTES,
     info::ROUTES,
     estimate::ROUTES,
     stream::ROUTES,
