@@ -196,3 +196,59 @@ pub fn panic_message(payload: &(dyn Any + Send)) -> String {
         "(non-text panic payload)".to_string()
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::http::ServerConfig;
+    use std::sync::Mutex;
+    use tracing::Instrument;
+    use tracing_subscriber::layer::{Context, SubscriberExt};
+    use tracing_subscriber::registry::LookupSpan;
+    use tracing_subscriber::Layer;
+
+    /// The span each probe event was emitted in, by name.
+    static SEEN: Mutex<Vec<Option<String>>> = Mutex::new(Vec::new());
+
+    /// Records the current span of every event with the probe's target.
+    struct Spans;
+
+    impl<S: tracing::Subscriber + for<'a> LookupSpan<'a>> Layer<S> for Spans {
+        fn on_event(&self, e: &tracing::Event<'_>, ctx: Context<'_, S>) {
+            if e.metadata().target() == "tacit_job_span_probe" {
+                let name = ctx.lookup_current().map(|s| s.name().to_string());
+                SEEN.lock().unwrap_or_else(|p| p.into_inner()).push(name);
+            }
+        }
+    }
+
+    #[tokio::test]
+    async fn a_job_logs_inside_the_requests_span_on_either_path() {
+        // A log line written by the job must carry the request's span (and so its id)
+        // whether the job ran on the compute lane or on the blocking pool. Other lib
+        // tests install no subscriber, so this one may take the process-wide slot.
+        let _ = tracing::subscriber::set_global_default(tracing_subscriber::registry().with(Spans));
+        let state = AppState::new(ServerConfig::default());
+        // A body of 0 bytes goes to the lane, one of usize::MAX to spawn_blocking.
+        for body_len in [0, usize::MAX] {
+            let res = run_job_sized(&state, "/probe", body_len, |_, _| {
+                tracing::info!(target: "tacit_job_span_probe", "inside the job");
+                Ok(Done {
+                    body: b"{}".to_vec(),
+                    stats: RunStats::default(),
+                })
+            })
+            .instrument(tracing::info_span!("probe_request"))
+            .await;
+            assert_eq!(res.status(), 200);
+        }
+        let seen = SEEN.lock().unwrap_or_else(|p| p.into_inner()).clone();
+        assert_eq!(
+            seen,
+            [
+                Some("probe_request".to_string()),
+                Some("probe_request".to_string())
+            ]
+        );
+    }
+}
