@@ -3,6 +3,15 @@
 //!
 //! Each entry point parses the request once into a checked model, runs the work and writes
 //! the JSON answer. Failures are [`Problem`]s with JSON Pointers into the request.
+//!
+//! Where each request goes: `setup.rs` parses the sections every filtering request has;
+//! `filtering.rs` is the batch estimate and smooth; `plain.rs` is the path of one line
+//! (parse, filter step, record), which `pipeline.rs` runs with parsing and writing on two
+//! more threads for large batches; `smooth.rs` adds the backward pass; `stream.rs` is the
+//! stream session; `check.rs` and `simulate.rs` answer `/v1/check` and `/v1/simulate` over
+//! [`crate::diagnostics::observability`] and [`crate::simulate`]; `records.rs` and
+//! `write.rs` turn estimates into the JSON bytes. Modules here call down into the filters,
+//! diagnostics and dynamics; nothing below imports this module.
 
 use crate::config::Limits;
 mod check;
