@@ -28,7 +28,7 @@ pub struct Limits {
     /// Deepest nesting of a formula (parentheses, calls, unary operators).
     pub max_formula_depth: usize,
     /// Wall-clock budget for the filter work of one request; `None` for no deadline.
-    #[serde(serialize_with = "ser_opt_secs")]
+    #[serde(rename = "deadline_secs", serialize_with = "ser_opt_secs")]
     pub deadline: Option<Duration>,
     /// Most requests doing filter work at once; more are answered 503.
     pub max_concurrency: usize,

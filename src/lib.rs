@@ -6,6 +6,11 @@
 //! consistency and observability; [`simulate`] makes truth and readings for tests and demos;
 //! [`job`] turns request bytes into response bytes for the web layer and the CLI.
 //!
+//! Imports point down: [`http`] → [`job`] → the estimation core ([`filter`],
+//! [`diagnostics`], [`dynamics`], [`simulate`]) → [`formula`], [`spec`]. The web layer
+//! knows no filter, the estimation core knows no request, and [`problem`] is the one error
+//! shape the request side shares.
+//!
 //! Estimates are advisory: validate them before any use in a safety function, and defer to
 //! local codes and licensed practice.
 

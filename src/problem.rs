@@ -28,7 +28,8 @@ impl FieldError {
     }
 }
 
-/// The kinds of failure, each with its status and title side by side.
+/// The kinds of failure. Each is described once, in [`ProblemKind::about`]: status,
+/// title, slug, what it means and what to do, side by side.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 #[non_exhaustive]
 pub enum ProblemKind {
@@ -54,43 +55,123 @@ pub enum ProblemKind {
     MethodNotAllowed,
     /// A bug: the details went to the log, not to the client.
     Internal,
+    /// The server is shutting down and takes no new work (`/readyz`).
+    ShuttingDown,
+    /// A stream's header line did not arrive in time.
+    HeaderTimeout,
+}
+
+/// The description of one kind of problem: what the answer carries and what the page at
+/// its `type` URI says.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct About {
+    /// HTTP status.
+    pub status: u16,
+    /// Short, fixed summary (the problem's `title`).
+    pub title: &'static str,
+    /// Stable identifier, the last segment of the `type` URI.
+    pub slug: &'static str,
+    /// What the problem means, for the page.
+    pub means: &'static str,
+    /// What the client can do about it, for the page.
+    pub to_do: &'static str,
 }
 
 impl ProblemKind {
+    /// Every kind, in the order the problem pages list them.
+    pub const ALL: &'static [ProblemKind] = &[
+        Self::MalformedJson,
+        Self::TooLarge,
+        Self::UnsupportedMediaType,
+        Self::InvalidRequest,
+        Self::NumericalFailure,
+        Self::DeadlineExceeded,
+        Self::Unauthorized,
+        Self::Overloaded,
+        Self::NotFound,
+        Self::MethodNotAllowed,
+        Self::Internal,
+        Self::ShuttingDown,
+        Self::HeaderTimeout,
+    ];
+
+    /// The one table of problem kinds.
+    pub fn about(self) -> About {
+        let (status, title, slug, means, to_do) = match self {
+            Self::MalformedJson => (400, "malformed JSON", "malformed-json",
+                "the body (or one line of a stream) is not JSON: a syntax error, a truncated document, or bytes that are not UTF-8",
+                "send one complete JSON document (or one per line on the stream); the detail names the line and column"),
+            Self::TooLarge => (413, "request too large", "too-large",
+                "the body, a stream line or the header line is larger than the server's limit",
+                "split the readings over several requests or use the stream endpoint; GET /v1/info lists the limits"),
+            Self::UnsupportedMediaType => (415, "unsupported media type", "unsupported-media-type",
+                "the Content-Type is not one the endpoint reads",
+                "send application/json to the batch endpoints and application/x-ndjson to the stream"),
+            Self::InvalidRequest => (422, "invalid request", "invalid-request",
+                "the JSON is well formed but does not describe a valid request",
+                "fix each field listed under errors; every pointer is an RFC 6901 JSON Pointer into the body"),
+            Self::NumericalFailure => (422, "numerical failure", "numerical-failure",
+                "the filter could not go on: a value became non-finite or a covariance lost its definiteness",
+                "check the model's formulas and units, give process noise to every state, or start from a prior with spread"),
+            Self::DeadlineExceeded => (503, "compute deadline exceeded", "deadline-exceeded",
+                "the work ran past the server's per-request compute deadline, or the client went away",
+                "send fewer readings per request, or resume from the last posterior in several requests"),
+            Self::Unauthorized => (401, "unauthorized", "unauthorized",
+                "the request carries no API key, or one the server does not accept",
+                "send Authorization: Bearer followed by a key the operator gave you"),
+            Self::Overloaded => (503, "overloaded", "overloaded",
+                "every job slot is busy; the request was turned away rather than queued",
+                "retry after the number of seconds in the Retry-After header"),
+            Self::NotFound => (404, "not found", "not-found",
+                "there is no route at this path",
+                "check the path against GET /openapi.json"),
+            Self::MethodNotAllowed => (405, "method not allowed", "method-not-allowed",
+                "the route exists but not for this HTTP method",
+                "check the method against GET /openapi.json"),
+            Self::Internal => (500, "internal error", "internal",
+                "the server failed in a way that is its own fault; the details went to its log",
+                "report it to the operator with the x-request-id of the answer"),
+            Self::ShuttingDown => (503, "shutting down", "shutting-down",
+                "the server is shutting down and takes no new work",
+                "send the request to another instance, or retry once the server is back"),
+            Self::HeaderTimeout => (408, "request timeout", "header-timeout",
+                "the stream's first line (model, filter, prior) did not arrive in time",
+                "send the header line as soon as the request starts; readings may follow at any pace"),
+        };
+        About {
+            status,
+            title,
+            slug,
+            means,
+            to_do,
+        }
+    }
+
     /// HTTP status and human title of this kind.
     pub fn status_title(self) -> (u16, &'static str) {
-        match self {
-            Self::MalformedJson => (400, "malformed JSON"),
-            Self::TooLarge => (413, "request too large"),
-            Self::UnsupportedMediaType => (415, "unsupported media type"),
-            Self::InvalidRequest => (422, "invalid request"),
-            Self::NumericalFailure => (422, "numerical failure"),
-            Self::DeadlineExceeded => (503, "compute deadline exceeded"),
-            Self::Unauthorized => (401, "unauthorized"),
-            Self::Overloaded => (503, "overloaded"),
-            Self::NotFound => (404, "not found"),
-            Self::MethodNotAllowed => (405, "method not allowed"),
-            Self::Internal => (500, "internal error"),
-        }
+        let a = self.about();
+        (a.status, a.title)
     }
 
     /// Stable identifier used in the problem's `type` URI.
     pub fn slug(self) -> &'static str {
-        match self {
-            Self::MalformedJson => "malformed-json",
-            Self::TooLarge => "too-large",
-            Self::UnsupportedMediaType => "unsupported-media-type",
-            Self::InvalidRequest => "invalid-request",
-            Self::NumericalFailure => "numerical-failure",
-            Self::DeadlineExceeded => "deadline-exceeded",
-            Self::Unauthorized => "unauthorized",
-            Self::Overloaded => "overloaded",
-            Self::NotFound => "not-found",
-            Self::MethodNotAllowed => "method-not-allowed",
-            Self::Internal => "internal",
-        }
+        self.about().slug
+    }
+
+    /// The kind whose slug is `slug`.
+    pub fn from_slug(slug: &str) -> Option<Self> {
+        Self::ALL.iter().copied().find(|k| k.slug() == slug)
+    }
+
+    /// The problem's `type`: a URI reference relative to the service (RFC 9457 section
+    /// 3.1.1), which the service itself serves as a short page.
+    pub fn type_uri(self) -> String {
+        format!("{PROBLEM_PAGES}/{}", self.slug())
     }
 }
+
+/// Where the problem pages are served; each kind's page is `{PROBLEM_PAGES}/{slug}`.
+pub const PROBLEM_PAGES: &str = "/problems";
 
 /// An RFC 9457 problem document.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -114,7 +195,7 @@ impl Problem {
     pub fn new(kind: ProblemKind, detail: impl Into<String>) -> Self {
         let (status, title) = kind.status_title();
         Self {
-            type_uri: format!("https://tacit.dev/problems/{}", kind.slug()),
+            type_uri: kind.type_uri(),
             title: title.to_string(),
             status,
             detail: detail.into(),

@@ -1,36 +1,35 @@
 //! Truth trajectories and noisy readings from a model, seeded, for integration tests and
-//! demos. Readings come out in exactly the form the estimate endpoint accepts.
+//! demos.
 //!
 //! The truth starts from a draw of the prior and moves like one ensemble member: the
 //! deterministic flow over each gap plus a draw of the interval's process noise
 //! N(0, Q(Δ)). Each sensor reads h(x) + L_R ε on its own schedule (`every` k-th time), with
 //! optional dropout and gross outliers (`scale` times the noise) for exercising the gate.
+//!
+//! Nothing here knows about requests or JSON: [`run`] hands each time's truth and readings
+//! to a [`Sink`]; `POST /v1/simulate` ([`crate::job`]) parses the request and writes them.
 
-use crate::config::Limits;
 use crate::filter::linalg::cholesky_psd;
 use crate::filter::predict::Predictor;
-use crate::job::write::num;
-use crate::job::{Done, RunStats};
-use crate::problem::{Problem, ProblemKind};
-use crate::spec::model::{Integration, Model};
-use crate::spec::reader::{array, index, number, positive, whole, Errors, Obj};
-use crate::spec::request;
-use crate::spec::time::{Instant, TimeMode};
-use crate::spec::validate;
+use crate::spec::model::{Integration, Model, Prior};
+use crate::spec::time::Instant;
 use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha20Rng;
 use rand_distr::StandardNormal;
-use serde_json::Value;
 use std::sync::atomic::{AtomicBool, Ordering};
 
 /// How one sensor is sampled.
 #[derive(Debug, Clone, Copy)]
-struct Schedule {
-    every: u64,
-    dropout: f64,
-    outlier_probability: f64,
-    outlier_scale: f64,
+pub struct Schedule {
+    /// Read at every `every`-th time (1: at each).
+    pub every: u64,
+    /// Probability that a due reading is left out.
+    pub dropout: f64,
+    /// Probability that a reading is a gross outlier.
+    pub outlier_probability: f64,
+    /// An outlier's noise is this many times the sensor's.
+    pub outlier_scale: f64,
 }
 
 impl Default for Schedule {
@@ -44,224 +43,93 @@ impl Default for Schedule {
     }
 }
 
-fn probability(v: &Value, ptr: &str, errs: &mut Errors) -> Option<f64> {
-    let p = number(v, ptr, errs)?;
-    if (0.0..=1.0).contains(&p) {
-        Some(p)
-    } else {
-        errs.push(ptr, format!("a probability lies in [0, 1], got {p}"));
-        None
-    }
+/// What to simulate: a checked model from a starting belief over a list of times.
+#[derive(Debug, Clone, Copy)]
+pub struct Plan<'a> {
+    /// The model that moves the truth and makes the readings.
+    pub model: &'a Model,
+    /// The truth's first state is drawn from this belief, at its time.
+    pub prior: &'a Prior,
+    /// The times of the truth and readings, not decreasing, none before the prior's.
+    pub times: &'a [Instant],
+    /// Input changes `(time, [(input index, value)])`, in time order.
+    pub inputs: &'a [(Instant, Vec<(usize, f64)>)],
+    /// One schedule per sensor, in model order.
+    pub schedules: &'a [Schedule],
+    /// Seed of the one random stream every draw comes from.
+    pub seed: u64,
 }
 
-fn schedules(v: Option<Value>, model: &Model, errs: &mut Errors) -> Vec<Schedule> {
-    let mut out = vec![Schedule::default(); model.sensors.len()];
-    let Some(v) = v else { return out };
-    let Some(obj) = Obj::new(&v, "/readings", errs) else {
-        return out;
-    };
-    for (name, sv) in obj.map {
-        let p = obj.at(name);
-        let Some(si) = model.sensor_index(name) else {
-            errs.push(&p, format!("unknown sensor '{name}'"));
-            continue;
-        };
-        let Some(so) = Obj::new(sv, &p, errs) else {
-            continue;
-        };
-        so.deny_unknown(&["every", "dropout", "outliers"], errs);
-        if let Some(e) = so.get("every") {
-            match whole(e, &so.at("every"), errs) {
-                Some(0) => errs.push(&so.at("every"), "every must be at least 1"),
-                Some(k) => out[si].every = k,
-                None => {}
-            }
-        }
-        if let Some(d) = so.get("dropout") {
-            out[si].dropout = probability(d, &so.at("dropout"), errs).unwrap_or(0.0);
-        }
-        if let Some(o) = so.object("outliers", errs) {
-            o.deny_unknown(&["probability", "scale"], errs);
-            if let Some(pv) = o.get("probability") {
-                out[si].outlier_probability =
-                    probability(pv, &o.at("probability"), errs).unwrap_or(0.0);
-            }
-            if let Some(sc) = o.get("scale") {
-                out[si].outlier_scale = positive(sc, &o.at("scale"), "scale", errs).unwrap_or(20.0);
-            }
-        }
-    }
-    out
+/// The truth and readings at one time.
+#[derive(Debug)]
+pub struct Sample<'a> {
+    /// Index into the plan's times.
+    pub index: usize,
+    /// The time.
+    pub t: &'a Instant,
+    /// The true state, in model order.
+    pub state: &'a [f64],
+    /// The readings taken, in sensor order: sensor index and its values.
+    pub readings: &'a [(usize, Vec<f64>)],
+    /// Inputs that changed at this time `(input index, value)`, each once.
+    pub changed: &'a [(usize, f64)],
 }
 
-fn times(
-    v: &Value,
-    mode: &mut Option<TimeMode>,
-    limits: &Limits,
-    errs: &mut Errors,
-) -> Vec<Instant> {
-    let ptr = "/times";
-    match v {
-        Value::Array(items) => {
-            if items.len() > limits.max_sim_times {
-                errs.push(
-                    ptr,
-                    format!(
-                        "{} times exceed the limit of {}",
-                        items.len(),
-                        limits.max_sim_times
-                    ),
-                );
-                return Vec::new();
-            }
-            let mut out: Vec<Instant> = Vec::with_capacity(items.len());
-            for (i, x) in items.iter().enumerate() {
-                if let Some(t) = validate::time_value(x, &index(ptr, i), mode, errs) {
-                    if out
-                        .last()
-                        .is_some_and(|p| p.is_after(&t, mode.unwrap_or(TimeMode::Seconds)))
-                    {
-                        errs.push(&index(ptr, i), "times must not decrease");
-                    }
-                    out.push(t);
-                }
-            }
-            out
-        }
-        Value::Object(_) => {
-            let Some(o) = Obj::new(v, ptr, errs) else {
-                return Vec::new();
-            };
-            o.deny_unknown(&["start", "step", "count"], errs);
-            let start = o
-                .required("start", errs)
-                .and_then(|s| validate::time_value(s, &o.at("start"), mode, errs));
-            let step = o
-                .required("step", errs)
-                .and_then(|s| positive(s, &o.at("step"), "step", errs));
-            let count = o
-                .required("count", errs)
-                .and_then(|c| whole(c, &o.at("count"), errs));
-            let (Some(start), Some(step), Some(count)) = (start, step, count) else {
-                return Vec::new();
-            };
-            if count as usize > limits.max_sim_times {
-                errs.push(
-                    &o.at("count"),
-                    format!("{count} times exceed the limit of {}", limits.max_sim_times),
-                );
-                return Vec::new();
-            }
-            // Grid times are counted in whole nanoseconds so 0.1 + 2·0.1 is 0.3, not
-            // 0.30000000000000004.
-            let step_ns = (step * 1e9).round() as i128;
-            let start_ns = match mode.unwrap_or(TimeMode::Seconds) {
-                TimeMode::Seconds => (start.secs * 1e9).round() as i128,
-                TimeMode::Stamp => start.nanos,
-            };
-            (0..count as i128)
-                .map(|k| match mode.unwrap_or(TimeMode::Seconds) {
-                    TimeMode::Seconds => Instant::seconds((start_ns + k * step_ns) as f64 / 1e9),
-                    TimeMode::Stamp => Instant::from_nanos(start_ns + k * step_ns),
-                })
-                .collect()
-        }
-        _ => {
-            errs.push(ptr, "times is a list of times or {start, step, count}");
-            Vec::new()
-        }
-    }
+/// Receives each time's [`Sample`], in order.
+pub trait Sink {
+    /// One time's truth and readings.
+    fn sample(&mut self, s: &Sample<'_>);
 }
 
-/// Input change points `[{"t", "inputs": {...}}]`, each as in a measurement line.
-fn input_schedule(
-    v: Option<Value>,
-    model: &Model,
-    mode: &mut Option<TimeMode>,
-    errs: &mut Errors,
-) -> Vec<(Instant, Vec<(usize, f64)>)> {
-    let Some(v) = v else { return Vec::new() };
-    let Some(items) = array(&v, "/inputs", errs) else {
-        return Vec::new();
-    };
-    let mut out = Vec::with_capacity(items.len());
-    for (i, it) in items.iter().enumerate() {
-        let p = index("/inputs", i);
-        let Some(o) = Obj::new(it, &p, errs) else {
-            continue;
-        };
-        o.deny_unknown(&["t", "inputs"], errs);
-        let t = o
-            .required("t", errs)
-            .and_then(|t| validate::time_value(t, &o.at("t"), mode, errs));
-        let mut vals = Vec::new();
-        if let Some(vo) = o
-            .required("inputs", errs)
-            .and_then(|x| Obj::new(x, &o.at("inputs"), errs))
-        {
-            for (k, x) in vo.map {
-                match model.input_index(k) {
-                    Some(ix) => {
-                        if let Some(x) = number(x, &vo.at(k), errs) {
-                            vals.push((ix, x));
-                        }
-                    }
-                    None => errs.push(&vo.at(k), format!("unknown input '{k}'")),
-                }
-            }
-        }
-        if let Some(t) = t {
-            out.push((t, vals));
-        }
-    }
-    out
+/// Why a simulation stopped.
+#[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
+pub enum SimulateError {
+    /// The cancel flag was set.
+    Cancelled,
+    /// The prior covariance has no square root.
+    PriorNotPsd,
+    /// Propagating the truth failed at time `index`.
+    Propagation {
+        /// Index into the plan's times.
+        index: usize,
+        /// What went wrong.
+        reason: String,
+    },
+    /// An interval's process noise covariance has no square root.
+    ProcessNoiseNotPsd,
+    /// A sensor's noise covariance has no square root (the model check rules this out).
+    SensorNoiseNotPsd,
+    /// A sensor's formula gave a value that is not finite.
+    NonFiniteReading {
+        /// The sensor's name.
+        sensor: String,
+        /// Index into the plan's times.
+        index: usize,
+    },
 }
 
-/// `POST /v1/simulate`.
-pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    let env = request::envelope(body)?;
-    let [model_v, prior_v, times_v] = request::sections([
-        (env.model, "model"),
-        (env.prior, "prior"),
-        (env.times, "times"),
-    ])?;
-    let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
-    let prior = validate::prior(&prior_v, "/prior", &model, None).map_err(Problem::invalid)?;
-    let mut errs = Errors::default();
-    let mut mode = Some(prior.mode);
-    let times = times(&times_v, &mut mode, limits, &mut errs);
-    let inputs = input_schedule(
-        request::optional_section(env.inputs)?,
-        &model,
-        &mut mode,
-        &mut errs,
-    );
-    let seed = match request::optional_section(env.seed)? {
-        Some(s) => whole(&s, "/seed", &mut errs).unwrap_or(0),
-        None => 0,
-    };
-    let sched = schedules(request::optional_section(env.readings)?, &model, &mut errs);
-    if !errs.is_empty() {
-        return Err(Problem::invalid(errs.into_vec()));
-    }
+/// Simulate `plan`, handing each time's sample to `sink`. `cancel` is polled every 256
+/// times. Every draw comes from one ChaCha20 stream seeded with `plan.seed`, in a fixed
+/// order, so the same plan gives the same samples on every platform.
+pub fn run(
+    plan: &Plan<'_>,
+    cancel: &AtomicBool,
+    sink: &mut impl Sink,
+) -> Result<(), SimulateError> {
+    let Plan {
+        model,
+        prior,
+        times,
+        inputs,
+        schedules: sched,
+        seed,
+    } = *plan;
     let mode = prior.mode;
-    if let Some(first) = times.first() {
-        if prior.t.is_after(first, mode) {
-            return Err(Problem::field(
-                "/times/0",
-                "simulated times must not come before the prior's time",
-            ));
-        }
-    }
     let (n, nu) = (model.n(), model.nu());
     let mut rng = ChaCha20Rng::seed_from_u64(seed);
     let mut l = vec![0.0; n * n];
-    cholesky_psd(prior.cov.as_slice(), &mut l, n).map_err(|_| {
-        Problem::field(
-            "/prior",
-            "the prior covariance is not positive semi-definite",
-        )
-    })?;
+    cholesky_psd(prior.cov.as_slice(), &mut l, n).map_err(|_| SimulateError::PriorNotPsd)?;
     let mut x = DMatrix::zeros(1, n);
     let z: Vec<f64> = (0..n).map(|_| rng.sample(StandardNormal)).collect();
     for i in 0..n {
@@ -273,14 +141,11 @@ pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Pr
         atol: 1e-12,
         fixed_step: None,
     };
-    let mut pred = Predictor::new(&model, integration, 1);
+    let mut pred = Predictor::new(model, integration, 1);
     let mut q = DMatrix::zeros(n, n);
     let mut u = prior.inputs.clone();
     let mut t = prior.t;
     let mut next_input = 0;
-    let writer = crate::job::write::Writer::new(&model, mode, Default::default());
-    let mut truth = Vec::with_capacity(times.len() * 32 * (n + 1));
-    let mut meas = Vec::with_capacity(times.len() * 48);
     let mut vars = vec![0.0; model.slot_count()];
     let mut ws: Vec<_> = model
         .sensors
@@ -289,30 +154,22 @@ pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Pr
         .collect();
     let mut zbuf = vec![0.0; model.sensors.iter().map(|s| s.dim).max().unwrap_or(1)];
     let mut lr = vec![0.0; zbuf.len() * zbuf.len()];
+    let mut readings: Vec<(usize, Vec<f64>)> = Vec::with_capacity(model.sensors.len());
     for (k, tk) in times.iter().enumerate() {
         if k % 256 == 0 && cancel.load(Ordering::Relaxed) {
-            return Err(Problem::new(
-                ProblemKind::DeadlineExceeded,
-                "the request was cancelled",
-            ));
+            return Err(SimulateError::Cancelled);
         }
         let dt = t.until(tk, mode);
         if dt > 0.0 {
             let noisy = pred
-                .predict_points(&model, &mut x, &[1.0], u.as_slice(), t.secs, dt, &mut q)
-                .map_err(|e| {
-                    Problem::new(
-                        ProblemKind::NumericalFailure,
-                        format!("simulation stopped at time index {k}: {e}"),
-                    )
+                .predict_points(model, &mut x, &[1.0], u.as_slice(), t.secs, dt, &mut q)
+                .map_err(|e| SimulateError::Propagation {
+                    index: k,
+                    reason: e.to_string(),
                 })?;
             if noisy {
-                cholesky_psd(q.as_slice(), &mut l, n).map_err(|_| {
-                    Problem::new(
-                        ProblemKind::NumericalFailure,
-                        "process noise covariance is not PSD",
-                    )
-                })?;
+                cholesky_psd(q.as_slice(), &mut l, n)
+                    .map_err(|_| SimulateError::ProcessNoiseNotPsd)?;
                 let z: Vec<f64> = (0..n).map(|_| rng.sample(StandardNormal)).collect();
                 for i in 0..n {
                     x[(0, i)] += (0..=i).map(|c| l[i + c * n] * z[c]).sum::<f64>();
@@ -320,7 +177,7 @@ pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Pr
             }
         }
         t = *tk;
-        // Input changes due by now take effect at this time (and are written on this line).
+        // Input changes due by now take effect at this time (and are reported with it).
         let mut changed: Vec<(usize, f64)> = Vec::new();
         while next_input < inputs.len() && !inputs[next_input].0.is_after(tk, mode) {
             for &(i, v) in &inputs[next_input].1 {
@@ -330,29 +187,10 @@ pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Pr
             }
             next_input += 1;
         }
-        if k > 0 {
-            truth.push(b',');
-            meas.push(b',');
-        }
-        truth.extend_from_slice(b"{\"t\":");
-        writer.time(&mut truth, tk);
-        truth.extend_from_slice(b",\"state\":{");
-        for i in 0..n {
-            if i > 0 {
-                truth.push(b',');
-            }
-            truth.extend_from_slice(&serde_json::to_vec(&model.states[i]).unwrap_or_default());
-            truth.push(b':');
-            num(&mut truth, x[(0, i)]);
-        }
-        truth.extend_from_slice(b"}}");
-        meas.extend_from_slice(b"{\"t\":");
-        writer.time(&mut meas, tk);
-        meas.extend_from_slice(b",\"values\":{");
         vars[..n].copy_from_slice(x.row(0).transpose().as_slice());
         vars[n..n + nu].copy_from_slice(u.as_slice());
         vars[n + nu] = tk.secs;
-        let mut first = true;
+        readings.clear();
         for (si, s) in model.sensors.iter().enumerate() {
             let sc = sched[si];
             if k as u64 % sc.every != 0 {
@@ -370,70 +208,29 @@ pub fn run(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Pr
             s.program
                 .eval(&vars[..slots], &mut ws[si], &mut zbuf[..s.dim]);
             cholesky_psd(s.r.as_slice(), &mut lr[..s.dim * s.dim], s.dim)
-                .map_err(|_| Problem::new(ProblemKind::Internal, "sensor noise not PSD"))?;
+                .map_err(|_| SimulateError::SensorNoiseNotPsd)?;
             let mult = if outlier { sc.outlier_scale } else { 1.0 };
-            if !first {
-                meas.push(b',');
-            }
-            first = false;
-            meas.extend_from_slice(&serde_json::to_vec(&s.name).unwrap_or_default());
-            meas.push(b':');
-            if s.dim > 1 {
-                meas.push(b'[');
-            }
+            let mut values = Vec::with_capacity(s.dim);
             for a in 0..s.dim {
-                if a > 0 {
-                    meas.push(b',');
-                }
                 let noise: f64 = (0..=a).map(|b| lr[a + b * s.dim] * eps[b]).sum();
                 let v = zbuf[a] + mult * noise;
                 if !v.is_finite() {
-                    return Err(Problem::new(
-                        ProblemKind::NumericalFailure,
-                        format!(
-                            "sensor '{}' gave a non-finite reading at time index {k}",
-                            s.name
-                        ),
-                    ));
+                    return Err(SimulateError::NonFiniteReading {
+                        sensor: s.name.clone(),
+                        index: k,
+                    });
                 }
-                num(&mut meas, v);
+                values.push(v);
             }
-            if s.dim > 1 {
-                meas.push(b']');
-            }
+            readings.push((si, values));
         }
-        meas.push(b'}');
-        if !changed.is_empty() {
-            meas.extend_from_slice(b",\"inputs\":{");
-            for (j, (i, v)) in changed.iter().enumerate() {
-                if j > 0 {
-                    meas.push(b',');
-                }
-                meas.extend_from_slice(&serde_json::to_vec(&model.inputs[*i]).unwrap_or_default());
-                meas.push(b':');
-                num(&mut meas, *v);
-            }
-            meas.push(b'}');
-        }
-        meas.push(b'}');
+        sink.sample(&Sample {
+            index: k,
+            t: tk,
+            state: x.as_slice(),
+            readings: &readings,
+            changed: &changed,
+        });
     }
-    let mut buf = Vec::with_capacity(truth.len() + meas.len() + 128);
-    buf.push(b'{');
-    writer.states(&mut buf);
-    buf.extend_from_slice(b",\"seed\":");
-    buf.extend_from_slice(itoa::Buffer::new().format(seed).as_bytes());
-    buf.extend_from_slice(b",\"truth\":[");
-    buf.extend_from_slice(&truth);
-    buf.extend_from_slice(b"],\"measurements\":[");
-    buf.extend_from_slice(&meas);
-    buf.extend_from_slice(b"]}");
-    Ok(Done {
-        body: buf,
-        stats: RunStats {
-            method: "",
-            steps: times.len() as u64,
-            updates: 0,
-            rejected: 0,
-        },
-    })
+    Ok(())
 }

@@ -137,7 +137,7 @@ fn crane_velocity_is_recovered_and_the_glitches_are_gated() {
     // (c/m = 0.14 /s) is slow next to the filter's bandwidth (q/r)^{1/4} ≈ 6.5 /s, and
     // sampling at Δt = 0.05 s moves the discrete value by some per cent, so the band is
     // wide: [0.6, 1.5] × the closed form.
-    let dropout = json(s.simulate)["readings"]["encoder"]["dropout"]
+    let dropout = json(s.simulate)["sampling"]["encoder"]["dropout"]
         .as_f64()
         .expect("dropout");
     let r_density = sigma * sigma * dt / (1.0 - dropout);
@@ -181,7 +181,7 @@ fn water_tower_draw_off_is_recovered_from_the_level() {
     let area = model_number(s, "/parameters/area");
     let settings = json(s.simulate);
     let dt = settings["times"]["step"].as_f64().expect("step");
-    let dropout = settings["readings"]["level_gauge"]["dropout"]
+    let dropout = settings["sampling"]["level_gauge"]["dropout"]
         .as_f64()
         .expect("dropout");
     let b = 1.0 / (1000.0 * area);
@@ -283,17 +283,31 @@ fn the_printout_and_json_carry_every_scenario() {
     assert!(v["scenarios"][0]["states"][1]["rmse"].is_f64());
 }
 
-#[test]
-fn the_minimal_client_reads_chunked_and_plain_answers() {
-    let plain = b"HTTP/1.1 200 OK\r\ncontent-length: 5\r\n\r\nhello";
-    assert_eq!(demo::parse_response(plain), Ok((200, b"hello".to_vec())));
-    // RFC 9112 §7.1: hexadecimal sizes, optional extensions, a zero-size last chunk.
-    let chunked =
-        b"HTTP/1.1 422 Unprocessable\r\nTransfer-Encoding: chunked\r\n\r\n4;x=y\r\nkiln\r\na\r\n and crane\r\n0\r\n\r\n";
-    assert_eq!(
-        demo::parse_response(chunked),
-        Ok((422, b"kiln and crane".to_vec()))
-    );
-    assert!(demo::parse_response(b"HTTP/1.1 200 OK\r\ncontent-length: 9\r\n\r\nshort").is_err());
-    assert!(demo::parse_response(b"garbage").is_err());
+#[tokio::test]
+async fn the_client_hands_back_a_200_body_and_the_detail_of_a_refusal() {
+    let server = crate::support::start_default().await;
+    let ok = demo::post(
+        server.addr,
+        "/v1/check",
+        "application/json",
+        CHECK_BODY.as_bytes(),
+    )
+    .await
+    .expect("a valid check is answered");
+    let v: Value = serde_json::from_slice(&ok).expect("JSON");
+    assert_eq!(v["states"][0], "level");
+    // A body that is not JSON is refused with 400 (API.md): the error names the status
+    // and carries the problem's detail, not the raw response.
+    let err = demo::post(server.addr, "/v1/check", "application/json", b"{\"model\":")
+        .await
+        .unwrap_err();
+    assert!(err.starts_with("http /v1/check answered 400: "), "{err}");
+    assert!(!err.contains("\"type\""), "{err}");
+    server.shutdown().await.expect("server stops");
 }
+
+/// A one-tank water tower: level read by a pressure gauge.
+const CHECK_BODY: &str = r#"{"model":{"states":["level"],
+    "dynamics":{"rates":{"level":"0"}},
+    "process_noise":{"density":{"level":0.01}},
+    "sensors":{"gauge":{"measures":"level","std":0.02}}}}"#;

@@ -13,6 +13,45 @@ fn config_with(f: impl FnOnce(&mut ServerConfig)) -> ServerConfig {
 }
 
 #[tokio::test]
+async fn every_problem_type_resolves_to_a_page_on_the_service() {
+    // RFC 9457 §3.1.1: a relative `type` resolves against the request's URI; the service
+    // serves a page there for each kind (API-v2.md).
+    let s = start_default().await;
+    let a = post(&s, "/v1/check", "application/json", "{\"model\": 1}").await;
+    assert_problem(&a, 422);
+    assert_eq!(a.body["type"], "/problems/invalid-request");
+    let res = s
+        .client
+        .get(s.url("/problems/invalid-request"))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(res.status(), 200);
+    assert_eq!(res.headers()["content-type"], "text/html; charset=utf-8");
+    let page = res.text().await.unwrap();
+    assert!(page.contains("<h1>invalid request</h1>"), "{page}");
+    assert!(page.contains("HTTP status 422"), "{page}");
+    for slug in ["shutting-down", "header-timeout", "overloaded", "internal"] {
+        let res = s
+            .client
+            .get(s.url(&format!("/problems/{slug}")))
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(res.status(), 200, "{slug}");
+    }
+    let a = answer(
+        s.client
+            .get(s.url("/problems/no-such-kind"))
+            .send()
+            .await
+            .unwrap(),
+    )
+    .await;
+    assert_problem(&a, 404);
+}
+
+#[tokio::test]
 async fn healthz_and_readyz_answer_200() {
     let s = start_default().await;
     let a = answer(s.client.get(s.url("/healthz")).send().await.unwrap()).await;
@@ -34,7 +73,7 @@ async fn info_reports_the_limits_in_force() {
     assert_eq!(a.status, 200);
     assert_eq!(a.content_type, "application/json");
     assert_eq!(a.body["limits"]["max_states"], 17);
-    assert_eq!(a.body["limits"]["deadline"], serde_json::Value::Null);
+    assert_eq!(a.body["limits"]["deadline_secs"], serde_json::Value::Null);
     assert_eq!(
         a.body["limits"]["max_members"],
         Limits::default().max_members

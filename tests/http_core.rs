@@ -1,9 +1,9 @@
 //! End-to-end behaviour that needs the estimation core: happy paths of every job route,
-//! streaming before the request ends, chunked = single, and bad requests with their
-//! statuses and pointers. Ignored until the core is merged; bodies follow API.md exactly.
+//! streaming before the request ends, chunked = single. Bad requests with their statuses
+//! and pointers are in `http_errors.rs`. Bodies follow API.md exactly.
 
 use crate::support::{
-    answer, assert_pointer, assert_problem, post, start, start_default, Answer, Server,
+    answer, assert_pointer, assert_problem, post, post_json, start, start_default,
 };
 use serde_json::{json, Value};
 use std::time::Duration;
@@ -71,20 +71,6 @@ fn estimate_body(method: &str, n: usize) -> Value {
     json!({"model": cv_model(), "filter": filter(method), "prior": prior(), "measurements": readings(n)})
 }
 
-async fn post_json(s: &Server, path: &str, body: &Value) -> Answer {
-    post(
-        s,
-        path,
-        "application/json",
-        serde_json::to_vec(body).unwrap(),
-    )
-    .await
-}
-
-async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Answer {
-    post(s, path, "application/json", body).await
-}
-
 #[tokio::test]
 async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
     let s = start_default().await;
@@ -113,6 +99,27 @@ async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
         }
     }
     assert_eq!(est[0]["innovations"]["encoder"]["accepted"], true);
+    // API-v2.md renames: the pre-update innovation and sqrt(S) carry their own names.
+    let keys: Vec<&str> = est[1]["innovations"]["pair"]
+        .as_object()
+        .unwrap()
+        .keys()
+        .map(String::as_str)
+        .collect();
+    assert_eq!(keys, ["innovation", "innovation_std", "nis", "accepted"]);
+    assert_eq!(
+        est[1]["innovations"]["pair"]["innovation"]
+            .as_array()
+            .unwrap()
+            .len(),
+        2
+    );
+    assert!(
+        est[0]["innovations"]["encoder"]["innovation_std"]
+            .as_f64()
+            .unwrap()
+            > 0.0
+    );
     assert_eq!(a.body["summary"]["steps"], 3);
     for k in ["mean", "dof", "lower_95", "upper_95", "verdict"] {
         assert!(a.body["summary"]["nis"].get(k).is_some(), "nis.{k}");
@@ -416,6 +423,34 @@ async fn simulated_measurements_are_accepted_by_estimate() {
 }
 
 #[tokio::test]
+async fn simulate_takes_its_schedule_as_sampling_and_refuses_the_v1_name() {
+    let s = start_default().await;
+    let mut body = json!({"model": cv_model(), "prior": prior(),
+        "times": {"start": 0.1, "step": 0.1, "count": 6}, "seed": 5,
+        "sampling": {"encoder": {"every": 2}}});
+    let a = post_json(&s, "/v1/simulate", &body).await;
+    assert_eq!(a.status, 200, "{}", a.text);
+    let read: Vec<bool> = a.body["measurements"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| m["values"].get("encoder").is_some())
+        .collect();
+    assert_eq!(read, [true, false, true, false, true, false]);
+    // API-v2.md renames `readings` to `sampling`; the old name is refused, naming the new.
+    body["readings"] = body["sampling"].take();
+    body.as_object_mut().unwrap().remove("sampling");
+    let a = post_json(&s, "/v1/simulate", &body).await;
+    assert_problem(&a, 422);
+    assert_pointer(&a, "/readings");
+    assert!(
+        a.body["detail"].as_str().unwrap().contains("'sampling'"),
+        "{}",
+        a.text
+    );
+}
+
+#[tokio::test]
 async fn check_reports_observability_by_sensor() {
     // Position readings of a constant-velocity trolley recover both states; speed
     // readings alone leave the position unobservable (rank of [H; HF], common practice).
@@ -427,6 +462,11 @@ async fn check_reports_observability_by_sensor() {
     });
     let a = post_json(&s, "/v1/check", &json!({"model": model})).await;
     assert_eq!(a.status, 200, "{}", a.text);
+    // API-v2.md: the length of the stacked measurement vector is `measurement_size`.
+    assert_eq!(
+        a.body["dimensions"],
+        json!({"states": 2, "inputs": 0, "measurement_size": 2})
+    );
     let o = &a.body["observability"];
     assert_eq!(o["rank"], 2);
     assert_eq!(o["dimension"], 2);
@@ -450,388 +490,7 @@ async fn filter_metrics_count_steps_by_method() {
         .await
         .unwrap();
     assert!(
-        text.contains(r#"tacit_filter_steps_total{method="ukf"} 12"#),
+        text.contains(r#"tacit_filter_steps_total{filter="ukf"} 12"#),
         "{text}"
     );
-}
-
-/// How a bad request's pointer is checked.
-enum Ptr {
-    /// Exactly this pointer among `errors`.
-    Is(&'static str),
-    /// Some pointer starting with this (where API.md leaves the depth open).
-    Under(&'static str),
-}
-
-fn base() -> Value {
-    json!({
-        "model": {
-            "states": ["pos", "vel"],
-            "inputs": ["force"],
-            "parameters": {"mass": 12.0},
-            "dynamics": {"rates": {"pos": "vel", "vel": "force/mass"}},
-            "process_noise": {"density": {"vel": 0.05}},
-            "sensors": {
-                "encoder": {"measures": "pos", "std": 0.002},
-                "pair": {"measures": ["pos", "vel"], "covariance": [[1e-4, 0], [0, 1e-2]]}
-            }
-        },
-        "filter": {"method": "ekf"},
-        "prior": {"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 1.0, "vel": 5.0}},
-        "measurements": [
-            {"t": 0.1, "values": {"encoder": 0.01}, "inputs": {"force": 2.5}},
-            {"t": 0.2, "values": {"encoder": 0.02}}
-        ]
-    })
-}
-
-fn with(f: impl FnOnce(&mut Value)) -> Value {
-    let mut b = base();
-    f(&mut b);
-    b
-}
-
-fn bad_requests() -> Vec<(&'static str, Value, u16, Ptr)> {
-    let long = format!("vel{}", " + vel".repeat(2000));
-    let deep = format!("{}vel{}", "(".repeat(500), ")".repeat(500));
-    vec![
-        (
-            "method missing",
-            with(|b| {
-                b["filter"] = json!({});
-            }),
-            422,
-            Ptr::Is("/filter/method"),
-        ),
-        (
-            "method unknown",
-            with(|b| b["filter"]["method"] = json!("particle")),
-            422,
-            Ptr::Is("/filter/method"),
-        ),
-        (
-            "method wrong type",
-            with(|b| b["filter"]["method"] = json!(3)),
-            422,
-            Ptr::Is("/filter/method"),
-        ),
-        (
-            "model missing",
-            with(|b| {
-                b.as_object_mut().unwrap().remove("model");
-            }),
-            422,
-            Ptr::Is("/model"),
-        ),
-        (
-            "states wrong type",
-            with(|b| b["model"]["states"] = json!("pos")),
-            422,
-            Ptr::Is("/model/states"),
-        ),
-        (
-            "measurements not a list",
-            with(|b| b["measurements"] = json!({"t": 1})),
-            422,
-            Ptr::Is("/measurements"),
-        ),
-        (
-            "values not an object",
-            with(|b| b["measurements"][0]["values"] = json!([1])),
-            422,
-            Ptr::Is("/measurements/0/values"),
-        ),
-        (
-            "unknown sensor",
-            with(|b| b["measurements"][0]["values"] = json!({"lidar": 1.0})),
-            422,
-            Ptr::Is("/measurements/0/values/lidar"),
-        ),
-        (
-            "unknown input",
-            with(|b| b["measurements"][0]["inputs"] = json!({"torque": 1.0})),
-            422,
-            Ptr::Is("/measurements/0/inputs/torque"),
-        ),
-        (
-            "reading wrong type",
-            with(|b| b["measurements"][1]["values"]["encoder"] = json!("high")),
-            422,
-            Ptr::Is("/measurements/1/values/encoder"),
-        ),
-        (
-            "vector reading wrong length",
-            with(|b| b["measurements"][0]["values"] = json!({"pair": [0.1, 0.2, 0.3]})),
-            422,
-            Ptr::Is("/measurements/0/values/pair"),
-        ),
-        (
-            "formula syntax error",
-            with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!("force +* mass")),
-            422,
-            Ptr::Is("/model/dynamics/rates/vel"),
-        ),
-        (
-            "formula unknown name",
-            with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!("force/mas")),
-            422,
-            Ptr::Is("/model/dynamics/rates/vel"),
-        ),
-        (
-            "formula unknown function",
-            with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!("cbrt(force)")),
-            422,
-            Ptr::Is("/model/dynamics/rates/vel"),
-        ),
-        (
-            "formula unbalanced",
-            with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!("(force/mass")),
-            422,
-            Ptr::Is("/model/dynamics/rates/vel"),
-        ),
-        (
-            "rate of an unknown state",
-            with(|b| b["model"]["dynamics"]["rates"]["height"] = json!("vel")),
-            422,
-            Ptr::Is("/model/dynamics/rates/height"),
-        ),
-        (
-            "two kinds of dynamics",
-            with(|b| b["model"]["dynamics"]["next"] = json!({"pos": "pos"})),
-            422,
-            Ptr::Under("/model/dynamics"),
-        ),
-        (
-            "huge formula",
-            with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!(long)),
-            422,
-            Ptr::Is("/model/dynamics/rates/vel"),
-        ),
-        (
-            "deeply nested formula",
-            with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!(deep)),
-            422,
-            Ptr::Is("/model/dynamics/rates/vel"),
-        ),
-        (
-            "sensor measures an unknown name",
-            with(|b| b["model"]["sensors"]["encoder"]["measures"] = json!("position")),
-            422,
-            Ptr::Is("/model/sensors/encoder/measures"),
-        ),
-        (
-            "negative sensor std",
-            with(|b| b["model"]["sensors"]["encoder"]["std"] = json!(-0.002)),
-            422,
-            Ptr::Is("/model/sensors/encoder/std"),
-        ),
-        (
-            "sensor covariance wrong size",
-            with(|b| b["model"]["sensors"]["pair"]["covariance"] = json!([[1e-4]])),
-            422,
-            Ptr::Is("/model/sensors/pair/covariance"),
-        ),
-        (
-            "sensor covariance not PSD",
-            with(|b| b["model"]["sensors"]["pair"]["covariance"] = json!([[1.0, 2.0], [2.0, 1.0]])),
-            422,
-            Ptr::Is("/model/sensors/pair/covariance"),
-        ),
-        (
-            "negative noise density",
-            with(|b| b["model"]["process_noise"]["density"]["vel"] = json!(-1.0)),
-            422,
-            Ptr::Is("/model/process_noise/density/vel"),
-        ),
-        (
-            "noise for an unknown state",
-            with(|b| b["model"]["process_noise"]["density"]["acc"] = json!(1.0)),
-            422,
-            Ptr::Is("/model/process_noise/density/acc"),
-        ),
-        (
-            "negative prior std",
-            with(|b| b["prior"]["std"]["pos"] = json!(-1.0)),
-            422,
-            Ptr::Is("/prior/std/pos"),
-        ),
-        (
-            "prior names an unknown state",
-            with(|b| b["prior"]["mean"]["height"] = json!(1.0)),
-            422,
-            Ptr::Is("/prior/mean/height"),
-        ),
-        (
-            "prior mean incomplete",
-            with(|b| {
-                b["prior"]["mean"].as_object_mut().unwrap().remove("vel");
-            }),
-            422,
-            Ptr::Under("/prior/mean"),
-        ),
-        (
-            "prior covariance not symmetric",
-            with(|b| {
-                b["prior"].as_object_mut().unwrap().remove("std");
-                b["prior"]["covariance"] = json!([[1.0, 0.5], [0.0, 1.0]]);
-            }),
-            422,
-            Ptr::Is("/prior/covariance"),
-        ),
-        (
-            "prior covariance not PSD",
-            with(|b| {
-                b["prior"].as_object_mut().unwrap().remove("std");
-                b["prior"]["covariance"] = json!([[1.0, 2.0], [2.0, 1.0]]);
-            }),
-            422,
-            Ptr::Is("/prior/covariance"),
-        ),
-        (
-            "prior covariance wrong size",
-            with(|b| {
-                b["prior"].as_object_mut().unwrap().remove("std");
-                b["prior"]["covariance"] = json!([[1.0]]);
-            }),
-            422,
-            Ptr::Is("/prior/covariance"),
-        ),
-        (
-            "times going backwards",
-            with(|b| b["measurements"][1]["t"] = json!(0.05)),
-            422,
-            Ptr::Is("/measurements/1/t"),
-        ),
-        (
-            "reading before the prior",
-            with(|b| b["measurements"][0]["t"] = json!(-1.0)),
-            422,
-            Ptr::Is("/measurements/0/t"),
-        ),
-        (
-            "time forms mixed",
-            with(|b| b["measurements"][1]["t"] = json!("2026-03-01T06:00:00Z")),
-            422,
-            Ptr::Is("/measurements/1/t"),
-        ),
-        (
-            "timestamp not RFC 3339",
-            with(|b| {
-                b["prior"]["t"] = json!("2026-03-01T06:00:00Z");
-                b["measurements"][0]["t"] = json!("yesterday");
-                b["measurements"][1]["t"] = json!("2026-03-01T06:00:02Z");
-            }),
-            422,
-            Ptr::Is("/measurements/0/t"),
-        ),
-        (
-            "members zero",
-            with(|b| {
-                b["filter"] = json!({"method": "enkf", "ensemble": {"members": 0, "seed": 1}})
-            }),
-            422,
-            Ptr::Is("/filter/ensemble/members"),
-        ),
-        (
-            "members absurd",
-            with(|b| {
-                b["filter"] =
-                    json!({"method": "enkf", "ensemble": {"members": 1_000_000_000u64, "seed": 1}})
-            }),
-            422,
-            Ptr::Is("/filter/ensemble/members"),
-        ),
-        (
-            "ensemble update unknown",
-            with(|b| b["filter"] = json!({"method": "enkf", "ensemble": {"update": "magic"}})),
-            422,
-            Ptr::Is("/filter/ensemble/update"),
-        ),
-        (
-            "gate probability above one",
-            with(|b| b["filter"]["gate"] = json!({"probability": 1.5})),
-            422,
-            Ptr::Is("/filter/gate/probability"),
-        ),
-        (
-            "max_step not positive",
-            with(|b| b["filter"]["integration"] = json!({"max_step": 0.0})),
-            422,
-            Ptr::Is("/filter/integration/max_step"),
-        ),
-        (
-            "output covariance unknown",
-            with(|b| b["output"] = json!({"covariance": "some"})),
-            422,
-            Ptr::Is("/output/covariance"),
-        ),
-    ]
-}
-
-#[tokio::test]
-async fn bad_requests_name_their_status_and_pointer() {
-    let s = start_default().await;
-    let cases = bad_requests();
-    assert!(cases.len() >= 30);
-    for (name, body, status, ptr) in cases {
-        let a = post_json(&s, "/v1/estimate", &body).await;
-        assert_eq!(a.status, status, "{name}: {}", a.text);
-        assert_problem(&a, status);
-        match ptr {
-            Ptr::Is(p) => assert_pointer(&a, p),
-            Ptr::Under(p) => assert!(
-                a.body["errors"].as_array().is_some_and(|es| es
-                    .iter()
-                    .any(|e| e["pointer"].as_str().is_some_and(|q| q.starts_with(p)))),
-                "{name}: expected a pointer under {p}: {}",
-                a.text
-            ),
-        }
-    }
-}
-
-#[tokio::test]
-async fn formula_errors_carry_their_column() {
-    let s = start_default().await;
-    // "force/mas": the unknown name starts at column 7 (1-based).
-    let body = with(|b| b["model"]["dynamics"]["rates"]["vel"] = json!("force/mas"));
-    let a = post_json(&s, "/v1/estimate", &body).await;
-    assert_problem(&a, 422);
-    let e = &a.body["errors"][0];
-    assert_eq!(e["pointer"], "/model/dynamics/rates/vel");
-    assert_eq!(e["column"], 7);
-}
-
-#[tokio::test]
-async fn syntax_errors_are_400() {
-    let s = start_default().await;
-    for body in [
-        "",
-        "{",
-        "{\"model\": }",
-        "[1, 2",
-        "{\"filter\": {\"method\": \"ekf\"}} trailing",
-        "nul",
-    ] {
-        let a = post_raw(&s, "/v1/estimate", body).await;
-        assert_problem(&a, 400);
-    }
-}
-
-#[tokio::test]
-async fn every_job_route_refuses_bad_input_without_500() {
-    let s = start_default().await;
-    for path in ["/v1/estimate", "/v1/smooth", "/v1/simulate", "/v1/check"] {
-        for body in [
-            json!(null),
-            json!([]),
-            json!({}),
-            json!({"model": 1}),
-            json!({"model": {"states": []}}),
-        ] {
-            let a = post_json(&s, path, &body).await;
-            assert!((400..500).contains(&a.status), "{path} {body}: {}", a.text);
-            assert_problem(&a, a.status);
-        }
-    }
 }

@@ -1,6 +1,7 @@
 //! Running one job off the async executor: take a job slot or shed with 503, run the work
-//! in `spawn_blocking` (or, for a small body, on the compute lane), stop it when the client goes away, and turn a panic into a logged
-//! 500 instead of a dropped connection.
+//! in `spawn_blocking` (or, for a small body, on the compute lane) inside the request's
+//! tracing span, stop it when the client goes away, and turn a panic into a logged 500
+//! instead of a dropped connection.
 
 use super::lane::SMALL_BODY;
 use super::problem::{internal, overloaded, problem_response, public};
@@ -115,7 +116,11 @@ where
     let guard = CancelOnDrop::new();
     let cancel = guard.flag();
     let st = state.clone();
+    // The request's span goes with the work to its thread, so a log line written there
+    // carries the request id, as the stream's worker does.
+    let span = tracing::Span::current();
     let job = move || {
+        let _entered = span.enter();
         // The slot is released only when the work really stops, so a disconnected
         // client's job still counts against the limit until it has noticed the flag.
         let _slot = slot;
@@ -189,5 +194,61 @@ pub fn panic_message(payload: &(dyn Any + Send)) -> String {
         s.clone()
     } else {
         "(non-text panic payload)".to_string()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::http::ServerConfig;
+    use std::sync::Mutex;
+    use tracing::Instrument;
+    use tracing_subscriber::layer::{Context, SubscriberExt};
+    use tracing_subscriber::registry::LookupSpan;
+    use tracing_subscriber::Layer;
+
+    /// The span each probe event was emitted in, by name.
+    static SEEN: Mutex<Vec<Option<String>>> = Mutex::new(Vec::new());
+
+    /// Records the current span of every event with the probe's target.
+    struct Spans;
+
+    impl<S: tracing::Subscriber + for<'a> LookupSpan<'a>> Layer<S> for Spans {
+        fn on_event(&self, e: &tracing::Event<'_>, ctx: Context<'_, S>) {
+            if e.metadata().target() == "tacit_job_span_probe" {
+                let name = ctx.lookup_current().map(|s| s.name().to_string());
+                SEEN.lock().unwrap_or_else(|p| p.into_inner()).push(name);
+            }
+        }
+    }
+
+    #[tokio::test]
+    async fn a_job_logs_inside_the_requests_span_on_either_path() {
+        // A log line written by the job must carry the request's span (and so its id)
+        // whether the job ran on the compute lane or on the blocking pool. Other lib
+        // tests install no subscriber, so this one may take the process-wide slot.
+        let _ = tracing::subscriber::set_global_default(tracing_subscriber::registry().with(Spans));
+        let state = AppState::new(ServerConfig::default());
+        // A body of 0 bytes goes to the lane, one of usize::MAX to spawn_blocking.
+        for body_len in [0, usize::MAX] {
+            let res = run_job_sized(&state, "/probe", body_len, |_, _| {
+                tracing::info!(target: "tacit_job_span_probe", "inside the job");
+                Ok(Done {
+                    body: b"{}".to_vec(),
+                    stats: RunStats::default(),
+                })
+            })
+            .instrument(tracing::info_span!("probe_request"))
+            .await;
+            assert_eq!(res.status(), 200);
+        }
+        let seen = SEEN.lock().unwrap_or_else(|p| p.into_inner()).clone();
+        assert_eq!(
+            seen,
+            [
+                Some("probe_request".to_string()),
+                Some("probe_request".to_string())
+            ]
+        );
     }
 }

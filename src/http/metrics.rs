@@ -1,21 +1,18 @@
 //! Prometheus metrics of one app: requests by route and status, request durations, filter
-//! steps by method, rejected readings, shed requests.
+//! steps by filter (label `filter`: `method` is the HTTP method on the http series),
+//! rejected readings, shed requests.
 //!
 //! Each app owns its recorder and records through `metrics::with_local_recorder`, so
 //! several apps in one process (the integration tests start many) never fight over the
-//! process-wide recorder, and each `/metrics` shows only its own app.
+//! process-wide recorder, and each `/metrics` shows only its own app. The timing of each
+//! request is [`super::middleware::metrics`].
 
-use super::state::AppState;
 use crate::job::RunStats;
-use axum::extract::{MatchedPath, Request, State};
 use axum::http::Method;
-use axum::middleware::Next;
-use axum::response::Response;
 use metrics::{Counter, Histogram};
 use metrics_exporter_prometheus::{PrometheusBuilder, PrometheusHandle, PrometheusRecorder};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
-use std::time::Instant;
 
 /// Bucket bounds of the duration histogram, seconds: from sub-millisecond single steps to
 /// the default one-minute deadline.
@@ -43,9 +40,9 @@ struct RequestSeries {
     duration: Histogram,
 }
 
-/// The filter counters of one method.
+/// The filter counters of one filter.
 struct RunSeries {
-    method: &'static str,
+    filter: &'static str,
     steps: Counter,
     updates: Counter,
     rejected: Counter,
@@ -98,7 +95,7 @@ impl Metrics {
                         metrics::counter!("tacit_http_requests_total",
                             "route" => r.clone(), "method" => m.clone(), "status" => status.to_string()),
                         metrics::histogram!("tacit_http_request_duration_seconds",
-                            "route" => r, "method" => m),
+                            "route" => r, "filter" => m),
                     )
                 });
                 series.push(RequestSeries {
@@ -122,19 +119,19 @@ impl Metrics {
 
     /// Add one job's filter work.
     pub fn record_run(&self, stats: &RunStats) {
-        if stats.method.is_empty() {
+        if stats.filter.is_empty() {
             return;
         }
-        let m = stats.method;
+        let m = stats.filter;
         let mut runs = self.runs.lock().unwrap_or_else(|p| p.into_inner());
-        let i = match runs.iter().position(|r| r.method == m) {
+        let i = match runs.iter().position(|r| r.filter == m) {
             Some(i) => i,
             None => {
                 let series = self.with(|| RunSeries {
-                    method: m,
-                    steps: metrics::counter!("tacit_filter_steps_total", "method" => m),
-                    updates: metrics::counter!("tacit_filter_updates_total", "method" => m),
-                    rejected: metrics::counter!("tacit_filter_rejected_readings_total", "method" => m),
+                    filter: m,
+                    steps: metrics::counter!("tacit_filter_steps_total", "filter" => m),
+                    updates: metrics::counter!("tacit_filter_updates_total", "filter" => m),
+                    rejected: metrics::counter!("tacit_filter_rejected_readings_total", "filter" => m),
                 });
                 runs.push(series);
                 runs.len() - 1
@@ -155,20 +152,4 @@ impl Metrics {
     pub fn render(&self) -> String {
         self.handle.render()
     }
-}
-
-/// Middleware: time each request and count it under its route template (not its raw
-/// path, which would let clients create unbounded label values).
-pub async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
-    let route = req.extensions().get::<MatchedPath>().cloned();
-    let method = req.method().clone();
-    let start = Instant::now();
-    let res = next.run(req).await;
-    state.metrics().record_request(
-        route.as_ref().map_or("unmatched", MatchedPath::as_str),
-        &method,
-        res.status().as_u16(),
-        start.elapsed().as_secs_f64(),
-    );
-    res
 }

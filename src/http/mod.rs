@@ -4,12 +4,13 @@
 //! nothing here knows about filters. `mod.rs` holds only module lines and re-exports.
 
 mod app;
-mod auth;
 mod config;
 mod extract;
 mod jobs;
+mod keys;
 mod lane;
 mod metrics;
+mod middleware;
 mod ndjson;
 mod openapi;
 mod problem;
@@ -18,10 +19,10 @@ mod serve;
 mod state;
 
 pub use app::{app, layered};
-pub use auth::ApiKeys;
 pub use config::ServerConfig;
 pub use extract::JsonBody;
 pub use jobs::{run_job, run_job_sized, Answer, CancelOnDrop};
+pub use keys::ApiKeys;
 pub use metrics::Metrics;
 pub use ndjson::{LineError, LineSplitter};
 pub use openapi::{openapi_json, OPENAPI_YAML};

@@ -1,8 +1,8 @@
 //! What every handler shares: the configuration, the job slots, the metrics and the
 //! readiness flag. Cheap to clone (one `Arc`); nothing here remembers a request.
 
-use super::auth::ApiKeys;
 use super::config::ServerConfig;
+use super::keys::ApiKeys;
 use super::lane::Lane;
 use super::metrics::Metrics;
 use crate::config::Limits;

@@ -3,10 +3,26 @@
 //!
 //! Each entry point parses the request once into a checked model, runs the work and writes
 //! the JSON answer. Failures are [`Problem`]s with JSON Pointers into the request.
+//!
+//! Where each request goes: `setup.rs` parses the sections every filtering request has;
+//! `filtering.rs` is the batch estimate and smooth; `plain.rs` is the path of one line
+//! (parse, filter step, record), which `pipeline.rs` runs with parsing and writing on two
+//! more threads for large batches; `smooth.rs` adds the backward pass; `stream.rs` is the
+//! stream session; `check.rs` and `simulate.rs` answer `/v1/check` and `/v1/simulate` over
+//! [`crate::diagnostics::observability`] and [`crate::simulate`]; `records.rs` and
+//! `write.rs` turn estimates into the JSON bytes. Modules here call down into the filters,
+//! diagnostics and dynamics; nothing below imports this module.
 
 use crate::config::Limits;
+mod check;
 mod filtering;
+mod pipeline;
+mod plain;
 pub mod records;
+mod setup;
+mod simulate;
+mod smooth;
+mod stream;
 pub mod write;
 
 use crate::problem::Problem;
@@ -16,7 +32,7 @@ use std::sync::atomic::AtomicBool;
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub struct RunStats {
     /// `ekf`, `ukf`, `enkf`, or `""` for requests that run no filter.
-    pub method: &'static str,
+    pub filter: &'static str,
     /// Estimates produced (one per measurement line).
     pub steps: u64,
     /// Updates applied (lines with at least one accepted reading).
@@ -100,12 +116,12 @@ pub fn smooth_pieces(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Resul
 
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    crate::simulate::run(body, limits, cancel)
+    simulate::simulate(body, limits, cancel)
 }
 
 /// `POST /v1/check`: `{model, prior?}`.
 pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
-    crate::diagnostics::observability::check_request(body, limits)
+    check::check(body, limits)
 }
 
 /// `GET /v1/info`: version, methods and the limits in force.
@@ -122,7 +138,7 @@ pub fn info(limits: &Limits) -> serde_json::Value {
 /// arrive one line at a time and each answer line is appended to the caller's buffer.
 /// Memory does not grow with the number of lines.
 pub struct StreamSession {
-    inner: filtering::Stream,
+    inner: stream::Stream,
 }
 
 impl StreamSession {
@@ -138,7 +154,7 @@ impl StreamSession {
                 "the header line is too large",
             ));
         }
-        filtering::Stream::start(header, limits).map(|inner| Self { inner })
+        stream::Stream::start(header, limits).map(|inner| Self { inner })
     }
 
     /// Apply one measurement line (1-based `line_no` for error pointers) and append its

@@ -20,7 +20,8 @@ struct Head {
     checks: usize,
 }
 
-/// One sensor's innovation; its residuals and variances follow the step's numbers.
+/// One sensor's innovation check; its innovation vector and the diagonal of S follow the
+/// step's numbers.
 #[derive(Debug, Clone, Copy)]
 struct Check {
     sensor: usize,
@@ -37,7 +38,7 @@ pub struct Records {
     heads: Vec<Head>,
     checks: Vec<Check>,
     /// Per step: the mean (n), the covariance by columns (n²), then per check its
-    /// residuals (dim) and the diagonal of S (dim).
+    /// innovations (dim) and the diagonal of S (dim).
     nums: Vec<f64>,
 }
 
@@ -129,14 +130,14 @@ impl Records {
             at += n + n * n;
             writer.estimate_head(buf, &h.t, mean, cov);
             for (j, c) in self.checks[ck..ck + h.checks].iter().enumerate() {
-                let residuals = &self.nums[at..at + c.dim];
+                let innovations = &self.nums[at..at + c.dim];
                 let variances = &self.nums[at + c.dim..at + 2 * c.dim];
                 at += 2 * c.dim;
                 writer.innovation(
                     buf,
                     j == 0,
                     c.sensor,
-                    residuals.iter().copied(),
+                    innovations.iter().copied(),
                     variances.iter().copied(),
                     c.nis,
                     c.accepted,

@@ -241,16 +241,16 @@ impl Writer {
         buf: &mut Vec<u8>,
         first: bool,
         sensor: usize,
-        residuals: impl ExactSizeIterator<Item = f64>,
+        innovations: impl ExactSizeIterator<Item = f64>,
         variances: impl ExactSizeIterator<Item = f64>,
         nis: f64,
         accepted: bool,
     ) {
         buf.extend_from_slice(if first { b",\"innovations\":{" } else { b"," });
         buf.extend_from_slice(&self.sensor_keys[sensor]);
-        buf.extend_from_slice(b"{\"residual\":");
-        self.scalar_or_list(buf, residuals);
-        buf.extend_from_slice(b",\"std\":");
+        buf.extend_from_slice(b"{\"innovation\":");
+        self.scalar_or_list(buf, innovations);
+        buf.extend_from_slice(b",\"innovation_std\":");
         self.scalar_or_list(buf, variances.map(|v| v.max(0.0).sqrt()));
         buf.extend_from_slice(b",\"nis\":");
         num(buf, nis);

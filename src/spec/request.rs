@@ -35,7 +35,10 @@ pub struct Envelope<'a> {
     /// Simulation seed.
     #[serde(borrow, default)]
     pub seed: Option<&'a RawValue>,
-    /// Simulation reading schedule per sensor.
+    /// Simulation sampling schedule per sensor.
+    #[serde(borrow, default)]
+    pub sampling: Option<&'a RawValue>,
+    /// The v1 name of `sampling`, kept only to refuse it with a message naming the new one.
     #[serde(borrow, default)]
     pub readings: Option<&'a RawValue>,
 }

@@ -80,7 +80,7 @@ fn ekf_gain_converges_to_kalata_alpha_beta() {
 fn innovation_std_converges_to_the_alpha_beta_value() {
     // At steady state α = P⁻₁₁ / S and S = P⁻₁₁ + σ_z², so the innovation's standard
     // deviation is σ_z / √(1 − α) (follows from Kalata 1984's α; common practice). The
-    // answer's `innovations.*.std` must converge to it, for every filter's update path.
+    // answer's `innovations.*.innovation_std` must converge to it, for every filter's update path.
     for method in ["ekf", "ukf"] {
         let (t, sigma_a, sigma_z) = (0.5, 0.3, 0.2);
         let (alpha, _) = kalata(sigma_a * t * t / sigma_z);

@@ -145,9 +145,14 @@ pub fn assert_problem(a: &Answer, status: u16) {
     assert_eq!(a.status, status, "status of {}", a.text);
     assert_eq!(a.content_type, "application/problem+json", "{}", a.text);
     assert_eq!(a.body["status"], status, "{}", a.text);
-    assert!(a.body["type"]
-        .as_str()
-        .is_some_and(|t| t.starts_with("https://")));
+    // API-v2.md: a relative reference the service serves as a page (RFC 9457 §3.1.1).
+    assert!(
+        a.body["type"]
+            .as_str()
+            .is_some_and(|t| t.starts_with("/problems/")),
+        "{}",
+        a.text
+    );
     assert!(a.body["title"].as_str().is_some_and(|t| !t.is_empty()));
     let detail = a.body["detail"].as_str().unwrap_or("");
     assert!(!detail.is_empty(), "problem without detail: {}", a.text);
@@ -167,4 +172,20 @@ pub fn assert_pointer(a: &Answer, pointer: &str) {
         "expected an error at {pointer:?}, got {}",
         a.text
     );
+}
+
+/// POST a JSON value to `path` and read the answer whole.
+pub async fn post_json(s: &Server, path: &str, body: &serde_json::Value) -> Answer {
+    post(
+        s,
+        path,
+        "application/json",
+        serde_json::to_vec(body).unwrap(),
+    )
+    .await
+}
+
+/// POST raw bytes as `application/json` (for bodies that are not JSON).
+pub async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Answer {
+    post(s, path, "application/json", body).await
 }

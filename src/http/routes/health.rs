@@ -4,7 +4,7 @@
 use super::route::{mount, Route};
 use crate::http::problem::problem_response;
 use crate::http::state::AppState;
-use crate::problem::Problem;
+use crate::problem::{Problem, ProblemKind};
 use axum::extract::State;
 use axum::response::{IntoResponse, Response};
 use axum::routing::get;
@@ -47,11 +47,8 @@ async fn readyz(State(state): State<AppState>) -> Response {
 }
 
 fn shutting_down() -> Problem {
-    Problem {
-        type_uri: "https://tacit.dev/problems/shutting-down".to_string(),
-        title: "shutting down".to_string(),
-        status: 503,
-        detail: "the server is shutting down and takes no new work".to_string(),
-        errors: Vec::new(),
-    }
+    Problem::new(
+        ProblemKind::ShuttingDown,
+        "the server is shutting down and takes no new work",
+    )
 }

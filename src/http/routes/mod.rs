@@ -7,10 +7,13 @@ mod info;
 mod metrics;
 mod model;
 mod openapi;
+mod problems;
 mod route;
 mod stream;
+mod table;
 
-pub use route::{all, mount, Route, ALL};
+pub use route::{mount, Route};
+pub use table::{all, ALL};
 
 /// The route groups by name, for callers that want one group's router alone.
 pub mod groups {
@@ -20,5 +23,6 @@ pub mod groups {
     pub use super::metrics::router as metrics;
     pub use super::model::router as model;
     pub use super::openapi::router as openapi;
+    pub use super::problems::router as problems;
     pub use super::stream::router as stream;
 }

@@ -1,7 +1,5 @@
-//! The route table: method, path and handler of every route, in one place.
-//!
-//! The router is built by walking [`ALL`], and the OpenAPI test walks the same list, so a
-//! route cannot be served without being documented, nor documented without being served.
+//! What one route is (method, path, handler) and how a list of them becomes a router.
+//! Every route module builds on this; the table of all of them is [`super::table`].
 
 use crate::http::state::AppState;
 use axum::routing::MethodRouter;
@@ -23,22 +21,6 @@ impl std::fmt::Debug for Route {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         write!(f, "{} {}", self.method, self.path)
     }
-}
-
-/// Every route group of the service.
-pub const ALL: &[&[Route]] = &[
-    super::health::ROUTES,
-    super::metrics::ROUTES,
-    super::openapi::ROUTES,
-    super::info::ROUTES,
-    super::estimate::ROUTES,
-    super::stream::ROUTES,
-    super::model::ROUTES,
-];
-
-/// Every route, flattened.
-pub fn all() -> impl Iterator<Item = &'static Route> {
-    ALL.iter().flat_map(|g| g.iter())
 }
 
 /// A router serving `routes` (without layers or state).

@@ -337,16 +337,13 @@ fn line_too_long(e: LineError) -> Problem {
 }
 
 fn header_timeout() -> Problem {
-    Problem {
-        type_uri: "https://tacit.dev/problems/header-timeout".to_string(),
-        title: "request timeout".to_string(),
-        status: 408,
-        detail: format!(
+    Problem::new(
+        ProblemKind::HeaderTimeout,
+        format!(
             "no header line arrived within {} s of the request's start",
             HEADER_WAIT.as_secs()
         ),
-        errors: Vec::new(),
-    }
+    )
 }
 
 fn unreadable() -> Problem {

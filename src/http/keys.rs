@@ -1,14 +1,6 @@
-//! Optional bearer keys on `/v1/*`. Health, readiness and metrics stay open so probes and
-//! scrapers need no secret. Keys are compared in constant time per key so a wrong key's
-//! answer time does not reveal how much of it matched.
-
-use super::problem::problem_response;
-use super::state::AppState;
-use crate::problem::{Problem, ProblemKind};
-use axum::extract::{Request, State};
-use axum::http::header;
-use axum::middleware::Next;
-use axum::response::Response;
+//! The accepted bearer keys and their constant-time comparison. Keys are compared in
+//! constant time per key so a wrong key's answer time does not reveal how much of it
+//! matched. The check on each request is [`super::middleware::auth`].
 
 /// The set of accepted keys (possibly empty: then every request passes).
 #[derive(Clone, Default)]
@@ -77,33 +69,6 @@ fn ct_eq(a: &[u8], b: &[u8]) -> bool {
         diff |= x ^ y;
     }
     std::hint::black_box(diff) == 0
-}
-
-/// Middleware: 401 problem+json unless the request carries an accepted bearer key.
-pub async fn require_key(State(state): State<AppState>, req: Request, next: Next) -> Response {
-    let keys = state.keys();
-    if keys.is_empty() {
-        return next.run(req).await;
-    }
-    let presented = req
-        .headers()
-        .get(header::AUTHORIZATION)
-        .and_then(|v| v.to_str().ok())
-        .and_then(|v| {
-            let (scheme, rest) = v.trim().split_once(' ')?;
-            scheme.eq_ignore_ascii_case("bearer").then(|| rest.trim())
-        });
-    match presented {
-        Some(k) if keys.accepts(k.as_bytes()) => next.run(req).await,
-        Some(_) => problem_response(&Problem::new(
-            ProblemKind::Unauthorized,
-            "the API key is not valid",
-        )),
-        None => problem_response(&Problem::new(
-            ProblemKind::Unauthorized,
-            "an API key is required: send Authorization: Bearer <key>",
-        )),
-    }
 }
 
 #[cfg(test)]

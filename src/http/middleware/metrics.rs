@@ -1,0 +1,23 @@
+//! Middleware: time and count every request into the app's [`crate::http::Metrics`].
+
+use crate::http::state::AppState;
+use axum::extract::{MatchedPath, Request, State};
+use axum::middleware::Next;
+use axum::response::Response;
+use std::time::Instant;
+
+/// Middleware: time each request and count it under its route template (not its raw
+/// path, which would let clients create unbounded label values).
+pub async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
+    let route = req.extensions().get::<MatchedPath>().cloned();
+    let method = req.method().clone();
+    let start = Instant::now();
+    let res = next.run(req).await;
+    state.metrics().record_request(
+        route.as_ref().map_or("unmatched", MatchedPath::as_str),
+        &method,
+        res.status().as_u16(),
+        start.elapsed().as_secs_f64(),
+    );
+    res
+}

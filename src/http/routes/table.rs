@@ -1,0 +1,24 @@
+//! The route table: every route group of the service, in one place.
+//!
+//! The router is built by walking [`ALL`], and the OpenAPI test walks the same list, so a
+//! route cannot be served without being documented, nor documented without being served.
+
+use super::route::Route;
+use super::{estimate, health, info, metrics, model, openapi, problems, stream};
+
+/// Every route group of the service.
+pub const ALL: &[&[Route]] = &[
+    health::ROUTES,
+    metrics::ROUTES,
+    openapi::ROUTES,
+    problems::ROUTES,
+    info::ROUTES,
+    estimate::ROUTES,
+    stream::ROUTES,
+    model::ROUTES,
+];
+
+/// Every route, flattened.
+pub fn all() -> impl Iterator<Item = &'static Route> {
+    ALL.iter().flat_map(|g| g.iter())
+}

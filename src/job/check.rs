@@ -1,0 +1,185 @@
+//! `POST /v1/check`: parse the model (and prior, if any), linearise it at the prior mean
+//! and answer which states the sensors can recover, with warnings about sensors and
+//! inputs that nothing depends on. The rank test itself is
+//! [`crate::diagnostics::observability`].
+
+use crate::config::Limits;
+use crate::diagnostics::observability::{analyse, jacobians, Observability};
+use crate::job::{Done, RunStats};
+use crate::problem::Problem;
+use crate::spec::model::Dynamics;
+use crate::spec::request;
+use crate::spec::validate;
+use nalgebra::{DMatrix, DVector};
+use serde::Serialize;
+
+#[derive(Serialize)]
+struct CheckResponse {
+    states: Vec<String>,
+    inputs: Vec<String>,
+    sensors: Vec<SensorInfo>,
+    dimensions: Dimensions,
+    observability: Full,
+    warnings: Vec<String>,
+}
+
+#[derive(Serialize)]
+struct SensorInfo {
+    name: String,
+    dimension: usize,
+}
+
+#[derive(Serialize)]
+struct Dimensions {
+    states: usize,
+    inputs: usize,
+    measurement_size: usize,
+}
+
+#[derive(Serialize)]
+struct Full {
+    rank: usize,
+    dimension: usize,
+    unobservable: Vec<String>,
+    at: std::collections::BTreeMap<String, f64>,
+    by_sensor: indexmap_like::Ordered,
+}
+
+mod indexmap_like {
+    use super::Observability;
+    use serde::ser::SerializeMap;
+    use serde::{Serialize, Serializer};
+
+    /// Sensor name → observability, serialised in model order.
+    pub struct Ordered(pub Vec<(String, Observability)>);
+
+    impl Serialize for Ordered {
+        fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+            let mut m = s.serialize_map(Some(self.0.len()))?;
+            for (k, v) in &self.0 {
+                m.serialize_entry(
+                    k,
+                    &SensorObs {
+                        rank: v.rank,
+                        unobservable: &v.unobservable,
+                    },
+                )?;
+            }
+            m.end()
+        }
+    }
+
+    #[derive(Serialize)]
+    struct SensorObs<'a> {
+        rank: usize,
+        unobservable: &'a [String],
+    }
+}
+
+/// `POST /v1/check`.
+pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
+    let env = request::envelope(body)?;
+    let model_v = request::section(env.model, "model")?;
+    let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
+    let (x, u, t) = match request::optional_section(env.prior)? {
+        Some(pv) => {
+            let p = validate::prior(&pv, "/prior", &model, None).map_err(Problem::invalid)?;
+            (p.mean, p.inputs, p.t.secs)
+        }
+        None => {
+            let mut x = DVector::zeros(model.n());
+            for (k, p) in model.estimated.iter().enumerate() {
+                x[model.n_model + k] = p.initial;
+            }
+            (x, DVector::zeros(model.nu()), 0.0)
+        }
+    };
+    let (f, hs) = jacobians(&model, &x, &u, t);
+    let mut warnings = Vec::new();
+    if !f
+        .iter()
+        .chain(hs.iter().flat_map(|h| h.iter()))
+        .all(|v| v.is_finite())
+    {
+        warnings.push("some derivatives are not finite at the linearisation point; give a prior mean where the formulas are smooth".to_string());
+    }
+    let mut stacked = DMatrix::zeros(hs.iter().map(|h| h.nrows()).sum(), model.n());
+    let mut row = 0;
+    for h in &hs {
+        stacked
+            .view_mut((row, 0), (h.nrows(), model.n()))
+            .copy_from(h);
+        row += h.nrows();
+    }
+    let all = analyse(&f, &stacked, &model.states);
+    let by_sensor: Vec<(String, Observability)> = model
+        .sensors
+        .iter()
+        .zip(&hs)
+        .map(|(s, h)| (s.name.clone(), analyse(&f, h, &model.states)))
+        .collect();
+    for name in &all.unobservable {
+        warnings.push(format!("state '{name}' cannot be recovered from these sensors near this point: its estimate will follow the prior and the model only"));
+    }
+    for (s, h) in model.sensors.iter().zip(&hs) {
+        if h.iter().all(|v| *v == 0.0) {
+            warnings.push(format!(
+                "sensor '{}' does not depend on any state at this point",
+                s.name
+            ));
+        }
+    }
+    for (i, name) in model.inputs.iter().enumerate() {
+        let slot = model.n() + i;
+        let used = match &model.dynamics {
+            Dynamics::Linear { b, .. } => b.column(i).iter().any(|v| *v != 0.0),
+            Dynamics::Rates(p) | Dynamics::Next(p) => {
+                (0..p.outputs()).any(|k| p.depends_on(k, slot))
+            }
+        } || model
+            .sensors
+            .iter()
+            .any(|s| (0..s.dim).any(|k| s.program.depends_on(k, slot)));
+        if !used {
+            warnings.push(format!(
+                "input '{name}' is not used by the dynamics or any sensor"
+            ));
+        }
+    }
+    let resp = CheckResponse {
+        states: model.states.clone(),
+        inputs: model.inputs.clone(),
+        sensors: model
+            .sensors
+            .iter()
+            .map(|s| SensorInfo {
+                name: s.name.clone(),
+                dimension: s.dim,
+            })
+            .collect(),
+        dimensions: Dimensions {
+            states: model.n(),
+            inputs: model.nu(),
+            measurement_size: model.sensors.iter().map(|s| s.dim).sum(),
+        },
+        observability: Full {
+            rank: all.rank,
+            dimension: all.dimension,
+            unobservable: all.unobservable,
+            at: model
+                .states
+                .iter()
+                .cloned()
+                .zip(x.iter().copied())
+                .collect(),
+            by_sensor: indexmap_like::Ordered(by_sensor),
+        },
+        warnings,
+    };
+    let body = serde_json::to_vec(&resp)
+        .map_err(|e| Problem::new(crate::problem::ProblemKind::Internal, e.to_string()))?;
+    Ok(Done {
+        body,
+        stats: RunStats::default(),
+    })
+}

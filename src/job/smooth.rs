@@ -1,0 +1,55 @@
+//! `POST /v1/smooth`: filter every line keeping what the backward pass needs, run the
+//! Rauch–Tung–Striebel pass ([`crate::filter::smoother`]) and write the smoothed
+//! estimates.
+
+use super::plain::{line_pointer, line_problem, problem_under, Lines, Predictions};
+use crate::filter::run::Run;
+use crate::filter::smoother::{rts, Stored};
+use crate::problem::{Problem, ProblemKind};
+use crate::spec::reading::Reading;
+
+impl Lines<'_> {
+    /// Filter every line keeping what the smoother needs, smooth, and write the smoothed
+    /// estimates to `buf`.
+    pub(super) fn smooth(
+        &self,
+        run: &mut Run,
+        preds: &mut Predictions<'_>,
+        buf: &mut Vec<u8>,
+    ) -> Result<(), Problem> {
+        let mut reading = Reading::default();
+        let mut stored: Vec<Stored> = Vec::with_capacity(self.lines.len());
+        let mut times = Vec::with_capacity(self.lines.len());
+        for (i, raw) in self.lines.iter().enumerate() {
+            self.guard.check(i)?;
+            self.parser
+                .parse(raw, &mut reading)
+                .map_err(|e| line_problem(e.under(&line_pointer(i))))?;
+            preds.write(run, self.writer, Some(&reading.t))?;
+            let mut predicted = None;
+            run.step_capturing(&reading, "", Some(&mut predicted))
+                .map_err(|p| problem_under(p, &line_pointer(i)))?;
+            let est = run.estimator();
+            let predicted = predicted.map(|(m, p)| (m, p, est.cross().clone()));
+            stored.push(Stored {
+                predicted,
+                mean: est.mean().clone(),
+                cov: est.covariance().clone(),
+            });
+            let mut frag = Vec::new();
+            if !reading.sensors.is_empty() {
+                self.writer.innovations(&mut frag, est.obs());
+            }
+            times.push((reading.t, frag));
+        }
+        rts(&mut stored).map_err(|e| Problem::new(ProblemKind::NumericalFailure, format!("smoothing failed at line {}: the predicted covariance is singular (give the model process noise or a prior with spread in every state)", e.line)))?;
+        for (i, s) in stored.iter().enumerate() {
+            if i > 0 {
+                buf.push(b',');
+            }
+            self.writer
+                .estimate_with(buf, &times[i].0, &s.mean, &s.cov, &times[i].1);
+        }
+        Ok(())
+    }
+}
