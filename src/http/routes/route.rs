@@ -10,7 +10,7 @@ use axum::Router;
 pub struct Route {
     /// HTTP method, upper case.
     pub method: &'static str,
-    /// Path template as axum and OpenAPI both write it (no parameters are used).
+    /// Path template as axum 0.8 and OpenAPI both write it (`{name}` for a parameter).
     pub path: &'static str,
     /// Whether the route sits behind the API keys (every `/v1/*` route does).
     pub keyed: bool,
