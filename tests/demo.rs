@@ -296,7 +296,7 @@ async fn the_client_hands_back_a_200_body_and_the_detail_of_a_refusal() {
     .expect("a valid check is answered");
     let v: Value = serde_json::from_slice(&ok).expect("JSON");
     assert_eq!(v["states"][0], "level");
-    // A body that is not JSON is refused with 400 (API.md): the error names the status
+    // A body that is not JSON is refused with 400 (openapi/openapi.yaml): the error names the status
     // and carries the problem's detail, not the raw response.
     let err = demo::post(server.addr, "/v1/check", "application/json", b"{\"model\":")
         .await

@@ -1,6 +1,6 @@
 //! End-to-end behaviour that needs the estimation core: happy paths of every job route,
 //! streaming before the request ends, chunked = single. Bad requests with their statuses
-//! and pointers are in `http_errors.rs`. Bodies follow API.md exactly.
+//! and pointers are in `http_errors.rs`. Bodies follow openapi/openapi.yaml exactly.
 
 use crate::support::{
     answer, assert_pointer, assert_problem, post, post_json, start, start_default,
@@ -9,7 +9,7 @@ use serde_json::{json, Value};
 use std::time::Duration;
 use tacit::http::ServerConfig;
 
-/// The crane trolley model of API.md, word for word.
+/// The crane trolley model of openapi/openapi.yaml, word for word.
 fn trolley_model() -> Value {
     json!({
       "states": ["pos", "vel"],
@@ -88,7 +88,7 @@ async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
     let a = post_json(&s, "/v1/estimate", &body).await;
     assert_eq!(a.status, 200, "{}", a.text);
     assert_eq!(a.content_type, "application/json");
-    // Estimated parameters are appended after the model's states (API.md).
+    // Estimated parameters are appended after the model's states (openapi/openapi.yaml).
     assert_eq!(a.body["states"], json!(["pos", "vel", "drag"]));
     let est = a.body["estimates"].as_array().unwrap();
     assert_eq!(est.len(), 3, "one estimate per measurement line");
@@ -186,7 +186,7 @@ async fn chunked_requests_give_bit_identical_estimates() {
 async fn a_batch_written_in_pieces_declares_its_length_and_chains_bit_identically() {
     // 6000 lines: past the size from which the answer is written by a second thread and
     // sent in pieces; the two halves alone are written on one thread. Splitting a run
-    // must give the same estimates bit for bit (API.md), so both ways must agree.
+    // must give the same estimates bit for bit (openapi/openapi.yaml), so both ways must agree.
     let s = start_default().await;
     let all = readings(6000);
     let single = post_json(&s, "/v1/estimate", &estimate_body("ekf", 6000)).await;

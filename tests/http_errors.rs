@@ -207,7 +207,7 @@ async fn a_panicking_job_is_a_generic_500_and_frees_its_slot() {
 enum Ptr {
     /// Exactly this pointer among `errors`.
     Is(&'static str),
-    /// Some pointer starting with this (where API.md leaves the depth open).
+    /// Some pointer starting with this (where openapi/openapi.yaml leaves the depth open).
     Under(&'static str),
 }
 

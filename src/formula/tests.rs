@@ -325,8 +325,8 @@ fn kink_conventions() {
 }
 
 #[test]
-fn jacobian_of_a_pendulum_and_a_partial_column_set() {
-    // Damped pendulum: f = [x2, -sin(x1) - 0.1 x2, t*x1]; by hand
+fn jacobian_of_a_swaying_hook_load_and_a_partial_column_set() {
+    // A crane's hook load swaying with damping: f = [x2, -sin(x1) - 0.1 x2, t*x1]; by hand
     // J = [[0, 1, 0], [-cos(x1), -0.1, 0], [t, 0, x1]].
     let p = compile(
         &["x2", "-sin(x1) - 0.1*x2", "t*x1"],
