@@ -296,7 +296,7 @@ async fn real_requests_and_answers_match_the_contract_file() {
     let model = json!({
         "states": ["pos", "vel"],
         "inputs": ["force"],
-        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "drift": 1e-4}},
+        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "random_walk": 1e-4}},
         "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel*abs(vel))/mass"}},
         "process_noise": {"density": {"vel": 0.05}},
         "sensors": {"encoder": {"measures": "pos", "std": 0.002}, "pair": {"measures": ["pos", "vel"], "covariance": [[1e-4, 0], [0, 1e-2]]}}

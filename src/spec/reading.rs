@@ -23,7 +23,7 @@ pub struct Reading {
     pub z: Vec<f64>,
     /// Per-reading noise overrides: `(sensor index, offset into std)`.
     pub std_overrides: Vec<(usize, usize)>,
-    /// Override std values.
+    /// Override std values (a line's `noise_std`).
     pub std: Vec<f64>,
     /// Inputs set on this line: `(input index, value)`.
     pub inputs: Vec<(usize, f64)>,
@@ -144,7 +144,10 @@ struct RawReading<'a> {
     #[serde(default, borrow)]
     inputs: Option<Entries<'a, Option<f64>>>,
     #[serde(default, borrow)]
-    std: Option<Entries<'a, RawVal>>,
+    noise_std: Option<Entries<'a, RawVal>>,
+    /// The v1 name of `noise_std`, accepted by the parser only to be refused by name.
+    #[serde(default)]
+    std: Option<serde::de::IgnoredAny>,
 }
 
 /// What went wrong while reading one measurement line.
@@ -410,9 +413,12 @@ impl<'m> ReadingParser<'m> {
                 }
             }
         }
-        if let Some(stds) = raw.std {
+        if raw.std.is_some() {
+            errs.push(FieldError::new("/std", "`std` was renamed `noise_std`"));
+        }
+        if let Some(stds) = raw.noise_std {
             for (name, v) in stds.0 {
-                let p = || format!("/std/{}", escape_token(&name));
+                let p = || format!("/noise_std/{}", escape_token(&name));
                 let Some(si) = m.sensor_index(&name) else {
                     errs.push(FieldError::new(p(), format!("unknown sensor '{name}'")));
                     continue;
@@ -427,7 +433,7 @@ impl<'m> ReadingParser<'m> {
                         errs.push(FieldError::new(
                             p(),
                             format!(
-                                "sensor '{name}' has {dim} component(s), found {} std values",
+                                "sensor '{name}' has {dim} component(s), found {} noise_std values",
                                 xs.len()
                             ),
                         ));
@@ -435,7 +441,7 @@ impl<'m> ReadingParser<'m> {
                     }
                 }
                 if out.std[start..].iter().any(|s| !(*s > 0.0)) {
-                    errs.push(FieldError::new(p(), "std must be positive"));
+                    errs.push(FieldError::new(p(), "noise_std must be positive"));
                     out.std.truncate(start);
                     continue;
                 }
@@ -703,5 +709,42 @@ mod plain_line_tests {
             let line = format!(r#"{{"t":{},"values":{{"a":{text}}}}}"#, k as f64 * 0.01);
             assert!(check(&p, &line), "fast path refused {line}");
         }
+    }
+
+    #[test]
+    fn a_line_overrides_noise_under_its_v2_name_only() {
+        let m = model();
+        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let mut r = Reading::default();
+        p.parse(
+            r#"{"t": 1, "values": {"v": [1, 2]}, "noise_std": {"v": [0.5, 2]}}"#,
+            &mut r,
+        )
+        .unwrap_or_else(|_| panic!("noise_std refused"));
+        assert_eq!(
+            (r.std_overrides.as_slice(), r.std.as_slice()),
+            (&[(1, 0)][..], &[0.5, 2.0][..])
+        );
+        let pointed = |line: &str| match p.parse(line, &mut Reading::default()) {
+            Err(LineError::Invalid(e)) => e
+                .into_iter()
+                .map(|e| (e.pointer, e.detail))
+                .collect::<Vec<_>>(),
+            _ => panic!("{line} was not refused as invalid"),
+        };
+        assert_eq!(
+            pointed(r#"{"t": 1, "values": {"a": 1}, "std": {"a": 0.1}}"#),
+            [(
+                "/std".to_string(),
+                "`std` was renamed `noise_std`".to_string()
+            )]
+        );
+        assert_eq!(
+            pointed(r#"{"t": 1, "values": {"a": 1}, "noise_std": {"a": 0}}"#),
+            [(
+                "/noise_std/a".to_string(),
+                "noise_std must be positive".to_string()
+            )]
+        );
     }
 }

@@ -165,15 +165,21 @@ pub fn model(v: &Value, ptr: &str, limits: &Limits) -> Result<Model, Vec<FieldEr
                 }
                 Value::Object(_) => {
                     let Some(po) = Obj::new(pv, &p, &mut errs) else { continue };
-                    po.deny_unknown(&["initial", "std", "drift"], &mut errs);
+                    for k in po.map.keys() {
+                        if k == "drift" {
+                            errs.push(&po.at(k), "`drift` was renamed `random_walk`");
+                        } else if !["initial", "std", "random_walk"].contains(&k.as_str()) {
+                            errs.push(&po.at(k), format!("unknown field '{k}'; expected one of initial, std, random_walk"));
+                        }
+                    }
                     let initial = po.required_number("initial", &mut errs);
                     let std = po.required("std", &mut errs).and_then(|s| positive(s, &po.at("std"), "std", &mut errs));
-                    let drift = po.get("drift").map_or(Some(0.0), |d| non_negative(d, &po.at("drift"), "drift", &mut errs));
-                    if let (Some(initial), Some(std), Some(drift)) = (initial, std, drift) {
-                        estimated.push(EstimatedParameter { name: name.clone(), initial, std, drift });
+                    let random_walk = po.get("random_walk").map_or(Some(0.0), |d| non_negative(d, &po.at("random_walk"), "random_walk", &mut errs));
+                    if let (Some(initial), Some(std), Some(random_walk)) = (initial, std, random_walk) {
+                        estimated.push(EstimatedParameter { name: name.clone(), initial, std, random_walk });
                     }
                 }
-                other => errs.push(&p, format!("a parameter is a number (fixed) or an object {{initial, std, drift}} (estimated), found {}", kind_of(other))),
+                other => errs.push(&p, format!("a parameter is a number (fixed) or an object {{initial, std, random_walk}} (estimated), found {}", kind_of(other))),
             }
         }
     }
@@ -518,7 +524,7 @@ fn process_noise(
     }
     let mut drift = DVector::zeros(n);
     for (k, p) in estimated.iter().enumerate() {
-        drift[n_model + k] = p.drift;
+        drift[n_model + k] = p.random_walk;
     }
     Some(if continuous {
         for i in n_model..n {

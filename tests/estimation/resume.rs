@@ -41,7 +41,7 @@ fn body(method: &str, prior: Value, lines: &[Value]) -> Value {
         "model": {
             "states": ["pos", "vel"],
             "inputs": ["drive"],
-            "parameters": {"friction": {"initial": 0.3, "std": 0.1, "drift": 1e-4}},
+            "parameters": {"friction": {"initial": 0.3, "std": 0.1, "random_walk": 1e-4}},
             "dynamics": {"rates": {"pos": "vel", "vel": "drive - friction*vel"}},
             "process_noise": {"density": {"vel": 0.05}},
             "sensors": {"encoder": {"measures": "pos", "std": 0.02}, "tacho": {"measures": "vel", "std": 0.05}}
