@@ -1,0 +1,659 @@
+//! The request sections as they appear in JSON: serde types that mirror the `model`,
+//! `filter`, `prior` and `output` objects field for field, before anything is checked.
+//!
+//! Every leaf is a [`Field`]: either a value of the expected JSON type or the value found
+//! instead. A strict serde type would stop at the first wrong field; reading the wrong one
+//! aside lets the validation step (`validate/`) report every fault of a request at once,
+//! each at its own pointer. For the same reason an object keeps the keys it does not
+//! know in `unknown` instead of failing on the first (serde's `deny_unknown_fields`);
+//! validation refuses each of them by name, and names the new field for a v1 name.
+//! Where a field takes two shapes the type is an untagged enum.
+
+use serde::de::{DeserializeOwned, MapAccess, Visitor};
+use serde::{Deserialize, Deserializer};
+use serde_json::{Map, Number, Value};
+use std::fmt;
+
+/// A human name of a JSON value's type, for "expected X, found Y" messages.
+pub fn kind_of(v: &Value) -> &'static str {
+    crate::spec::reader::kind_of(v)
+}
+
+/// What a raw type looks like in JSON, for "expected X, found Y" messages.
+pub trait Expected {
+    /// The expected JSON shape, with its article (`a number`).
+    const EXPECTED: &'static str;
+
+    /// How to name a value that did not fit.
+    fn found(v: &Value) -> String {
+        kind_of(v).to_string()
+    }
+}
+
+/// A value as given: of the expected type, or anything else, kept to be named in the error.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Field<T> {
+    /// The value, of the expected type.
+    Ok(T),
+    /// Something else.
+    Wrong(Value),
+}
+
+impl<'de, T: DeserializeOwned> Deserialize<'de> for Field<T> {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        let v = Value::deserialize(d)?;
+        Ok(match T::deserialize(&v) {
+            Ok(t) => Field::Ok(t),
+            Err(_) => Field::Wrong(v),
+        })
+    }
+}
+
+/// The members of a JSON object whose keys are names of the request's own (states,
+/// sensors, inputs), in the order given.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Entries<T>(pub Vec<(String, Field<T>)>);
+
+impl<T> Entries<T> {
+    /// The value under `name`, if given.
+    pub fn get(&self, name: &str) -> Option<&Field<T>> {
+        self.0.iter().find(|(k, _)| k == name).map(|(_, v)| v)
+    }
+
+    /// Whether there are no members.
+    pub fn is_empty(&self) -> bool {
+        self.0.is_empty()
+    }
+
+    /// The number of members.
+    pub fn len(&self) -> usize {
+        self.0.len()
+    }
+}
+
+impl<'de, T: DeserializeOwned> Deserialize<'de> for Entries<T> {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct Vis<T>(std::marker::PhantomData<T>);
+        impl<'de, T: DeserializeOwned> Visitor<'de> for Vis<T> {
+            type Value = Entries<T>;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("an object")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut m: A) -> Result<Self::Value, A::Error> {
+                let mut v = Vec::with_capacity(m.size_hint().unwrap_or(0));
+                while let Some((k, x)) = m.next_entry::<String, Field<T>>()? {
+                    v.push((k, x));
+                }
+                Ok(Entries(v))
+            }
+        }
+        d.deserialize_map(Vis(std::marker::PhantomData))
+    }
+}
+
+impl<T> Expected for Entries<T> {
+    const EXPECTED: &'static str = "an object";
+}
+
+impl Expected for f64 {
+    const EXPECTED: &'static str = "a number";
+}
+
+impl Expected for u64 {
+    const EXPECTED: &'static str = "a whole number ≥ 0";
+
+    /// A number that is not whole (or is negative) is named by its value.
+    fn found(v: &Value) -> String {
+        match v {
+            Value::Number(n) => n.to_string(),
+            other => kind_of(other).to_string(),
+        }
+    }
+}
+
+impl Expected for String {
+    const EXPECTED: &'static str = "a string";
+}
+
+impl Expected for bool {
+    const EXPECTED: &'static str = "true or false";
+}
+
+impl<T> Expected for Vec<T> {
+    const EXPECTED: &'static str = "an array";
+}
+
+/// A matrix as rows of numbers; each level may be wrong on its own.
+pub type Matrix = Vec<Field<Vec<Field<f64>>>>;
+
+/// The `model` section.
+#[derive(Debug, Deserialize)]
+pub struct RawModel {
+    /// The model's state names.
+    #[serde(default)]
+    pub states: Option<Field<Vec<Field<String>>>>,
+    /// Input names.
+    #[serde(default)]
+    pub inputs: Option<Field<Vec<Field<String>>>>,
+    /// Fixed and estimated parameters.
+    #[serde(default)]
+    pub parameters: Option<Field<Entries<RawParameter>>>,
+    /// How the state moves.
+    #[serde(default)]
+    pub dynamics: Option<Field<RawDynamics>>,
+    /// Process noise.
+    #[serde(default)]
+    pub process_noise: Option<Field<RawProcessNoise>>,
+    /// Sensors by name.
+    #[serde(default)]
+    pub sensors: Option<Field<Entries<RawSensor>>>,
+    /// Keys the section does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawModel {
+    /// The section's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &[
+        "states",
+        "inputs",
+        "parameters",
+        "dynamics",
+        "process_noise",
+        "sensors",
+    ];
+}
+
+/// One parameter: a number is a constant, an object is estimated as an extra state.
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+pub enum RawParameter {
+    /// A fixed value.
+    Fixed(f64),
+    /// Estimated jointly with the state.
+    Estimated(Box<RawEstimated>),
+}
+
+impl Expected for RawParameter {
+    const EXPECTED: &'static str = "a number or an object";
+}
+
+/// An estimated parameter.
+#[derive(Debug, Deserialize)]
+pub struct RawEstimated {
+    /// Prior mean.
+    #[serde(default)]
+    pub initial: Option<Field<f64>>,
+    /// Prior standard deviation.
+    #[serde(default)]
+    pub std: Option<Field<f64>>,
+    /// Random-walk spectral density.
+    #[serde(default)]
+    pub random_walk: Option<Field<f64>>,
+    /// Keys the object does not have (`drift`, the v1 name of `random_walk`, among them).
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawEstimated {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["initial", "std", "random_walk"];
+    /// v1 names and the names that replaced them.
+    pub const RENAMED: &'static [(&'static str, &'static str)] = &[("drift", "random_walk")];
+}
+
+/// The `dynamics` object: exactly one of its three forms.
+#[derive(Debug, Deserialize)]
+pub struct RawDynamics {
+    /// Continuous rates, one formula per model state.
+    #[serde(default)]
+    pub rates: Option<Field<Entries<FormulaText>>>,
+    /// A discrete map, one formula per model state.
+    #[serde(default)]
+    pub next: Option<Field<Entries<FormulaText>>>,
+    /// Matrices.
+    #[serde(default)]
+    pub linear: Option<Field<RawLinear>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawDynamics {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["rates", "next", "linear"];
+}
+
+impl Expected for RawDynamics {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// A formula: a string, or a plain number standing for a constant formula.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(untagged)]
+pub enum FormulaText {
+    /// Formula text.
+    Text(String),
+    /// A constant, kept as written so it compiles from the same text.
+    Number(Number),
+}
+
+impl Expected for FormulaText {
+    const EXPECTED: &'static str = "a formula string";
+}
+
+/// Linear dynamics given as matrices.
+#[derive(Debug, Deserialize)]
+pub struct RawLinear {
+    /// `"continuous"` or `"discrete"`.
+    #[serde(default)]
+    pub time: Option<Field<String>>,
+    /// Continuous-time state matrix.
+    #[serde(default, rename = "A")]
+    pub a: Option<Field<Matrix>>,
+    /// Discrete-time transition matrix.
+    #[serde(default, rename = "F")]
+    pub f: Option<Field<Matrix>>,
+    /// Input matrix.
+    #[serde(default, rename = "B")]
+    pub b: Option<Field<Matrix>>,
+    /// Grid step of a discrete model.
+    #[serde(default)]
+    pub dt: Option<Field<f64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawLinear {
+    /// Fields of continuous linear dynamics.
+    pub const CONTINUOUS: &'static [&'static str] = &["time", "A", "B"];
+    /// Fields of discrete linear dynamics.
+    pub const DISCRETE: &'static [&'static str] = &["time", "F", "B", "dt"];
+}
+
+impl Expected for RawLinear {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// The `process_noise` object.
+#[derive(Debug, Deserialize)]
+pub struct RawProcessNoise {
+    /// Spectral density per model state (a diagonal).
+    #[serde(default)]
+    pub density: Option<Field<Entries<f64>>>,
+    /// Full spectral density matrix.
+    #[serde(default)]
+    pub density_matrix: Option<Field<Matrix>>,
+    /// Per-step covariance of a discrete model.
+    #[serde(default)]
+    pub covariance: Option<Field<Matrix>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawProcessNoise {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["density", "density_matrix", "covariance"];
+}
+
+impl Expected for RawProcessNoise {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// One sensor.
+#[derive(Debug, Deserialize)]
+pub struct RawSensor {
+    /// What it measures.
+    #[serde(default)]
+    pub measures: Option<Field<Measures>>,
+    /// Noise std, one for all components or one each.
+    #[serde(default)]
+    pub std: Option<Field<Spread>>,
+    /// Noise covariance.
+    #[serde(default)]
+    pub covariance: Option<Field<Matrix>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawSensor {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["measures", "std", "covariance"];
+}
+
+impl Expected for RawSensor {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// A sensor's formula, or one formula per component.
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+pub enum Measures {
+    /// A scalar sensor.
+    One(String),
+    /// A vector sensor.
+    Many(Vec<Field<String>>),
+}
+
+impl Expected for Measures {
+    const EXPECTED: &'static str = "a formula string or a list of them";
+}
+
+/// A noise std: one number for every component, or one per component.
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+pub enum Spread {
+    /// The same std on every component.
+    One(f64),
+    /// One std per component.
+    PerComponent(Vec<Field<f64>>),
+}
+
+impl Expected for Spread {
+    const EXPECTED: &'static str = "a number";
+}
+
+/// The `filter` section.
+#[derive(Debug, Deserialize)]
+pub struct RawFilter {
+    /// `ekf`, `ukf` or `enkf`.
+    #[serde(default)]
+    pub method: Option<Field<String>>,
+    /// Sigma-point settings.
+    #[serde(default)]
+    pub unscented: Option<Field<RawUnscented>>,
+    /// Ensemble settings.
+    #[serde(default)]
+    pub ensemble: Option<Field<RawEnsemble>>,
+    /// Integrator settings.
+    #[serde(default)]
+    pub integration: Option<Field<RawIntegration>>,
+    /// Innovation gate.
+    #[serde(default)]
+    pub gate: Option<Field<RawGate>>,
+    /// Keys the section does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawFilter {
+    /// The section's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] =
+        &["method", "unscented", "ensemble", "integration", "gate"];
+}
+
+/// `filter.unscented`.
+#[derive(Debug, Deserialize)]
+pub struct RawUnscented {
+    /// Spread of the sigma points.
+    #[serde(default)]
+    pub alpha: Option<Field<f64>>,
+    /// Weight on the centre point's covariance.
+    #[serde(default)]
+    pub beta: Option<Field<f64>>,
+    /// Secondary scaling.
+    #[serde(default)]
+    pub kappa: Option<Field<f64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawUnscented {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["alpha", "beta", "kappa"];
+}
+
+impl Expected for RawUnscented {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// `filter.ensemble`.
+#[derive(Debug, Deserialize)]
+pub struct RawEnsemble {
+    /// Number of members.
+    #[serde(default)]
+    pub members: Option<Field<u64>>,
+    /// Seed of every random draw.
+    #[serde(default)]
+    pub seed: Option<Field<u64>>,
+    /// Multiplicative inflation.
+    #[serde(default)]
+    pub inflation: Option<Field<f64>>,
+    /// `perturbed` or `deterministic`.
+    #[serde(default)]
+    pub update: Option<Field<String>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawEnsemble {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["members", "seed", "inflation", "update"];
+}
+
+impl Expected for RawEnsemble {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// `filter.integration`.
+#[derive(Debug, Deserialize)]
+pub struct RawIntegration {
+    /// Largest adaptive step.
+    #[serde(default)]
+    pub max_step: Option<Field<f64>>,
+    /// Relative tolerance.
+    #[serde(default)]
+    pub rtol: Option<Field<f64>>,
+    /// Absolute tolerance.
+    #[serde(default)]
+    pub atol: Option<Field<f64>>,
+    /// Fixed RK4 step.
+    #[serde(default)]
+    pub fixed_step: Option<Field<f64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawIntegration {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["max_step", "rtol", "atol", "fixed_step"];
+}
+
+impl Expected for RawIntegration {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// `filter.gate`.
+#[derive(Debug, Deserialize)]
+pub struct RawGate {
+    /// Probability of the gate.
+    #[serde(default)]
+    pub probability: Option<Field<f64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawGate {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["probability"];
+}
+
+impl Expected for RawGate {
+    const EXPECTED: &'static str = "an object";
+}
+
+/// A time: seconds or an RFC 3339 timestamp.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(untagged)]
+pub enum RawTime {
+    /// Seconds.
+    Seconds(f64),
+    /// A timestamp.
+    Stamp(String),
+}
+
+impl Expected for RawTime {
+    const EXPECTED: &'static str = "seconds (a number) or an RFC 3339 timestamp";
+}
+
+/// The `prior` section.
+#[derive(Debug, Deserialize)]
+pub struct RawPrior {
+    /// Time of the prior.
+    #[serde(default)]
+    pub t: Option<Field<RawTime>>,
+    /// Mean by state name.
+    #[serde(default)]
+    pub mean: Option<Field<Entries<f64>>>,
+    /// Std by state name.
+    #[serde(default)]
+    pub std: Option<Field<Entries<f64>>>,
+    /// Full covariance.
+    #[serde(default)]
+    pub covariance: Option<Field<Matrix>>,
+    /// Ensemble members as rows.
+    #[serde(default)]
+    pub members: Option<Field<Matrix>>,
+    /// Ensemble step counter.
+    #[serde(default)]
+    pub step: Option<Field<u64>>,
+    /// Inputs held at the prior's time.
+    #[serde(default)]
+    pub inputs: Option<Field<Entries<f64>>>,
+    /// Keys the section does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawPrior {
+    /// The section's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &[
+        "t",
+        "mean",
+        "std",
+        "covariance",
+        "members",
+        "step",
+        "inputs",
+    ];
+}
+
+/// The `output` section.
+#[derive(Debug, Deserialize)]
+pub struct RawOutput {
+    /// `full`, `std` or `none`.
+    #[serde(default)]
+    pub covariance: Option<Field<String>>,
+    /// Whether innovations are reported.
+    #[serde(default)]
+    pub innovations: Option<Field<bool>>,
+    /// Extra prediction-only times.
+    #[serde(default)]
+    pub at: Option<Field<Vec<Field<RawTime>>>>,
+    /// Keys the section does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawOutput {
+    /// The section's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["covariance", "innovations", "at"];
+}
+
+macro_rules! an_object {
+    ($($t:ty),*) => { $(impl Expected for $t { const EXPECTED: &'static str = "an object"; })* };
+}
+an_object!(RawModel, RawEstimated, RawFilter, RawPrior, RawOutput);
+
+/// Read a section's JSON tree into its raw type, or `None` with the tree when it is not an
+/// object. Every field of a raw object type accepts any JSON value (see [`Field`]), so an
+/// object always reads.
+pub fn section<T: DeserializeOwned>(v: &Value) -> Field<T> {
+    match T::deserialize(v) {
+        Ok(t) if v.is_object() => Field::Ok(t),
+        _ => Field::Wrong(v.clone()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    /// Every name in a `KNOWN` list is a field of its type: an object holding them all
+    /// leaves nothing unknown.
+    fn all_known<T: DeserializeOwned>(known: &[&str], unknown: impl Fn(&T) -> usize) {
+        let obj: Map<String, Value> = known.iter().map(|k| (k.to_string(), json!(1))).collect();
+        let Field::Ok(t) = section::<T>(&Value::Object(obj)) else {
+            panic!("{known:?} did not read")
+        };
+        assert_eq!(unknown(&t), 0, "{known:?}");
+    }
+
+    #[test]
+    fn known_lists_match_the_types() {
+        all_known::<RawModel>(RawModel::KNOWN, |t| t.unknown.len());
+        all_known::<RawEstimated>(RawEstimated::KNOWN, |t| t.unknown.len());
+        all_known::<RawDynamics>(RawDynamics::KNOWN, |t| t.unknown.len());
+        all_known::<RawLinear>(RawLinear::DISCRETE, |t| t.unknown.len());
+        all_known::<RawLinear>(RawLinear::CONTINUOUS, |t| t.unknown.len());
+        all_known::<RawProcessNoise>(RawProcessNoise::KNOWN, |t| t.unknown.len());
+        all_known::<RawSensor>(RawSensor::KNOWN, |t| t.unknown.len());
+        all_known::<RawFilter>(RawFilter::KNOWN, |t| t.unknown.len());
+        all_known::<RawUnscented>(RawUnscented::KNOWN, |t| t.unknown.len());
+        all_known::<RawEnsemble>(RawEnsemble::KNOWN, |t| t.unknown.len());
+        all_known::<RawIntegration>(RawIntegration::KNOWN, |t| t.unknown.len());
+        all_known::<RawGate>(RawGate::KNOWN, |t| t.unknown.len());
+        all_known::<RawPrior>(RawPrior::KNOWN, |t| t.unknown.len());
+        all_known::<RawOutput>(RawOutput::KNOWN, |t| t.unknown.len());
+    }
+
+    #[test]
+    fn wrong_leaves_are_kept_and_unknown_keys_collected() {
+        let v = json!({"std": "wide", "initial": 1, "drift": 0.1, "colour": null});
+        let Field::Ok(p) = section::<RawEstimated>(&v) else {
+            panic!()
+        };
+        assert_eq!(p.std, Some(Field::Wrong(json!("wide"))));
+        assert_eq!(p.initial, Some(Field::Ok(1.0)));
+        let keys: Vec<&str> = p.unknown.keys().map(String::as_str).collect();
+        assert_eq!(keys, ["drift", "colour"]);
+    }
+
+    #[test]
+    fn null_reads_as_absent_and_arrays_are_not_objects() {
+        let Field::Ok(g) = section::<RawGate>(&json!({"probability": null})) else {
+            panic!()
+        };
+        assert!(g.probability.is_none());
+        assert!(matches!(section::<RawGate>(&json!([0.5])), Field::Wrong(_)));
+    }
+
+    #[test]
+    fn two_shaped_fields_take_either_shape() {
+        let Field::Ok(s) = section::<RawSensor>(&json!({"measures": ["a", 2], "std": [1, "x"]}))
+        else {
+            panic!()
+        };
+        let Some(Field::Ok(Measures::Many(m))) = s.measures else {
+            panic!()
+        };
+        assert_eq!(m, [Field::Ok("a".to_string()), Field::Wrong(json!(2))]);
+        let Some(Field::Ok(Spread::PerComponent(sd))) = s.std else {
+            panic!()
+        };
+        assert_eq!(sd, [Field::Ok(1.0), Field::Wrong(json!("x"))]);
+        let Field::Ok(w) = section::<RawEnsemble>(&json!({"members": -3, "seed": 2.5})) else {
+            panic!()
+        };
+        assert_eq!(w.members, Some(Field::Wrong(json!(-3))));
+        assert_eq!(u64::found(&json!(2.5)), "2.5");
+    }
+}
