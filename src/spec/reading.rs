@@ -4,6 +4,7 @@
 //! a generic JSON tree.
 
 use crate::problem::{escape_token, FieldError};
+use crate::spec::line_scan::Scan;
 use crate::spec::model::Model;
 use crate::spec::reader::names_list;
 use crate::spec::time::{Instant, TimeMode};
@@ -223,11 +224,7 @@ impl<'m> ReadingParser<'m> {
     /// `float_roundtrip` feature: both readers give the same bits (tested).
     fn parse_plain(&self, text: &str, out: &mut Reading) -> Option<()> {
         let m = self.model;
-        let mut sc = Scan {
-            s: text,
-            b: text.as_bytes(),
-            i: 0,
-        };
+        let mut sc = Scan::new(text);
         out.sensors.clear();
         out.z.clear();
         out.std_overrides.clear();
@@ -453,110 +450,6 @@ impl<'m> ReadingParser<'m> {
         } else {
             Err(errs)
         }
-    }
-}
-
-/// A cursor over one line's bytes for [`ReadingParser::parse_plain`]; every method skips
-/// JSON whitespace first and returns `None` (or false) on anything unexpected.
-struct Scan<'a> {
-    /// The line, and the same as bytes; slices of `s` at ASCII positions need no UTF-8
-    /// check.
-    s: &'a str,
-    b: &'a [u8],
-    i: usize,
-}
-
-impl<'a> Scan<'a> {
-    fn ws(&mut self) {
-        while matches!(self.b.get(self.i), Some(b' ' | b'\t' | b'\n' | b'\r')) {
-            self.i += 1;
-        }
-    }
-
-    fn eat_if(&mut self, c: u8) -> bool {
-        self.ws();
-        let hit = self.b.get(self.i) == Some(&c);
-        self.i += hit as usize;
-        hit
-    }
-
-    fn eat(&mut self, c: u8) -> Option<()> {
-        self.eat_if(c).then_some(())
-    }
-
-    fn literal(&mut self, word: &[u8]) -> bool {
-        self.ws();
-        let hit = self.b[self.i..].starts_with(word);
-        if hit {
-            self.i += word.len();
-        }
-        hit
-    }
-
-    /// Whitespace to the end of the text.
-    fn end(&mut self) -> Option<()> {
-        self.ws();
-        (self.i == self.b.len()).then_some(())
-    }
-
-    /// A string without escapes or control characters (the usual key).
-    fn key(&mut self) -> Option<&'a str> {
-        self.eat(b'"')?;
-        let start = self.i;
-        loop {
-            match *self.b.get(self.i)? {
-                b'"' => break,
-                b'\\' => return None,
-                c if c < 0x20 => return None,
-                _ => self.i += 1,
-            }
-        }
-        let s = self.s.get(start..self.i)?;
-        self.i += 1;
-        Some(s)
-    }
-
-    /// A finite JSON number: -?(0|[1-9][0-9]*)(.[0-9]+)?([eE][+-]?[0-9]+)?.
-    fn number(&mut self) -> Option<f64> {
-        self.ws();
-        let start = self.i;
-        let digit = |s: &Self| matches!(s.b.get(s.i), Some(b'0'..=b'9'));
-        let digits = |s: &mut Self| {
-            let from = s.i;
-            while digit(s) {
-                s.i += 1;
-            }
-            s.i > from
-        };
-        self.eat_if_raw(b'-');
-        match self.b.get(self.i)? {
-            b'0' => self.i += 1,
-            b'1'..=b'9' => {
-                digits(self);
-            }
-            _ => return None,
-        }
-        if self.eat_if_raw(b'.') && !digits(self) {
-            return None;
-        }
-        if matches!(self.b.get(self.i), Some(b'e' | b'E')) {
-            self.i += 1;
-            if !self.eat_if_raw(b'+') {
-                self.eat_if_raw(b'-');
-            }
-            if !digits(self) {
-                return None;
-            }
-        }
-        let x: f64 = self.s.get(start..self.i)?.parse().ok()?;
-        x.is_finite().then_some(x)
-    }
-
-    /// `c` at the cursor itself, without skipping whitespace.
-    fn eat_if_raw(&mut self, c: u8) -> bool {
-        let hit = self.b.get(self.i) == Some(&c);
-        self.i += hit as usize;
-        hit
     }
 }
 
