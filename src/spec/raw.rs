@@ -7,12 +7,15 @@
 //! each at its own pointer. For the same reason an object keeps the keys it does not
 //! know in `unknown` instead of failing on the first (serde's `deny_unknown_fields`);
 //! validation refuses each of them by name, and names the new field for a v1 name.
-//! Where a field takes two shapes the type is an untagged enum.
+//! Where a field takes two shapes the type is an enum read by the JSON type met
+//! ([`by_json_type!`]): what `#[serde(untagged)]` does, without buffering the value and
+//! trying each variant in turn.
 
-use serde::de::{DeserializeOwned, MapAccess, Visitor};
+use serde::de::{self, value, DeserializeOwned, IntoDeserializer, MapAccess, SeqAccess, Visitor};
 use serde::{Deserialize, Deserializer};
 use serde_json::{Map, Number, Value};
 use std::fmt;
+use std::marker::PhantomData;
 
 /// A human name of a JSON value's type, for "expected X, found Y" messages.
 pub fn kind_of(v: &Value) -> &'static str {
@@ -23,6 +26,10 @@ pub fn kind_of(v: &Value) -> &'static str {
 pub trait Expected {
     /// The expected JSON shape, with its article (`a number`).
     const EXPECTED: &'static str;
+    /// Whether the type is read from a JSON object (a field given one goes to the type).
+    const OBJECT: bool = false;
+    /// Whether the type is read from a JSON array.
+    const ARRAY: bool = false;
 
     /// How to name a value that did not fit.
     fn found(v: &Value) -> String {
@@ -39,13 +46,96 @@ pub enum Field<T> {
     Wrong(Value),
 }
 
-impl<'de, T: DeserializeOwned> Deserialize<'de> for Field<T> {
+impl<'de, T: Deserialize<'de> + Expected> Deserialize<'de> for Field<T> {
     fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
-        let v = Value::deserialize(d)?;
-        Ok(match T::deserialize(&v) {
+        d.deserialize_any(FieldVisitor(PhantomData))
+    }
+}
+
+/// Reads a [`Field`] in one pass, without buffering: an object or array goes straight to
+/// `T` when `T` takes that shape (and is drained into a `Value` otherwise); a scalar is
+/// offered to `T` and kept as a `Value` if `T` refuses it. Buffering every field as a
+/// `Value` first and trying `T` on it would copy each subtree once per level of nesting,
+/// which doubled the time to read a small model.
+struct FieldVisitor<T>(PhantomData<T>);
+
+impl<T: Expected> FieldVisitor<T> {
+    /// Offer a scalar to `T`; keep it as `found` when `T` refuses it.
+    fn scalar<'de, X>(x: X, found: impl FnOnce() -> Value) -> Field<T>
+    where
+        T: Deserialize<'de>,
+        X: IntoDeserializer<'de, value::Error>,
+    {
+        match T::deserialize(x.into_deserializer()) {
             Ok(t) => Field::Ok(t),
-            Err(_) => Field::Wrong(v),
-        })
+            Err(_) => Field::Wrong(found()),
+        }
+    }
+}
+
+impl<'de, T: Deserialize<'de> + Expected> Visitor<'de> for FieldVisitor<T> {
+    type Value = Field<T>;
+
+    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str("any JSON value")
+    }
+
+    fn visit_bool<E: de::Error>(self, b: bool) -> Result<Field<T>, E> {
+        Ok(Self::scalar(b, || Value::Bool(b)))
+    }
+
+    fn visit_i64<E: de::Error>(self, x: i64) -> Result<Field<T>, E> {
+        Ok(Self::scalar(x, || Value::Number(x.into())))
+    }
+
+    fn visit_u64<E: de::Error>(self, x: u64) -> Result<Field<T>, E> {
+        Ok(Self::scalar(x, || Value::Number(x.into())))
+    }
+
+    fn visit_f64<E: de::Error>(self, x: f64) -> Result<Field<T>, E> {
+        Ok(Self::scalar(x, || {
+            Number::from_f64(x).map_or(Value::Null, Value::Number)
+        }))
+    }
+
+    fn visit_str<E: de::Error>(self, s: &str) -> Result<Field<T>, E> {
+        Ok(Self::scalar(s, || Value::String(s.to_string())))
+    }
+
+    fn visit_unit<E: de::Error>(self) -> Result<Field<T>, E> {
+        Ok(Field::Wrong(Value::Null))
+    }
+
+    fn visit_none<E: de::Error>(self) -> Result<Field<T>, E> {
+        Ok(Field::Wrong(Value::Null))
+    }
+
+    fn visit_seq<A: SeqAccess<'de>>(self, seq: A) -> Result<Field<T>, A::Error> {
+        let d = value::SeqAccessDeserializer::new(seq);
+        if T::ARRAY {
+            T::deserialize(d).map(Field::Ok)
+        } else {
+            Value::deserialize(d).map(Field::Wrong)
+        }
+    }
+
+    fn visit_map<A: MapAccess<'de>>(self, map: A) -> Result<Field<T>, A::Error> {
+        let d = value::MapAccessDeserializer::new(map);
+        if T::OBJECT {
+            T::deserialize(d).map(Field::Ok)
+        } else {
+            Value::deserialize(d).map(Field::Wrong)
+        }
+    }
+}
+
+impl<T> Field<T> {
+    /// The value found instead of a `T`, if it was not one.
+    pub fn as_wrong(&self) -> Option<&Value> {
+        match self {
+            Field::Ok(_) => None,
+            Field::Wrong(v) => Some(v),
+        }
     }
 }
 
@@ -71,10 +161,10 @@ impl<T> Entries<T> {
     }
 }
 
-impl<'de, T: DeserializeOwned> Deserialize<'de> for Entries<T> {
+impl<'de, T: Deserialize<'de> + Expected> Deserialize<'de> for Entries<T> {
     fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
         struct Vis<T>(std::marker::PhantomData<T>);
-        impl<'de, T: DeserializeOwned> Visitor<'de> for Vis<T> {
+        impl<'de, T: Deserialize<'de> + Expected> Visitor<'de> for Vis<T> {
             type Value = Entries<T>;
             fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
                 f.write_str("an object")
@@ -89,10 +179,6 @@ impl<'de, T: DeserializeOwned> Deserialize<'de> for Entries<T> {
         }
         d.deserialize_map(Vis(std::marker::PhantomData))
     }
-}
-
-impl<T> Expected for Entries<T> {
-    const EXPECTED: &'static str = "an object";
 }
 
 impl Expected for f64 {
@@ -121,6 +207,7 @@ impl Expected for bool {
 
 impl<T> Expected for Vec<T> {
     const EXPECTED: &'static str = "an array";
+    const ARRAY: bool = true;
 }
 
 /// A matrix as rows of numbers; each level may be wrong on its own.
@@ -165,8 +252,7 @@ impl RawModel {
 }
 
 /// One parameter: a number is a constant, an object is estimated as an extra state.
-#[derive(Debug, Deserialize)]
-#[serde(untagged)]
+#[derive(Debug)]
 pub enum RawParameter {
     /// A fixed value.
     Fixed(f64),
@@ -176,6 +262,7 @@ pub enum RawParameter {
 
 impl Expected for RawParameter {
     const EXPECTED: &'static str = "a number or an object";
+    const OBJECT: bool = true;
 }
 
 /// An estimated parameter.
@@ -224,13 +311,8 @@ impl RawDynamics {
     pub const KNOWN: &'static [&'static str] = &["rates", "next", "linear"];
 }
 
-impl Expected for RawDynamics {
-    const EXPECTED: &'static str = "an object";
-}
-
 /// A formula: a string, or a plain number standing for a constant formula.
-#[derive(Debug, Clone, Deserialize)]
-#[serde(untagged)]
+#[derive(Debug, Clone)]
 pub enum FormulaText {
     /// Formula text.
     Text(String),
@@ -272,10 +354,6 @@ impl RawLinear {
     pub const DISCRETE: &'static [&'static str] = &["time", "F", "B", "dt"];
 }
 
-impl Expected for RawLinear {
-    const EXPECTED: &'static str = "an object";
-}
-
 /// The `process_noise` object.
 #[derive(Debug, Deserialize)]
 pub struct RawProcessNoise {
@@ -296,10 +374,6 @@ pub struct RawProcessNoise {
 impl RawProcessNoise {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["density", "density_matrix", "covariance"];
-}
-
-impl Expected for RawProcessNoise {
-    const EXPECTED: &'static str = "an object";
 }
 
 /// One sensor.
@@ -324,13 +398,8 @@ impl RawSensor {
     pub const KNOWN: &'static [&'static str] = &["measures", "std", "covariance"];
 }
 
-impl Expected for RawSensor {
-    const EXPECTED: &'static str = "an object";
-}
-
 /// A sensor's formula, or one formula per component.
-#[derive(Debug, Deserialize)]
-#[serde(untagged)]
+#[derive(Debug)]
 pub enum Measures {
     /// A scalar sensor.
     One(String),
@@ -340,11 +409,11 @@ pub enum Measures {
 
 impl Expected for Measures {
     const EXPECTED: &'static str = "a formula string or a list of them";
+    const ARRAY: bool = true;
 }
 
 /// A noise std: one number for every component, or one per component.
-#[derive(Debug, Deserialize)]
-#[serde(untagged)]
+#[derive(Debug)]
 pub enum Spread {
     /// The same std on every component.
     One(f64),
@@ -354,6 +423,7 @@ pub enum Spread {
 
 impl Expected for Spread {
     const EXPECTED: &'static str = "a number";
+    const ARRAY: bool = true;
 }
 
 /// The `filter` section.
@@ -407,10 +477,6 @@ impl RawUnscented {
     pub const KNOWN: &'static [&'static str] = &["alpha", "beta", "kappa"];
 }
 
-impl Expected for RawUnscented {
-    const EXPECTED: &'static str = "an object";
-}
-
 /// `filter.ensemble`.
 #[derive(Debug, Deserialize)]
 pub struct RawEnsemble {
@@ -434,10 +500,6 @@ pub struct RawEnsemble {
 impl RawEnsemble {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["members", "seed", "inflation", "update"];
-}
-
-impl Expected for RawEnsemble {
-    const EXPECTED: &'static str = "an object";
 }
 
 /// `filter.integration`.
@@ -465,10 +527,6 @@ impl RawIntegration {
     pub const KNOWN: &'static [&'static str] = &["max_step", "rtol", "atol", "fixed_step"];
 }
 
-impl Expected for RawIntegration {
-    const EXPECTED: &'static str = "an object";
-}
-
 /// `filter.gate`.
 #[derive(Debug, Deserialize)]
 pub struct RawGate {
@@ -485,13 +543,8 @@ impl RawGate {
     pub const KNOWN: &'static [&'static str] = &["probability"];
 }
 
-impl Expected for RawGate {
-    const EXPECTED: &'static str = "an object";
-}
-
 /// A time: seconds or an RFC 3339 timestamp.
-#[derive(Debug, Clone, Deserialize)]
-#[serde(untagged)]
+#[derive(Debug, Clone)]
 pub enum RawTime {
     /// Seconds.
     Seconds(f64),
@@ -567,10 +620,113 @@ impl RawOutput {
     pub const KNOWN: &'static [&'static str] = &["covariance", "innovations", "at"];
 }
 
+/// Raw types read from a JSON object.
 macro_rules! an_object {
-    ($($t:ty),*) => { $(impl Expected for $t { const EXPECTED: &'static str = "an object"; })* };
+    ($($t:ty),*) => {
+        $(impl Expected for $t {
+            const EXPECTED: &'static str = "an object";
+            const OBJECT: bool = true;
+        })*
+    };
 }
-an_object!(RawModel, RawEstimated, RawFilter, RawPrior, RawOutput);
+an_object!(
+    RawModel,
+    RawEstimated,
+    RawDynamics,
+    RawLinear,
+    RawProcessNoise,
+    RawSensor,
+    RawFilter,
+    RawUnscented,
+    RawEnsemble,
+    RawIntegration,
+    RawGate,
+    RawPrior,
+    RawOutput
+);
+
+impl<T> Expected for Entries<T> {
+    const EXPECTED: &'static str = "an object";
+    const OBJECT: bool = true;
+}
+
+/// `Deserialize` for an enum whose variant follows from the JSON type alone (a number, a
+/// string, an array or an object): the value is read once, straight into its variant.
+/// `#[serde(untagged)]` would buffer it and try each variant in turn, which is most of
+/// the time of reading a small model.
+macro_rules! by_json_type {
+    ($t:ident {
+        $(number: |$n:ident| $num:expr,)?
+        $(string: |$s:ident| $str:expr,)?
+        $(array: $arr:expr,)?
+        $(object: $obj:expr,)?
+    }) => {
+        impl<'de> Deserialize<'de> for $t {
+            fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+                struct V;
+                impl<'de> Visitor<'de> for V {
+                    type Value = $t;
+                    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                        f.write_str(<$t as Expected>::EXPECTED)
+                    }
+                    $(
+                    fn visit_u64<E: de::Error>(self, x: u64) -> Result<$t, E> {
+                        let $n = Number::from(x);
+                        Ok($num)
+                    }
+                    fn visit_i64<E: de::Error>(self, x: i64) -> Result<$t, E> {
+                        let $n = Number::from(x);
+                        Ok($num)
+                    }
+                    fn visit_f64<E: de::Error>(self, x: f64) -> Result<$t, E> {
+                        let $n = Number::from_f64(x)
+                            .ok_or_else(|| E::custom("number is out of range"))?;
+                        Ok($num)
+                    }
+                    )?
+                    $(
+                    fn visit_str<E: de::Error>(self, x: &str) -> Result<$t, E> {
+                        let $s = x.to_string();
+                        Ok($str)
+                    }
+                    )?
+                    $(
+                    fn visit_seq<A: SeqAccess<'de>>(self, seq: A) -> Result<$t, A::Error> {
+                        Deserialize::deserialize(value::SeqAccessDeserializer::new(seq)).map($arr)
+                    }
+                    )?
+                    $(
+                    fn visit_map<A: MapAccess<'de>>(self, map: A) -> Result<$t, A::Error> {
+                        Deserialize::deserialize(value::MapAccessDeserializer::new(map)).map($obj)
+                    }
+                    )?
+                }
+                d.deserialize_any(V)
+            }
+        }
+    };
+}
+
+by_json_type!(RawParameter {
+    number: |n| RawParameter::Fixed(n.as_f64().unwrap_or(f64::NAN)),
+    object: |e| RawParameter::Estimated(Box::new(e)),
+});
+by_json_type!(FormulaText {
+    number: |n| FormulaText::Number(n),
+    string: |s| FormulaText::Text(s),
+});
+by_json_type!(Measures {
+    string: |s| Measures::One(s),
+    array: Measures::Many,
+});
+by_json_type!(Spread {
+    number: |n| Spread::One(n.as_f64().unwrap_or(f64::NAN)),
+    array: Spread::PerComponent,
+});
+by_json_type!(RawTime {
+    number: |n| RawTime::Seconds(n.as_f64().unwrap_or(f64::NAN)),
+    string: |s| RawTime::Stamp(s),
+});
 
 /// Read a section's JSON tree into its raw type, or `None` with the tree when it is not an
 /// object. Every field of a raw object type accepts any JSON value (see [`Field`]), so an
@@ -655,5 +811,45 @@ mod tests {
         };
         assert_eq!(w.members, Some(Field::Wrong(json!(-3))));
         assert_eq!(u64::found(&json!(2.5)), "2.5");
+    }
+
+    #[test]
+    fn numbers_keep_their_text_and_shapes_their_variant() {
+        let Field::Ok(d) = section::<RawDynamics>(&json!({"rates": {"a": 1.0, "b": 2, "c": "a"}}))
+        else {
+            panic!()
+        };
+        let Some(Field::Ok(rates)) = d.rates else {
+            panic!()
+        };
+        let texts: Vec<String> = rates
+            .0
+            .iter()
+            .map(|(_, f)| match f {
+                Field::Ok(FormulaText::Number(n)) => n.to_string(),
+                Field::Ok(FormulaText::Text(t)) => t.clone(),
+                Field::Wrong(v) => panic!("{v}"),
+            })
+            .collect();
+        // A constant compiles from the text serde_json writes for it, as in v1.
+        assert_eq!(texts, ["1.0", "2", "a"]);
+        let Field::Ok(m) = section::<RawModel>(&json!({"parameters": {"k": 3, "m": "x", "e": {}}}))
+        else {
+            panic!()
+        };
+        let Some(Field::Ok(p)) = m.parameters else {
+            panic!()
+        };
+        assert!(matches!(p.0[0].1, Field::Ok(RawParameter::Fixed(x)) if x == 3.0));
+        assert_eq!(p.0[1].1.as_wrong(), Some(&json!("x")));
+        assert!(matches!(p.0[2].1, Field::Ok(RawParameter::Estimated(_))));
+        let Field::Ok(o) = section::<RawOutput>(&json!({"at": [3, "2026-03-01T06:00:00Z", {}]}))
+        else {
+            panic!()
+        };
+        let Some(Field::Ok(at)) = o.at else { panic!() };
+        assert!(matches!(at[0], Field::Ok(RawTime::Seconds(x)) if x == 3.0));
+        assert!(matches!(at[1], Field::Ok(RawTime::Stamp(_))));
+        assert_eq!(at[2].as_wrong(), Some(&json!({})));
     }
 }
