@@ -7,11 +7,12 @@
 //! each at its own pointer. For the same reason an object keeps the keys it does not
 //! know in `unknown` instead of failing on the first (serde's `deny_unknown_fields`);
 //! validation refuses each of them by name, and names the new field for a v1 name.
-//! Where a field takes two shapes the type is an enum read by the JSON type met
-//! ([`by_json_type!`]): what `#[serde(untagged)]` does, without buffering the value and
-//! trying each variant in turn.
+//! Names and formulas borrow from the parsed JSON tree (`'a`), so reading a section
+//! copies no strings. Where a field takes two shapes the type is an enum read by the
+//! JSON type met (`by_json_type!`): what `#[serde(untagged)]` does, without buffering
+//! the value and trying each variant in turn.
 
-use serde::de::{self, value, DeserializeOwned, IntoDeserializer, MapAccess, SeqAccess, Visitor};
+use serde::de::{self, value, IntoDeserializer, MapAccess, SeqAccess, Visitor};
 use serde::{Deserialize, Deserializer};
 use serde_json::{Map, Number, Value};
 use std::fmt;
@@ -98,6 +99,15 @@ impl<'de, T: Deserialize<'de> + Expected> Visitor<'de> for FieldVisitor<T> {
         }))
     }
 
+    fn visit_borrowed_str<E: de::Error>(self, s: &'de str) -> Result<Field<T>, E> {
+        Ok(
+            match T::deserialize(value::BorrowedStrDeserializer::<value::Error>::new(s)) {
+                Ok(t) => Field::Ok(t),
+                Err(_) => Field::Wrong(Value::String(s.to_string())),
+            },
+        )
+    }
+
     fn visit_str<E: de::Error>(self, s: &str) -> Result<Field<T>, E> {
         Ok(Self::scalar(s, || Value::String(s.to_string())))
     }
@@ -142,12 +152,12 @@ impl<T> Field<T> {
 /// The members of a JSON object whose keys are names of the request's own (states,
 /// sensors, inputs), in the order given.
 #[derive(Debug, Clone, PartialEq)]
-pub struct Entries<T>(pub Vec<(String, Field<T>)>);
+pub struct Entries<'a, T>(pub Vec<(&'a str, Field<T>)>);
 
-impl<T> Entries<T> {
+impl<T> Entries<'_, T> {
     /// The value under `name`, if given.
     pub fn get(&self, name: &str) -> Option<&Field<T>> {
-        self.0.iter().find(|(k, _)| k == name).map(|(_, v)| v)
+        self.0.iter().find(|(k, _)| *k == name).map(|(_, v)| v)
     }
 
     /// Whether there are no members.
@@ -161,23 +171,23 @@ impl<T> Entries<T> {
     }
 }
 
-impl<'de, T: Deserialize<'de> + Expected> Deserialize<'de> for Entries<T> {
+impl<'de: 'a, 'a, T: Deserialize<'de> + Expected> Deserialize<'de> for Entries<'a, T> {
     fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
-        struct Vis<T>(std::marker::PhantomData<T>);
-        impl<'de, T: Deserialize<'de> + Expected> Visitor<'de> for Vis<T> {
-            type Value = Entries<T>;
+        struct Vis<'a, T>(PhantomData<(&'a (), T)>);
+        impl<'de: 'a, 'a, T: Deserialize<'de> + Expected> Visitor<'de> for Vis<'a, T> {
+            type Value = Entries<'a, T>;
             fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
                 f.write_str("an object")
             }
             fn visit_map<A: MapAccess<'de>>(self, mut m: A) -> Result<Self::Value, A::Error> {
                 let mut v = Vec::with_capacity(m.size_hint().unwrap_or(0));
-                while let Some((k, x)) = m.next_entry::<String, Field<T>>()? {
+                while let Some((k, x)) = m.next_entry::<&'a str, Field<T>>()? {
                     v.push((k, x));
                 }
                 Ok(Entries(v))
             }
         }
-        d.deserialize_map(Vis(std::marker::PhantomData))
+        d.deserialize_map(Vis(PhantomData))
     }
 }
 
@@ -197,7 +207,7 @@ impl Expected for u64 {
     }
 }
 
-impl Expected for String {
+impl Expected for &str {
     const EXPECTED: &'static str = "a string";
 }
 
@@ -215,31 +225,37 @@ pub type Matrix = Vec<Field<Vec<Field<f64>>>>;
 
 /// The `model` section.
 #[derive(Debug, Deserialize)]
-pub struct RawModel {
+pub struct RawModel<'a> {
     /// The model's state names.
     #[serde(default)]
-    pub states: Option<Field<Vec<Field<String>>>>,
+    #[serde(borrow)]
+    pub states: Option<Field<Vec<Field<&'a str>>>>,
     /// Input names.
     #[serde(default)]
-    pub inputs: Option<Field<Vec<Field<String>>>>,
+    #[serde(borrow)]
+    pub inputs: Option<Field<Vec<Field<&'a str>>>>,
     /// Fixed and estimated parameters.
     #[serde(default)]
-    pub parameters: Option<Field<Entries<RawParameter>>>,
+    #[serde(borrow)]
+    pub parameters: Option<Field<Entries<'a, RawParameter>>>,
     /// How the state moves.
     #[serde(default)]
-    pub dynamics: Option<Field<RawDynamics>>,
+    #[serde(borrow)]
+    pub dynamics: Option<Field<RawDynamics<'a>>>,
     /// Process noise.
     #[serde(default)]
-    pub process_noise: Option<Field<RawProcessNoise>>,
+    #[serde(borrow)]
+    pub process_noise: Option<Field<RawProcessNoise<'a>>>,
     /// Sensors by name.
     #[serde(default)]
-    pub sensors: Option<Field<Entries<RawSensor>>>,
+    #[serde(borrow)]
+    pub sensors: Option<Field<Entries<'a, RawSensor<'a>>>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
 }
 
-impl RawModel {
+impl RawModel<'_> {
     /// The section's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &[
         "states",
@@ -291,45 +307,49 @@ impl RawEstimated {
 
 /// The `dynamics` object: exactly one of its three forms.
 #[derive(Debug, Deserialize)]
-pub struct RawDynamics {
+pub struct RawDynamics<'a> {
     /// Continuous rates, one formula per model state.
     #[serde(default)]
-    pub rates: Option<Field<Entries<FormulaText>>>,
+    #[serde(borrow)]
+    pub rates: Option<Field<Entries<'a, FormulaText<'a>>>>,
     /// A discrete map, one formula per model state.
     #[serde(default)]
-    pub next: Option<Field<Entries<FormulaText>>>,
+    #[serde(borrow)]
+    pub next: Option<Field<Entries<'a, FormulaText<'a>>>>,
     /// Matrices.
     #[serde(default)]
-    pub linear: Option<Field<RawLinear>>,
+    #[serde(borrow)]
+    pub linear: Option<Field<RawLinear<'a>>>,
     /// Keys the object does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
 }
 
-impl RawDynamics {
+impl RawDynamics<'_> {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["rates", "next", "linear"];
 }
 
 /// A formula: a string, or a plain number standing for a constant formula.
 #[derive(Debug, Clone)]
-pub enum FormulaText {
+pub enum FormulaText<'a> {
     /// Formula text.
-    Text(String),
+    Text(&'a str),
     /// A constant, kept as written so it compiles from the same text.
     Number(Number),
 }
 
-impl Expected for FormulaText {
+impl Expected for FormulaText<'_> {
     const EXPECTED: &'static str = "a formula string";
 }
 
 /// Linear dynamics given as matrices.
 #[derive(Debug, Deserialize)]
-pub struct RawLinear {
+pub struct RawLinear<'a> {
     /// `"continuous"` or `"discrete"`.
     #[serde(default)]
-    pub time: Option<Field<String>>,
+    #[serde(borrow)]
+    pub time: Option<Field<&'a str>>,
     /// Continuous-time state matrix.
     #[serde(default, rename = "A")]
     pub a: Option<Field<Matrix>>,
@@ -347,7 +367,7 @@ pub struct RawLinear {
     pub unknown: Map<String, Value>,
 }
 
-impl RawLinear {
+impl RawLinear<'_> {
     /// Fields of continuous linear dynamics.
     pub const CONTINUOUS: &'static [&'static str] = &["time", "A", "B"];
     /// Fields of discrete linear dynamics.
@@ -356,10 +376,11 @@ impl RawLinear {
 
 /// The `process_noise` object.
 #[derive(Debug, Deserialize)]
-pub struct RawProcessNoise {
+pub struct RawProcessNoise<'a> {
     /// Spectral density per model state (a diagonal).
     #[serde(default)]
-    pub density: Option<Field<Entries<f64>>>,
+    #[serde(borrow)]
+    pub density: Option<Field<Entries<'a, f64>>>,
     /// Full spectral density matrix.
     #[serde(default)]
     pub density_matrix: Option<Field<Matrix>>,
@@ -371,17 +392,18 @@ pub struct RawProcessNoise {
     pub unknown: Map<String, Value>,
 }
 
-impl RawProcessNoise {
+impl RawProcessNoise<'_> {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["density", "density_matrix", "covariance"];
 }
 
 /// One sensor.
 #[derive(Debug, Deserialize)]
-pub struct RawSensor {
+pub struct RawSensor<'a> {
     /// What it measures.
     #[serde(default)]
-    pub measures: Option<Field<Measures>>,
+    #[serde(borrow)]
+    pub measures: Option<Field<Measures<'a>>>,
     /// Noise std, one for all components or one each.
     #[serde(default)]
     pub std: Option<Field<Spread>>,
@@ -393,21 +415,21 @@ pub struct RawSensor {
     pub unknown: Map<String, Value>,
 }
 
-impl RawSensor {
+impl RawSensor<'_> {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["measures", "std", "covariance"];
 }
 
 /// A sensor's formula, or one formula per component.
 #[derive(Debug)]
-pub enum Measures {
+pub enum Measures<'a> {
     /// A scalar sensor.
-    One(String),
+    One(&'a str),
     /// A vector sensor.
-    Many(Vec<Field<String>>),
+    Many(Vec<Field<&'a str>>),
 }
 
-impl Expected for Measures {
+impl Expected for Measures<'_> {
     const EXPECTED: &'static str = "a formula string or a list of them";
     const ARRAY: bool = true;
 }
@@ -428,16 +450,18 @@ impl Expected for Spread {
 
 /// The `filter` section.
 #[derive(Debug, Deserialize)]
-pub struct RawFilter {
+pub struct RawFilter<'a> {
     /// `ekf`, `ukf` or `enkf`.
     #[serde(default)]
-    pub method: Option<Field<String>>,
+    #[serde(borrow)]
+    pub method: Option<Field<&'a str>>,
     /// Sigma-point settings.
     #[serde(default)]
     pub unscented: Option<Field<RawUnscented>>,
     /// Ensemble settings.
     #[serde(default)]
-    pub ensemble: Option<Field<RawEnsemble>>,
+    #[serde(borrow)]
+    pub ensemble: Option<Field<RawEnsemble<'a>>>,
     /// Integrator settings.
     #[serde(default)]
     pub integration: Option<Field<RawIntegration>>,
@@ -449,7 +473,7 @@ pub struct RawFilter {
     pub unknown: Map<String, Value>,
 }
 
-impl RawFilter {
+impl RawFilter<'_> {
     /// The section's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] =
         &["method", "unscented", "ensemble", "integration", "gate"];
@@ -479,7 +503,7 @@ impl RawUnscented {
 
 /// `filter.ensemble`.
 #[derive(Debug, Deserialize)]
-pub struct RawEnsemble {
+pub struct RawEnsemble<'a> {
     /// Number of members.
     #[serde(default)]
     pub members: Option<Field<u64>>,
@@ -491,13 +515,14 @@ pub struct RawEnsemble {
     pub inflation: Option<Field<f64>>,
     /// `perturbed` or `deterministic`.
     #[serde(default)]
-    pub update: Option<Field<String>>,
+    #[serde(borrow)]
+    pub update: Option<Field<&'a str>>,
     /// Keys the object does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
 }
 
-impl RawEnsemble {
+impl RawEnsemble<'_> {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["members", "seed", "inflation", "update"];
 }
@@ -545,29 +570,32 @@ impl RawGate {
 
 /// A time: seconds or an RFC 3339 timestamp.
 #[derive(Debug, Clone)]
-pub enum RawTime {
+pub enum RawTime<'a> {
     /// Seconds.
     Seconds(f64),
     /// A timestamp.
-    Stamp(String),
+    Stamp(&'a str),
 }
 
-impl Expected for RawTime {
+impl Expected for RawTime<'_> {
     const EXPECTED: &'static str = "seconds (a number) or an RFC 3339 timestamp";
 }
 
 /// The `prior` section.
 #[derive(Debug, Deserialize)]
-pub struct RawPrior {
+pub struct RawPrior<'a> {
     /// Time of the prior.
     #[serde(default)]
-    pub t: Option<Field<RawTime>>,
+    #[serde(borrow)]
+    pub t: Option<Field<RawTime<'a>>>,
     /// Mean by state name.
     #[serde(default)]
-    pub mean: Option<Field<Entries<f64>>>,
+    #[serde(borrow)]
+    pub mean: Option<Field<Entries<'a, f64>>>,
     /// Std by state name.
     #[serde(default)]
-    pub std: Option<Field<Entries<f64>>>,
+    #[serde(borrow)]
+    pub std: Option<Field<Entries<'a, f64>>>,
     /// Full covariance.
     #[serde(default)]
     pub covariance: Option<Field<Matrix>>,
@@ -579,13 +607,14 @@ pub struct RawPrior {
     pub step: Option<Field<u64>>,
     /// Inputs held at the prior's time.
     #[serde(default)]
-    pub inputs: Option<Field<Entries<f64>>>,
+    #[serde(borrow)]
+    pub inputs: Option<Field<Entries<'a, f64>>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
 }
 
-impl RawPrior {
+impl RawPrior<'_> {
     /// The section's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &[
         "t",
@@ -600,22 +629,24 @@ impl RawPrior {
 
 /// The `output` section.
 #[derive(Debug, Deserialize)]
-pub struct RawOutput {
+pub struct RawOutput<'a> {
     /// `full`, `std` or `none`.
     #[serde(default)]
-    pub covariance: Option<Field<String>>,
+    #[serde(borrow)]
+    pub covariance: Option<Field<&'a str>>,
     /// Whether innovations are reported.
     #[serde(default)]
     pub innovations: Option<Field<bool>>,
     /// Extra prediction-only times.
     #[serde(default)]
-    pub at: Option<Field<Vec<Field<RawTime>>>>,
+    #[serde(borrow)]
+    pub at: Option<Field<Vec<Field<RawTime<'a>>>>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
 }
 
-impl RawOutput {
+impl RawOutput<'_> {
     /// The section's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &["covariance", "innovations", "at"];
 }
@@ -630,22 +661,22 @@ macro_rules! an_object {
     };
 }
 an_object!(
-    RawModel,
+    RawModel<'_>,
     RawEstimated,
-    RawDynamics,
-    RawLinear,
-    RawProcessNoise,
-    RawSensor,
-    RawFilter,
+    RawDynamics<'_>,
+    RawLinear<'_>,
+    RawProcessNoise<'_>,
+    RawSensor<'_>,
+    RawFilter<'_>,
     RawUnscented,
-    RawEnsemble,
+    RawEnsemble<'_>,
     RawIntegration,
     RawGate,
-    RawPrior,
-    RawOutput
+    RawPrior<'_>,
+    RawOutput<'_>
 );
 
-impl<T> Expected for Entries<T> {
+impl<T> Expected for Entries<'_, T> {
     const EXPECTED: &'static str = "an object";
     const OBJECT: bool = true;
 }
@@ -655,16 +686,16 @@ impl<T> Expected for Entries<T> {
 /// `#[serde(untagged)]` would buffer it and try each variant in turn, which is most of
 /// the time of reading a small model.
 macro_rules! by_json_type {
-    ($t:ident {
+    ($t:ty {
         $(number: |$n:ident| $num:expr,)?
         $(string: |$s:ident| $str:expr,)?
         $(array: $arr:expr,)?
         $(object: $obj:expr,)?
     }) => {
-        impl<'de> Deserialize<'de> for $t {
+        impl<'de: 'a, 'a> Deserialize<'de> for $t {
             fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
-                struct V;
-                impl<'de> Visitor<'de> for V {
+                struct V<'a>(PhantomData<&'a ()>);
+                impl<'de: 'a, 'a> Visitor<'de> for V<'a> {
                     type Value = $t;
                     fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
                         f.write_str(<$t as Expected>::EXPECTED)
@@ -685,8 +716,7 @@ macro_rules! by_json_type {
                     }
                     )?
                     $(
-                    fn visit_str<E: de::Error>(self, x: &str) -> Result<$t, E> {
-                        let $s = x.to_string();
+                    fn visit_borrowed_str<E: de::Error>(self, $s: &'de str) -> Result<$t, E> {
                         Ok($str)
                     }
                     )?
@@ -701,7 +731,7 @@ macro_rules! by_json_type {
                     }
                     )?
                 }
-                d.deserialize_any(V)
+                d.deserialize_any(V(PhantomData))
             }
         }
     };
@@ -711,11 +741,11 @@ by_json_type!(RawParameter {
     number: |n| RawParameter::Fixed(n.as_f64().unwrap_or(f64::NAN)),
     object: |e| RawParameter::Estimated(Box::new(e)),
 });
-by_json_type!(FormulaText {
+by_json_type!(FormulaText<'a> {
     number: |n| FormulaText::Number(n),
     string: |s| FormulaText::Text(s),
 });
-by_json_type!(Measures {
+by_json_type!(Measures<'a> {
     string: |s| Measures::One(s),
     array: Measures::Many,
 });
@@ -723,7 +753,7 @@ by_json_type!(Spread {
     number: |n| Spread::One(n.as_f64().unwrap_or(f64::NAN)),
     array: Spread::PerComponent,
 });
-by_json_type!(RawTime {
+by_json_type!(RawTime<'a> {
     number: |n| RawTime::Seconds(n.as_f64().unwrap_or(f64::NAN)),
     string: |s| RawTime::Stamp(s),
 });
@@ -731,7 +761,7 @@ by_json_type!(RawTime {
 /// Read a section's JSON tree into its raw type, or `None` with the tree when it is not an
 /// object. Every field of a raw object type accepts any JSON value (see [`Field`]), so an
 /// object always reads.
-pub fn section<T: DeserializeOwned>(v: &Value) -> Field<T> {
+pub fn section<'a, T: Deserialize<'a>>(v: &'a Value) -> Field<T> {
     match T::deserialize(v) {
         Ok(t) if v.is_object() => Field::Ok(t),
         _ => Field::Wrong(v.clone()),
@@ -743,32 +773,45 @@ mod tests {
     use super::*;
     use serde_json::json;
 
+    /// A JSON literal that outlives the test's statements, so raw types can borrow from it.
+    macro_rules! leak {
+        ($($t:tt)*) => {
+            &*Box::leak(Box::new(json!($($t)*)))
+        };
+    }
+
     /// Every name in a `KNOWN` list is a field of its type: an object holding them all
     /// leaves nothing unknown.
-    fn all_known<T: DeserializeOwned>(known: &[&str], unknown: impl Fn(&T) -> usize) {
-        let obj: Map<String, Value> = known.iter().map(|k| (k.to_string(), json!(1))).collect();
-        let Field::Ok(t) = section::<T>(&Value::Object(obj)) else {
-            panic!("{known:?} did not read")
-        };
-        assert_eq!(unknown(&t), 0, "{known:?}");
+    macro_rules! all_known {
+        ($($t:ty: $known:expr),* $(,)?) => {$({
+            let obj: Map<String, Value> =
+                $known.iter().map(|k| (k.to_string(), json!(1))).collect();
+            let v = Value::Object(obj);
+            let Field::Ok(t) = section::<$t>(&v) else {
+                panic!("{:?} did not read", $known)
+            };
+            assert!(t.unknown.is_empty(), "{:?}", $known);
+        })*};
     }
 
     #[test]
     fn known_lists_match_the_types() {
-        all_known::<RawModel>(RawModel::KNOWN, |t| t.unknown.len());
-        all_known::<RawEstimated>(RawEstimated::KNOWN, |t| t.unknown.len());
-        all_known::<RawDynamics>(RawDynamics::KNOWN, |t| t.unknown.len());
-        all_known::<RawLinear>(RawLinear::DISCRETE, |t| t.unknown.len());
-        all_known::<RawLinear>(RawLinear::CONTINUOUS, |t| t.unknown.len());
-        all_known::<RawProcessNoise>(RawProcessNoise::KNOWN, |t| t.unknown.len());
-        all_known::<RawSensor>(RawSensor::KNOWN, |t| t.unknown.len());
-        all_known::<RawFilter>(RawFilter::KNOWN, |t| t.unknown.len());
-        all_known::<RawUnscented>(RawUnscented::KNOWN, |t| t.unknown.len());
-        all_known::<RawEnsemble>(RawEnsemble::KNOWN, |t| t.unknown.len());
-        all_known::<RawIntegration>(RawIntegration::KNOWN, |t| t.unknown.len());
-        all_known::<RawGate>(RawGate::KNOWN, |t| t.unknown.len());
-        all_known::<RawPrior>(RawPrior::KNOWN, |t| t.unknown.len());
-        all_known::<RawOutput>(RawOutput::KNOWN, |t| t.unknown.len());
+        all_known!(
+            RawModel: RawModel::KNOWN,
+            RawEstimated: RawEstimated::KNOWN,
+            RawDynamics: RawDynamics::KNOWN,
+            RawLinear: RawLinear::DISCRETE,
+            RawLinear: RawLinear::CONTINUOUS,
+            RawProcessNoise: RawProcessNoise::KNOWN,
+            RawSensor: RawSensor::KNOWN,
+            RawFilter: RawFilter::KNOWN,
+            RawUnscented: RawUnscented::KNOWN,
+            RawEnsemble: RawEnsemble::KNOWN,
+            RawIntegration: RawIntegration::KNOWN,
+            RawGate: RawGate::KNOWN,
+            RawPrior: RawPrior::KNOWN,
+            RawOutput: RawOutput::KNOWN,
+        );
     }
 
     #[test]
@@ -785,28 +828,28 @@ mod tests {
 
     #[test]
     fn null_reads_as_absent_and_arrays_are_not_objects() {
-        let Field::Ok(g) = section::<RawGate>(&json!({"probability": null})) else {
+        let Field::Ok(g) = section::<RawGate>(leak!({"probability": null})) else {
             panic!()
         };
         assert!(g.probability.is_none());
-        assert!(matches!(section::<RawGate>(&json!([0.5])), Field::Wrong(_)));
+        assert!(matches!(section::<RawGate>(leak!([0.5])), Field::Wrong(_)));
     }
 
     #[test]
     fn two_shaped_fields_take_either_shape() {
-        let Field::Ok(s) = section::<RawSensor>(&json!({"measures": ["a", 2], "std": [1, "x"]}))
+        let Field::Ok(s) = section::<RawSensor>(leak!({"measures": ["a", 2], "std": [1, "x"]}))
         else {
             panic!()
         };
         let Some(Field::Ok(Measures::Many(m))) = s.measures else {
             panic!()
         };
-        assert_eq!(m, [Field::Ok("a".to_string()), Field::Wrong(json!(2))]);
+        assert_eq!(m, [Field::Ok("a"), Field::Wrong(json!(2))]);
         let Some(Field::Ok(Spread::PerComponent(sd))) = s.std else {
             panic!()
         };
         assert_eq!(sd, [Field::Ok(1.0), Field::Wrong(json!("x"))]);
-        let Field::Ok(w) = section::<RawEnsemble>(&json!({"members": -3, "seed": 2.5})) else {
+        let Field::Ok(w) = section::<RawEnsemble>(leak!({"members": -3, "seed": 2.5})) else {
             panic!()
         };
         assert_eq!(w.members, Some(Field::Wrong(json!(-3))));
@@ -815,7 +858,7 @@ mod tests {
 
     #[test]
     fn numbers_keep_their_text_and_shapes_their_variant() {
-        let Field::Ok(d) = section::<RawDynamics>(&json!({"rates": {"a": 1.0, "b": 2, "c": "a"}}))
+        let Field::Ok(d) = section::<RawDynamics>(leak!({"rates": {"a": 1.0, "b": 2, "c": "a"}}))
         else {
             panic!()
         };
@@ -827,13 +870,13 @@ mod tests {
             .iter()
             .map(|(_, f)| match f {
                 Field::Ok(FormulaText::Number(n)) => n.to_string(),
-                Field::Ok(FormulaText::Text(t)) => t.clone(),
+                Field::Ok(FormulaText::Text(t)) => t.to_string(),
                 Field::Wrong(v) => panic!("{v}"),
             })
             .collect();
         // A constant compiles from the text serde_json writes for it, as in v1.
         assert_eq!(texts, ["1.0", "2", "a"]);
-        let Field::Ok(m) = section::<RawModel>(&json!({"parameters": {"k": 3, "m": "x", "e": {}}}))
+        let Field::Ok(m) = section::<RawModel>(leak!({"parameters": {"k": 3, "m": "x", "e": {}}}))
         else {
             panic!()
         };
@@ -843,7 +886,7 @@ mod tests {
         assert!(matches!(p.0[0].1, Field::Ok(RawParameter::Fixed(x)) if x == 3.0));
         assert_eq!(p.0[1].1.as_wrong(), Some(&json!("x")));
         assert!(matches!(p.0[2].1, Field::Ok(RawParameter::Estimated(_))));
-        let Field::Ok(o) = section::<RawOutput>(&json!({"at": [3, "2026-03-01T06:00:00Z", {}]}))
+        let Field::Ok(o) = section::<RawOutput>(leak!({"at": [3, "2026-03-01T06:00:00Z", {}]}))
         else {
             panic!()
         };

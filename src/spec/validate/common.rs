@@ -69,7 +69,7 @@ pub(super) fn unknown_fields(
         let kind = match renamed.iter().find(|(old, _)| old == k) {
             Some(&(old, new)) => SpecErrorKind::Renamed { old, new },
             None => SpecErrorKind::UnknownField {
-                name: k.clone(),
+                name: k.to_string(),
                 known,
             },
         };
@@ -455,7 +455,7 @@ mod tests {
         let mut errs = SpecErrors::default();
         let mut mode = None;
         let secs = Field::Ok(RawTime::Seconds(1.5));
-        let stamp = Field::Ok(RawTime::Stamp("2026-03-01T06:00:00Z".into()));
+        let stamp = Field::Ok(RawTime::Stamp("2026-03-01T06:00:00Z"));
         assert_eq!(
             time(&secs, "/a", &mut mode, &mut errs),
             Some(Instant::seconds(1.5))

@@ -84,7 +84,7 @@ fn formulas_of(
             errs.push(
                 child(kptr, k),
                 SpecErrorKind::NotAModelState {
-                    name: k.clone(),
+                    name: k.to_string(),
                     states: model_states.to_vec(),
                 },
             );
@@ -94,7 +94,7 @@ fn formulas_of(
     for s in model_states {
         let p = child(kptr, s);
         match f.get(s) {
-            Some(Field::Ok(FormulaText::Text(text))) => texts.push((text.clone(), p)),
+            Some(Field::Ok(FormulaText::Text(text))) => texts.push((text.to_string(), p)),
             Some(Field::Ok(FormulaText::Number(x))) => texts.push((x.to_string(), p)),
             Some(wrong) => {
                 typed(wrong, &p, errs);
@@ -170,7 +170,7 @@ fn linear(
     errs: &mut SpecErrors,
 ) -> Option<Dynamics> {
     let time = required(&l.time, ptr, "time", errs)?;
-    let (time, core) = match time.as_str() {
+    let (time, core) = match *time {
         "continuous" => {
             misplaced(
                 &[("F", l.f.is_some()), ("dt", l.dt.is_some())],
@@ -308,7 +308,7 @@ pub(super) fn process_noise(
                         None => errs.push(
                             &p,
                             SpecErrorKind::NotAModelState {
-                                name: k.clone(),
+                                name: k.to_string(),
                                 states: model_states.to_vec(),
                             },
                         ),

@@ -35,7 +35,7 @@ fn checked(
     errs: &mut SpecErrors,
 ) -> Option<FilterConfig> {
     unknown_fields(&f.unknown, ptr, RawFilter::KNOWN, &[], errs);
-    let method = match required(&f.method, ptr, "method", errs).map(String::as_str) {
+    let method = match required(&f.method, ptr, "method", errs).copied() {
         Some("ekf") => Some(Method::Ekf),
         Some("ukf") => Some(Method::Ukf),
         Some("enkf") => Some(Method::Enkf),
@@ -149,7 +149,7 @@ fn ensemble(e: &RawEnsemble, ptr: &str, limits: &Limits, errs: &mut SpecErrors) 
             None => {}
         }
     }
-    match optional(&e.update, ptr, "update", errs).map(String::as_str) {
+    match optional(&e.update, ptr, "update", errs).copied() {
         Some("perturbed") | None => {}
         Some("deterministic") => out.update = EnsembleUpdate::Deterministic,
         Some(other) => errs.push(

@@ -34,7 +34,7 @@ pub fn check_model(v: &Value, ptr: &str, limits: &Limits) -> Result<Model, Vec<S
 
 /// Read a list of unique names (states or inputs), recording each fault.
 fn name_list(
-    f: &Option<Field<Vec<Field<String>>>>,
+    f: &Option<Field<Vec<Field<&str>>>>,
     ptr: &str,
     what: &'static str,
     taken: &mut Vec<String>,
@@ -50,7 +50,7 @@ fn name_list(
             continue;
         };
         check_new_name(name, &p, what, taken, errs);
-        out.push(name.clone());
+        out.push(name.to_string());
     }
     out
 }
@@ -115,7 +115,7 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
             match pv {
                 Field::Ok(RawParameter::Fixed(x)) => {
                     if let Some(x) = finite(*x, &p, errs) {
-                        constants.push((name.clone(), x));
+                        constants.push((name.to_string(), x));
                     }
                 }
                 Field::Ok(RawParameter::Estimated(e)) => {

@@ -42,7 +42,7 @@ pub fn check_output(
 fn checked(o: &RawOutput, ptr: &str, mode: TimeMode, errs: &mut SpecErrors) -> OutputConfig {
     unknown_fields(&o.unknown, ptr, RawOutput::KNOWN, &[], errs);
     let mut out = OutputConfig::default();
-    match optional(&o.covariance, ptr, "covariance", errs).map(String::as_str) {
+    match optional(&o.covariance, ptr, "covariance", errs).copied() {
         Some("full") | None => {}
         Some("std") => out.covariance = CovarianceOutput::Std,
         Some("none") => out.covariance = CovarianceOutput::None,

@@ -204,7 +204,12 @@ fn spread(
                     cov[(i, i)] = x * x;
                 }
             }
-            Some(_) => errs.push(&p, SpecErrorKind::ParameterSpread { name: k.clone() }),
+            Some(_) => errs.push(
+                &p,
+                SpecErrorKind::ParameterSpread {
+                    name: k.to_string(),
+                },
+            ),
             None => unknown_name(sp, k, &model.states, errs),
         }
     }

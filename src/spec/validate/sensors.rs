@@ -49,7 +49,7 @@ pub(super) fn sensors(
                 &sp,
                 SpecErrorKind::BadName {
                     what: "sensor",
-                    name: name.clone(),
+                    name: name.to_string(),
                 },
             );
         }
@@ -77,13 +77,13 @@ fn sensor(
     let mp = child(sp, "measures");
     let texts: Vec<(String, String)> =
         match super::common::required(&s.measures, sp, "measures", errs)? {
-            Measures::One(text) => vec![(text.clone(), mp)],
+            Measures::One(text) => vec![(text.to_string(), mp)],
             Measures::Many(items) if !items.is_empty() => items
                 .iter()
                 .enumerate()
                 .filter_map(|(i, it)| {
                     let p = index(&mp, i);
-                    typed(it, &p, errs).map(|s| (s.clone(), p))
+                    typed(it, &p, errs).map(|s| (s.to_string(), p))
                 })
                 .collect(),
             Measures::Many(_) => {
