@@ -59,7 +59,11 @@ pub struct LimitArgs {
     #[arg(long, env = "TACIT_MAX_MEMBERS")]
     pub max_members: Option<usize>,
     /// Most measurement lines in one batch request.
-    #[arg(long, env = "TACIT_MAX_READINGS")]
+    #[arg(long, env = "TACIT_MAX_LINES")]
+    pub max_lines: Option<usize>,
+    /// The v1 name of `--max-lines`: kept hidden only to be refused with the new name,
+    /// so a stale flag or environment variable fails loudly instead of being ignored.
+    #[arg(long, env = "TACIT_MAX_READINGS", hide = true)]
     pub max_readings: Option<usize>,
     /// Most simulated times in one request.
     #[arg(long, env = "TACIT_MAX_SIM_TIMES")]
@@ -81,6 +85,12 @@ pub struct LimitArgs {
 impl LimitArgs {
     /// The limits in force: the defaults with every given flag applied.
     pub fn to_limits(&self) -> Result<Limits, String> {
+        if self.max_readings.is_some() {
+            return Err(
+                "--max-readings (TACIT_MAX_READINGS) was renamed --max-lines (TACIT_MAX_LINES)"
+                    .into(),
+            );
+        }
         let mut l = Limits::default();
         macro_rules! set {
             ($($f:ident),*) => { $( if let Some(v) = self.$f { l.$f = v; } )* };
@@ -91,7 +101,7 @@ impl LimitArgs {
             max_states,
             max_sensors,
             max_members,
-            max_readings,
+            max_lines,
             max_sim_times,
             max_formula_len,
             max_formula_depth,
@@ -567,6 +577,12 @@ mod tests {
             ..LimitArgs::default()
         };
         assert!(bad.to_limits().is_err());
+        let old = LimitArgs {
+            max_readings: Some(10),
+            ..LimitArgs::default()
+        };
+        let msg = old.to_limits().unwrap_err();
+        assert!(msg.contains("renamed --max-lines"), "{msg}");
     }
 
     #[test]

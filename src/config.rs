@@ -20,7 +20,7 @@ pub struct Limits {
     /// Most ensemble members.
     pub max_members: usize,
     /// Most measurement lines in one batch request (the stream is unbounded).
-    pub max_readings: usize,
+    pub max_lines: usize,
     /// Most simulated times in one simulate request.
     pub max_sim_times: usize,
     /// Longest formula, characters.
@@ -49,7 +49,7 @@ impl Default for Limits {
             max_states: 256,
             max_sensors: 256,
             max_members: 4096,
-            max_readings: 5_000_000,
+            max_lines: 5_000_000,
             max_sim_times: 1_000_000,
             max_formula_len: 4096,
             max_formula_depth: 64,

@@ -14,7 +14,7 @@ fn trolley_model() -> Value {
     json!({
       "states": ["pos", "vel"],
       "inputs": ["force"],
-      "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "drift": 1e-4}},
+      "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.2, "random_walk": 1e-4}},
       "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel*abs(vel))/mass"}},
       "process_noise": {"density": {"vel": 0.05}},
       "sensors": {
@@ -80,7 +80,7 @@ async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
         "prior": {"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 1.0, "vel": 5.0}},
         "measurements": [
             {"t": 0.10, "values": {"encoder": 0.0123}, "inputs": {"force": 2.5}},
-            {"t": 0.15, "values": {"encoder": 0.0131, "pair": [0.013, 0.2]}, "std": {"encoder": 0.01}},
+            {"t": 0.15, "values": {"encoder": 0.0131, "pair": [0.013, 0.2]}, "noise_std": {"encoder": 0.01}},
             {"t": 0.20, "inputs": {"force": 0.0}}
         ],
         "output": {"covariance": "full", "innovations": true}

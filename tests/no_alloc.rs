@@ -195,7 +195,7 @@ fn rates_steps_allocate_nothing() {
     // Crane trolley with drag estimated as a parameter; adaptive and fixed-step integration.
     let model = json!({
         "states": ["pos", "vel"], "inputs": ["force"],
-        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.1, "drift": 1e-4}},
+        "parameters": {"mass": 12.0, "drag": {"initial": 0.4, "std": 0.1, "random_walk": 1e-4}},
         "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel*abs(vel))/mass"}},
         "process_noise": {"density": {"vel": 0.05}},
         "sensors": {"encoder": {"measures": "pos", "std": 0.01},

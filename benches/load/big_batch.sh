@@ -13,7 +13,7 @@ BODY="$(mktemp /tmp/tacit-batch.XXXXXX.json)"
 OUT="${ANSWER:-$(mktemp /tmp/tacit-batch-out.XXXXXX.json)}"
 python3 "$HERE/gen.py" batch "$N" >"$BODY"
 echo "body: $(stat -c %s "$BODY") bytes, $N readings"
-start_server --max-readings "$((N + 1))" --max-body-bytes "$(( $(stat -c %s "$BODY") + 1024 ))"
+start_server --max-lines "$((N + 1))" --max-body-bytes "$(( $(stat -c %s "$BODY") + 1024 ))"
 load_note
 cpu0=$(server_cpu_secs)
 read -r code secs size < <(curl -s -o "$OUT" -w '%{http_code} %{time_total} %{size_download}\n' \

@@ -39,8 +39,8 @@ fn measurement_list<'a>(env: &Envelope<'a>, limits: &Limits) -> Result<Vec<&'a s
             raws.into_iter().map(RawValue::get).collect()
         }
     };
-    if list.len() > limits.max_readings {
-        return Err(Problem::field("/measurements", format!("{} lines exceed the limit of {} per request; use the stream endpoint or split the run", list.len(), limits.max_readings)));
+    if list.len() > limits.max_lines {
+        return Err(Problem::field("/measurements", format!("{} lines exceed the limit of {} per request; use the stream endpoint or split the run", list.len(), limits.max_lines)));
     }
     Ok(list)
 }

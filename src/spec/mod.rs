@@ -1,8 +1,13 @@
-//! Request specifications: JSON in, checked types out. Parsing happens in two stages, the
-//! raw JSON sections (`request`, `reader`, `reading`) and one validation step (`validate`)
-//! producing the checked [`model`] types that the filters consume.
+//! Request specifications: JSON in, checked types out. Parsing happens in two stages: the
+//! request envelope (`request`) and serde mirror types of each section (`raw`), then one
+//! validation step (`validate`) producing the checked [`model`] types that the filters
+//! consume, with typed errors (`error`). Measurement lines have their own reader
+//! (`reading`), with a byte cursor for the usual line (`line_scan`).
 
+pub mod error;
+mod line_scan;
 pub mod model;
+pub mod raw;
 pub mod reader;
 pub mod reading;
 pub mod request;

@@ -15,8 +15,8 @@ pub struct EstimatedParameter {
     pub initial: f64,
     /// Prior standard deviation.
     pub std: f64,
-    /// Random-walk spectral density (variance per unit time).
-    pub drift: f64,
+    /// Random-walk spectral density (variance per unit time), `random_walk` in requests.
+    pub random_walk: f64,
 }
 
 /// Whether a linear model is continuous or discrete in time.
@@ -72,14 +72,14 @@ impl Dynamics {
 #[derive(Debug, Clone)]
 pub enum ProcessNoise {
     /// Continuous white noise with spectral density matrix `Qc` (variance per unit time);
-    /// estimated parameters' drift sits on their diagonal.
+    /// estimated parameters' random-walk densities sit on their diagonal.
     Density(DMatrix<f64>),
-    /// Discrete noise: `q` per application of the map (model states), plus `drift · dt`
+    /// Discrete noise: `q` per application of the map (model states), plus `random_walk · dt`
     /// on each estimated parameter's diagonal.
     PerStep {
         /// Covariance added per step, `n × n` (zero rows/columns for parameters).
         q: DMatrix<f64>,
-        /// Drift density per state (zero for model states).
+        /// Random-walk density per state (zero for model states).
         drift: DVector<f64>,
     },
 }

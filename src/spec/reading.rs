@@ -4,6 +4,7 @@
 //! a generic JSON tree.
 
 use crate::problem::{escape_token, FieldError};
+use crate::spec::line_scan::Scan;
 use crate::spec::model::Model;
 use crate::spec::reader::names_list;
 use crate::spec::time::{Instant, TimeMode};
@@ -23,7 +24,7 @@ pub struct Reading {
     pub z: Vec<f64>,
     /// Per-reading noise overrides: `(sensor index, offset into std)`.
     pub std_overrides: Vec<(usize, usize)>,
-    /// Override std values.
+    /// Override std values (a line's `noise_std`).
     pub std: Vec<f64>,
     /// Inputs set on this line: `(input index, value)`.
     pub inputs: Vec<(usize, f64)>,
@@ -144,7 +145,10 @@ struct RawReading<'a> {
     #[serde(default, borrow)]
     inputs: Option<Entries<'a, Option<f64>>>,
     #[serde(default, borrow)]
-    std: Option<Entries<'a, RawVal>>,
+    noise_std: Option<Entries<'a, RawVal>>,
+    /// The v1 name of `noise_std`, accepted by the parser only to be refused by name.
+    #[serde(default)]
+    std: Option<serde::de::IgnoredAny>,
 }
 
 /// What went wrong while reading one measurement line.
@@ -220,11 +224,7 @@ impl<'m> ReadingParser<'m> {
     /// `float_roundtrip` feature: both readers give the same bits (tested).
     fn parse_plain(&self, text: &str, out: &mut Reading) -> Option<()> {
         let m = self.model;
-        let mut sc = Scan {
-            s: text,
-            b: text.as_bytes(),
-            i: 0,
-        };
+        let mut sc = Scan::new(text);
         out.sensors.clear();
         out.z.clear();
         out.std_overrides.clear();
@@ -410,9 +410,12 @@ impl<'m> ReadingParser<'m> {
                 }
             }
         }
-        if let Some(stds) = raw.std {
+        if raw.std.is_some() {
+            errs.push(FieldError::new("/std", "`std` was renamed `noise_std`"));
+        }
+        if let Some(stds) = raw.noise_std {
             for (name, v) in stds.0 {
-                let p = || format!("/std/{}", escape_token(&name));
+                let p = || format!("/noise_std/{}", escape_token(&name));
                 let Some(si) = m.sensor_index(&name) else {
                     errs.push(FieldError::new(p(), format!("unknown sensor '{name}'")));
                     continue;
@@ -427,7 +430,7 @@ impl<'m> ReadingParser<'m> {
                         errs.push(FieldError::new(
                             p(),
                             format!(
-                                "sensor '{name}' has {dim} component(s), found {} std values",
+                                "sensor '{name}' has {dim} component(s), found {} noise_std values",
                                 xs.len()
                             ),
                         ));
@@ -435,7 +438,7 @@ impl<'m> ReadingParser<'m> {
                     }
                 }
                 if out.std[start..].iter().any(|s| !(*s > 0.0)) {
-                    errs.push(FieldError::new(p(), "std must be positive"));
+                    errs.push(FieldError::new(p(), "noise_std must be positive"));
                     out.std.truncate(start);
                     continue;
                 }
@@ -447,110 +450,6 @@ impl<'m> ReadingParser<'m> {
         } else {
             Err(errs)
         }
-    }
-}
-
-/// A cursor over one line's bytes for [`ReadingParser::parse_plain`]; every method skips
-/// JSON whitespace first and returns `None` (or false) on anything unexpected.
-struct Scan<'a> {
-    /// The line, and the same as bytes; slices of `s` at ASCII positions need no UTF-8
-    /// check.
-    s: &'a str,
-    b: &'a [u8],
-    i: usize,
-}
-
-impl<'a> Scan<'a> {
-    fn ws(&mut self) {
-        while matches!(self.b.get(self.i), Some(b' ' | b'\t' | b'\n' | b'\r')) {
-            self.i += 1;
-        }
-    }
-
-    fn eat_if(&mut self, c: u8) -> bool {
-        self.ws();
-        let hit = self.b.get(self.i) == Some(&c);
-        self.i += hit as usize;
-        hit
-    }
-
-    fn eat(&mut self, c: u8) -> Option<()> {
-        self.eat_if(c).then_some(())
-    }
-
-    fn literal(&mut self, word: &[u8]) -> bool {
-        self.ws();
-        let hit = self.b[self.i..].starts_with(word);
-        if hit {
-            self.i += word.len();
-        }
-        hit
-    }
-
-    /// Whitespace to the end of the text.
-    fn end(&mut self) -> Option<()> {
-        self.ws();
-        (self.i == self.b.len()).then_some(())
-    }
-
-    /// A string without escapes or control characters (the usual key).
-    fn key(&mut self) -> Option<&'a str> {
-        self.eat(b'"')?;
-        let start = self.i;
-        loop {
-            match *self.b.get(self.i)? {
-                b'"' => break,
-                b'\\' => return None,
-                c if c < 0x20 => return None,
-                _ => self.i += 1,
-            }
-        }
-        let s = self.s.get(start..self.i)?;
-        self.i += 1;
-        Some(s)
-    }
-
-    /// A finite JSON number: -?(0|[1-9][0-9]*)(.[0-9]+)?([eE][+-]?[0-9]+)?.
-    fn number(&mut self) -> Option<f64> {
-        self.ws();
-        let start = self.i;
-        let digit = |s: &Self| matches!(s.b.get(s.i), Some(b'0'..=b'9'));
-        let digits = |s: &mut Self| {
-            let from = s.i;
-            while digit(s) {
-                s.i += 1;
-            }
-            s.i > from
-        };
-        self.eat_if_raw(b'-');
-        match self.b.get(self.i)? {
-            b'0' => self.i += 1,
-            b'1'..=b'9' => {
-                digits(self);
-            }
-            _ => return None,
-        }
-        if self.eat_if_raw(b'.') && !digits(self) {
-            return None;
-        }
-        if matches!(self.b.get(self.i), Some(b'e' | b'E')) {
-            self.i += 1;
-            if !self.eat_if_raw(b'+') {
-                self.eat_if_raw(b'-');
-            }
-            if !digits(self) {
-                return None;
-            }
-        }
-        let x: f64 = self.s.get(start..self.i)?.parse().ok()?;
-        x.is_finite().then_some(x)
-    }
-
-    /// `c` at the cursor itself, without skipping whitespace.
-    fn eat_if_raw(&mut self, c: u8) -> bool {
-        let hit = self.b.get(self.i) == Some(&c);
-        self.i += hit as usize;
-        hit
     }
 }
 
@@ -703,5 +602,42 @@ mod plain_line_tests {
             let line = format!(r#"{{"t":{},"values":{{"a":{text}}}}}"#, k as f64 * 0.01);
             assert!(check(&p, &line), "fast path refused {line}");
         }
+    }
+
+    #[test]
+    fn a_line_overrides_noise_under_its_v2_name_only() {
+        let m = model();
+        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let mut r = Reading::default();
+        p.parse(
+            r#"{"t": 1, "values": {"v": [1, 2]}, "noise_std": {"v": [0.5, 2]}}"#,
+            &mut r,
+        )
+        .unwrap_or_else(|_| panic!("noise_std refused"));
+        assert_eq!(
+            (r.std_overrides.as_slice(), r.std.as_slice()),
+            (&[(1, 0)][..], &[0.5, 2.0][..])
+        );
+        let pointed = |line: &str| match p.parse(line, &mut Reading::default()) {
+            Err(LineError::Invalid(e)) => e
+                .into_iter()
+                .map(|e| (e.pointer, e.detail))
+                .collect::<Vec<_>>(),
+            _ => panic!("{line} was not refused as invalid"),
+        };
+        assert_eq!(
+            pointed(r#"{"t": 1, "values": {"a": 1}, "std": {"a": 0.1}}"#),
+            [(
+                "/std".to_string(),
+                "`std` was renamed `noise_std`".to_string()
+            )]
+        );
+        assert_eq!(
+            pointed(r#"{"t": 1, "values": {"a": 1}, "noise_std": {"a": 0}}"#),
+            [(
+                "/noise_std/a".to_string(),
+                "noise_std must be positive".to_string()
+            )]
+        );
     }
 }

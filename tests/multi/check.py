@@ -28,7 +28,7 @@ import urllib.request
 MODEL = {
     "states": ["pos", "vel"],
     "inputs": ["force"],
-    "parameters": {"mass": 40.0, "drag": {"initial": 2.0, "std": 1.0, "drift": 1e-3}},
+    "parameters": {"mass": 40.0, "drag": {"initial": 2.0, "std": 1.0, "random_walk": 1e-3}},
     "dynamics": {"rates": {"pos": "vel", "vel": "(force - drag*vel)/mass"}},
     "process_noise": {"density": {"vel": 0.02}},
     "sensors": {"encoder": {"measures": "pos", "std": 0.003}},

@@ -1,0 +1,22 @@
+//! The validation step: raw sections (`spec::raw`) in, the checked [`Model`],
+//! [`FilterConfig`], [`Prior`] and [`OutputConfig`] out, or every fault found, each at
+//! its JSON Pointer. One file per section; shared checks in `common`.
+//!
+//! [`Model`]: crate::spec::model::Model
+//! [`FilterConfig`]: crate::spec::model::FilterConfig
+//! [`Prior`]: crate::spec::model::Prior
+//! [`OutputConfig`]: crate::spec::model::OutputConfig
+
+mod common;
+mod dynamics;
+mod filter;
+mod model;
+mod output;
+mod prior;
+mod sensors;
+
+pub use common::time_value;
+pub use filter::{check_filter, filter};
+pub use model::{check_model, model};
+pub use output::{check_output, output};
+pub use prior::{check_prior, prior};
