@@ -7,10 +7,10 @@
 //! optional dropout and gross outliers (`scale` times the noise) for exercising the gate.
 
 use crate::config::Limits;
-use crate::filter::linalg::cholesky_psd;
 use crate::filter::predict::Predictor;
 use crate::job::write::num;
 use crate::job::{Done, RunStats};
+use crate::linalg::cholesky_psd;
 use crate::problem::{Problem, ProblemKind};
 use crate::spec::model::{Integration, Model};
 use crate::spec::reader::{array, index, number, positive, whole, Errors, Obj};

@@ -12,11 +12,11 @@
 //! factorisation and only rank-one corrections; see `Ekf::sequential_update`.
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
-use crate::filter::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt, symmetrize};
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
 use crate::filter::{ensure_finite, Estimator, FilterError};
 use crate::formula::Workspace;
+use crate::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt, symmetrize};
 use crate::spec::model::{Integration, Model};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};

@@ -13,13 +13,13 @@
 //! Every random draw comes from a ChaCha20 stream selected by (seed, step, purpose), so a run
 //! split into requests that carry `members` and `step` continues bit for bit.
 
-use crate::filter::linalg::{
-    all_finite, cholesky, cholesky_psd, dot4, gemm_nn, gemm_nt_upper, solve_lower, symmetric_eigen,
-    symmetrize,
-};
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
 use crate::filter::{Estimator, FilterError};
+use crate::linalg::{
+    all_finite, cholesky, cholesky_psd, dot4, gemm_nn, gemm_nt_upper, solve_lower, symmetric_eigen,
+    symmetrize,
+};
 use crate::spec::model::{Ensemble, EnsembleUpdate, Integration, Model};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};

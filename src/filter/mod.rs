@@ -1,10 +1,10 @@
 //! The filters: extended, unscented and ensemble Kalman filters behind one [`Estimator`]
 //! trait, with their shared propagation ([`predict`]), update machinery ([`observe`]),
-//! dense kernels ([`linalg`]), the run loop ([`run`]) and the RTS smoother ([`smoother`]).
+//! the run loop ([`run`]) and the RTS smoother ([`smoother`]); their dense kernels live in
+//! [`crate::linalg`].
 
 pub mod ekf;
 pub mod enkf;
-pub mod linalg;
 pub mod observe;
 pub mod predict;
 pub mod run;
@@ -13,6 +13,7 @@ pub mod smoother;
 mod test_fixtures;
 pub mod ukf;
 
+use crate::linalg::all_finite;
 use crate::spec::model::Model;
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
@@ -48,7 +49,7 @@ impl std::fmt::Display for FilterError {
 /// `Ok` when every entry of `a` and `b` is finite, else `NonFinite(what)`: the check that
 /// keeps NaN and infinities out of every answer.
 pub fn ensure_finite(a: &[f64], b: &[f64], what: &'static str) -> Result<(), FilterError> {
-    if linalg::all_finite(a) && linalg::all_finite(b) {
+    if all_finite(a) && all_finite(b) {
         Ok(())
     } else {
         Err(FilterError::NonFinite(what))

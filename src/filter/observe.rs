@@ -7,8 +7,8 @@
 //! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6). Each sensor reading j
 //! is judged by NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4).
 
-use crate::filter::linalg::{cholesky, cholesky_solve, mahalanobis};
 use crate::filter::FilterError;
+use crate::linalg::{cholesky, cholesky_solve, mahalanobis};
 use crate::spec::model::Model;
 use crate::spec::reading::Reading;
 

@@ -13,9 +13,9 @@
 //! Everything is preallocated at construction; a prediction allocates nothing.
 
 use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
-use crate::filter::linalg::{all_finite, congruence_plus, symmetrize};
 use crate::filter::{ensure_finite, FilterError};
 use crate::formula::{BatchWorkspace, Program, Workspace};
+use crate::linalg::{all_finite, congruence_plus, symmetrize};
 use crate::spec::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
 use nalgebra::{DMatrix, DVector};
 
@@ -335,7 +335,7 @@ impl Predictor {
 
     /// Number of grid steps for a discrete linear model over a gap `dt`.
     fn grid_steps(dt: f64, grid: f64) -> usize {
-        crate::filter::linalg::round_half_away(dt / grid).max(0.0) as usize
+        crate::linalg::round_half_away(dt / grid).max(0.0) as usize
     }
 
     /// Gaussian prediction over `dt > 0` from time `t0` with inputs `u`. When `phi` is
@@ -400,7 +400,7 @@ impl Predictor {
                     }
                     congruence_plus(matrix, cov, q_used, &mut self.tmp);
                     if let Some(p) = phi.as_deref_mut() {
-                        crate::filter::linalg::mul_ab(matrix, p, &mut self.tmp);
+                        crate::linalg::mul_ab(matrix, p, &mut self.tmp);
                         p.copy_from(&self.tmp);
                     }
                 }
@@ -526,7 +526,7 @@ impl Predictor {
                 self.discretise(model, dt);
                 let d = &self.dcache[self.current];
                 // X ← X Φᵀ + 1 (Γ u)ᵀ
-                crate::filter::linalg::mul_abt(x, &d.phi, &mut self.xm);
+                crate::linalg::mul_abt(x, &d.phi, &mut self.xm);
                 for i in 0..n {
                     let c = if self.has_offset {
                         d.gamma[(i, nu)]
@@ -556,7 +556,7 @@ impl Predictor {
                     self.vtmp[i] = (0..nu).map(|j| b[(i, j)] * u[j]).sum();
                 }
                 for _ in 0..k {
-                    crate::filter::linalg::mul_abt(x, matrix, &mut self.xm);
+                    crate::linalg::mul_abt(x, matrix, &mut self.xm);
                     for i in 0..n {
                         for j in 0..mp {
                             x[(j, i)] = self.xm[(j, i)] + self.vtmp[i];

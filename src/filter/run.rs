@@ -149,7 +149,7 @@ impl Run {
         } = &self.model.dynamics
         {
             let k = self.origin.until(t, self.mode) / dt;
-            if (k - crate::filter::linalg::round_half_away(k)).abs() > 1e-6 {
+            if (k - crate::linalg::round_half_away(k)).abs() > 1e-6 {
                 return Err(Problem::field(
                     format!("{pointer}/t"),
                     format!("time {} is not on the model's grid prior.t + k·{dt} (the discrete model steps by dt)", fmt_time(t, self.mode)),

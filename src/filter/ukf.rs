@@ -9,10 +9,10 @@
 //! applies K = C S⁻¹, P⁺ = P − K S Kᵀ (= P − K Cᵀ), symmetrised.
 //! Fails with a typed error if P loses positive semi-definiteness (its factor fails).
 
-use crate::filter::linalg::{cholesky_psd, symmetrize};
 use crate::filter::observe::{ObsSpace, PointObserver};
 use crate::filter::predict::Predictor;
 use crate::filter::{ensure_finite, Estimator, FilterError};
+use crate::linalg::{cholesky_psd, symmetrize};
 use crate::spec::model::{Integration, Model, Unscented};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};

@@ -2,8 +2,8 @@
 //! [`Prior`] and [`OutputConfig`] out, or every problem found with its JSON Pointer.
 
 use crate::config::Limits;
-use crate::filter::linalg::{cholesky_psd, is_symmetric, symmetrize};
 use crate::formula::{FormulaLimits, Program, Source};
+use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
 use crate::problem::FieldError;
 use crate::spec::model::*;
 use crate::spec::reader::{
