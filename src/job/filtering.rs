@@ -374,7 +374,7 @@ impl Lines<'_> {
             let reading = source.next(i)?;
             preds.write(run, self.writer, Some(&reading.t))?;
             run.step(reading, "")
-                .map_err(|p| problem_under(p, &line_pointer(i)))?;
+                .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
             let est = run.estimator();
             block.push(
                 self.writer,
@@ -506,7 +506,7 @@ impl Lines<'_> {
             preds.write(run, self.writer, Some(&reading.t))?;
             let mut predicted = None;
             run.step_capturing(&reading, "", Some(&mut predicted))
-                .map_err(|p| problem_under(p, &line_pointer(i)))?;
+                .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
             let est = run.estimator();
             let predicted = predicted.map(|(m, p)| (m, p, est.cross().clone()));
             stored.push(Stored {
@@ -681,7 +681,8 @@ impl Stream {
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;
-        self.run.step(&self.reading, "").map_err(|mut p| {
+        self.run.step(&self.reading, "").map_err(|e| {
+            let mut p = Problem::from(e);
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;

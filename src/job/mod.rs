@@ -5,6 +5,7 @@
 //! the JSON answer. Failures are [`Problem`]s with JSON Pointers into the request.
 
 use crate::config::Limits;
+mod failure;
 mod filtering;
 pub mod records;
 pub mod write;
