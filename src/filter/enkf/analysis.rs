@@ -35,17 +35,17 @@ impl Enkf {
         if self.cfg.inflation != 1.0 {
             let (xs, infl) = (self.ensemble.as_mut_slice(), self.cfg.inflation);
             for i in 0..n {
-                let m = self.mean[i];
+                let m = self.core.mean[i];
                 for x in &mut xs[i * nn..(i + 1) * nn] {
                     *x = m + infl * (*x - m);
                 }
             }
             self.refresh_mean();
         }
-        self.obs.begin(model, reading);
+        self.core.obs.begin(model, reading);
         self.pobs
-            .eval(model, &self.obs.checks, &self.ensemble, u, t);
-        let m = self.obs.m;
+            .eval(model, &self.core.obs.checks, &self.ensemble, u, t);
+        let m = self.core.obs.m;
         let zs = &self.pobs.zs;
         let nf = nn as f64;
         // ȳ_r = Σₖ y_rk / N with the rows as independent running sums (members still
@@ -59,7 +59,7 @@ impl Enkf {
         }
         for r in 0..m {
             self.ws.reading_mean[r] = acc[r] / nf;
-            self.obs.zhat[r] = self.ws.reading_mean[r];
+            self.core.obs.zhat[r] = self.ws.reading_mean[r];
         }
         for r in 0..m {
             for k in 0..nn {
@@ -70,7 +70,7 @@ impl Enkf {
         // only each sensor's diagonal block of S for its own NIS (only the diagonal, for
         // the answer, when the joint NIS, which it computes itself, settles the line).
         let need_c = self.cfg.update == EnsembleUpdate::Perturbed;
-        let only_check = !need_c && self.obs.joint_is_only_check(gate);
+        let only_check = !need_c && self.core.obs.joint_is_only_check(gate);
         if need_c {
             self.fill_anomalies();
         }
@@ -86,19 +86,19 @@ impl Enkf {
                 }
             }
             for r in 0..m {
-                self.obs.s[r + r * m] = acc[r] / (nf - 1.0);
+                self.core.obs.s[r + r * m] = acc[r] / (nf - 1.0);
             }
         }
         let spans = match (need_c, only_check) {
             (true, _) => 1,
             (false, true) => 0,
-            (false, false) => self.obs.checks.len(),
+            (false, false) => self.core.obs.checks.len(),
         };
         for span in 0..spans {
             let (lo, hi) = if need_c {
                 (0, m)
             } else {
-                let ck = &self.obs.checks[span];
+                let ck = &self.core.obs.checks[span];
                 (ck.row, ck.row + ck.dim)
             };
             for c in lo..hi {
@@ -113,8 +113,8 @@ impl Enkf {
                 }
                 for (d, &sum) in acc.iter().enumerate() {
                     let r = lo + d;
-                    self.obs.s[r + c * m] = sum / (nf - 1.0);
-                    self.obs.s[c + r * m] = sum / (nf - 1.0);
+                    self.core.obs.s[r + c * m] = sum / (nf - 1.0);
+                    self.core.obs.s[c + r * m] = sum / (nf - 1.0);
                 }
                 if need_c {
                     let acc = &mut self.ws.sums[..n];
@@ -129,26 +129,26 @@ impl Enkf {
                         }
                     }
                     for i in 0..n {
-                        self.obs.c[i + c * n] = acc[i] / (nf - 1.0);
+                        self.core.obs.c[i + c * n] = acc[i] / (nf - 1.0);
                     }
                 }
             }
         }
         let any = if need_c {
-            self.obs.gate(gate)?
+            self.core.obs.gate(gate)?
         } else {
-            self.obs.gate_blocks(gate)?
+            self.core.obs.gate_blocks(gate)?
         };
         if !any {
             return Ok(false);
         }
         if need_c {
-            self.obs.gain()?;
+            self.core.obs.gain()?;
         }
-        let ma = self.obs.ma;
-        let r = &self.obs.r_acc[..ma * ma];
+        let ma = self.core.obs.ma;
+        let r = &self.core.obs.r_acc[..ma * ma];
         // The accepted rows of a diagonal R.
-        self.ws.noise_is_diagonal = self.obs.r_diagonal;
+        self.ws.noise_is_diagonal = self.core.obs.r_diagonal;
         if self.ws.noise_is_diagonal {
             // Cholesky of a diagonal matrix: square roots of the diagonal.
             let lr = &mut self.ws.noise_factor[..ma * ma];
@@ -171,7 +171,7 @@ impl Enkf {
             EnsembleUpdate::Deterministic => {
                 self.transform_update()?;
                 let nis = self.transform_nis();
-                self.obs.set_joint_nis(nis, only_check);
+                self.core.obs.set_joint_nis(nis, only_check);
             }
         }
         self.refresh_mean();

@@ -9,8 +9,8 @@
 //! run split into requests that carry `members` and `step` continues bit for bit.
 
 use super::workspace::Workspace;
-use crate::filter::observe::{ObsSpace, PointObserver};
-use crate::filter::predict::Predictor;
+use crate::filter::observe::PointObserver;
+use crate::filter::shared::FilterCore;
 use crate::filter::{Estimator, FilterError};
 use crate::linalg::{all_finite, cholesky_psd, gemm_nt_upper, symmetrize};
 use crate::spec::model::{Ensemble, Integration, Model};
@@ -41,11 +41,10 @@ pub(super) fn stream(seed: u64, step: u64, purpose: Purpose) -> ChaCha20Rng {
 pub struct Enkf {
     /// The members, one per row (`N × n`).
     pub(super) ensemble: DMatrix<f64>,
-    /// Their mean (`n`).
-    pub(super) mean: DVector<f64>,
-    /// Their covariance (divisor `N − 1`), valid when `cov_stale` is false.
-    pub(super) cov: DMatrix<f64>,
-    /// Whether the members changed since `cov` was computed.
+    /// Their mean and covariance (divisor `N − 1`; valid when `cov_stale` is false), the
+    /// smoother's cross covariance, the update's reading-space buffers and the propagator.
+    pub(super) core: FilterCore,
+    /// Whether the members changed since `core.cov` was computed.
     pub(super) cov_stale: bool,
     /// Members, seed, inflation and update form, as requested.
     pub(super) cfg: Ensemble,
@@ -55,14 +54,8 @@ pub struct Enkf {
     pub(super) side: bool,
     /// Always use the full `N × N` transform (tests compare it with the small form).
     pub(super) always_full: bool,
-    /// Propagation of the members between readings.
-    pub(super) pred: Predictor,
-    /// The update's reading-space quantities (innovations, S, gate decisions).
-    pub(super) obs: ObsSpace,
     /// Predicted readings of every member.
     pub(super) pobs: PointObserver,
-    /// Cov(x_prev, x_pred) of the last prediction, for the smoother.
-    pub(super) cross: DMatrix<f64>,
     /// Scratch and per-step buffers.
     pub(super) ws: Workspace,
 }
@@ -100,17 +93,19 @@ impl Enkf {
         };
         let mut f = Self {
             ensemble: x,
-            mean: DVector::zeros(n),
-            cov: DMatrix::zeros(n, n),
+            core: FilterCore::new(
+                model,
+                integration,
+                nn,
+                DVector::zeros(n),
+                DMatrix::zeros(n, n),
+            ),
             cov_stale: true,
             cfg,
             step,
             side: false,
             always_full: false,
-            pred: Predictor::new(model, integration, nn),
-            obs: ObsSpace::new(model),
             pobs: PointObserver::new(model, nn),
-            cross: DMatrix::zeros(n, n),
             ws: Workspace::new(nn, n, mm),
         };
         f.refresh_moments();
@@ -134,12 +129,12 @@ impl Enkf {
                 }
             }
             for (q, a) in acc.iter().enumerate() {
-                self.mean[i + q] = a / nn as f64;
+                self.core.mean[i + q] = a / nn as f64;
             }
             i += 4;
         }
         for i in i..n {
-            self.mean[i] = self.ensemble.column(i).iter().sum::<f64>() / nn as f64;
+            self.core.mean[i] = self.ensemble.column(i).iter().sum::<f64>() / nn as f64;
         }
         self.cov_stale = true;
     }
@@ -159,14 +154,14 @@ impl Enkf {
         gemm_nt_upper(
             &self.ws.state_anomalies,
             &self.ws.state_anomalies,
-            self.cov.as_mut_slice(),
+            self.core.cov.as_mut_slice(),
             (n, nn, n),
         );
         for j in 0..n {
             for i in 0..=j {
-                let s = self.cov[(i, j)] / (nn as f64 - 1.0);
-                self.cov[(i, j)] = s;
-                self.cov[(j, i)] = s;
+                let s = self.core.cov[(i, j)] / (nn as f64 - 1.0);
+                self.core.cov[(i, j)] = s;
+                self.core.cov[(j, i)] = s;
             }
         }
     }
@@ -176,7 +171,7 @@ impl Enkf {
         let (nn, n) = (self.ensemble.nrows(), self.ensemble.ncols());
         let xs = self.ensemble.as_slice();
         for i in 0..n {
-            let m = self.mean[i];
+            let m = self.core.mean[i];
             for (k, &v) in xs[i * nn..(i + 1) * nn].iter().enumerate() {
                 self.ws.state_anomalies[i + k * n] = v - m;
             }
@@ -196,9 +191,9 @@ impl Estimator for Enkf {
     ) -> Result<(), FilterError> {
         if keep_cross {
             self.ws.previous_members.copy_from(&self.ensemble);
-            self.ws.previous_mean.copy_from(&self.mean);
+            self.ws.previous_mean.copy_from(&self.core.mean);
         }
-        let noisy = self.pred.predict_points(
+        let noisy = self.core.pred.predict_points(
             model,
             &mut self.ensemble,
             &self.ws.member_weights,
@@ -244,10 +239,10 @@ impl Estimator for Enkf {
             let (nn, n) = (self.ensemble.nrows(), self.ensemble.ncols());
             for j in 0..n {
                 for i in 0..n {
-                    self.cross[(i, j)] = (0..nn)
+                    self.core.cross[(i, j)] = (0..nn)
                         .map(|k| {
                             (self.ws.previous_members[(k, i)] - self.ws.previous_mean[i])
-                                * (self.ensemble[(k, j)] - self.mean[j])
+                                * (self.ensemble[(k, j)] - self.core.mean[j])
                         })
                         .sum::<f64>()
                         / (nn as f64 - 1.0);
@@ -271,27 +266,23 @@ impl Estimator for Enkf {
         self.analyse(model, reading, u, t, gate)
     }
 
-    fn obs(&self) -> &ObsSpace {
-        &self.obs
+    fn core(&self) -> &FilterCore {
+        &self.core
     }
 
-    fn mean(&self) -> &DVector<f64> {
-        &self.mean
+    fn core_mut(&mut self) -> &mut FilterCore {
+        &mut self.core
     }
 
     fn covariance(&self) -> &DMatrix<f64> {
         debug_assert!(!self.cov_stale, "ensemble covariance read before settle");
-        &self.cov
+        &self.core.cov
     }
 
     fn settle(&mut self) {
         if self.cov_stale {
             self.refresh_covariance();
         }
-    }
-
-    fn cross(&self) -> &DMatrix<f64> {
-        &self.cross
     }
 
     fn members(&self) -> Option<&DMatrix<f64>> {
@@ -304,10 +295,6 @@ impl Estimator for Enkf {
 
     fn step(&self) -> u64 {
         self.step
-    }
-
-    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
-        self.pred.set_deadline(deadline);
     }
 
     fn clone_box(&self) -> Box<dyn Estimator> {

@@ -17,7 +17,11 @@ use rand_distr::StandardNormal;
 impl Enkf {
     /// Add `K (z + L_R ε_j − h(x_j))` to every member `j` over the accepted rows.
     pub(super) fn perturbed_update(&mut self) {
-        let (nn, n, ma) = (self.ensemble.nrows(), self.ensemble.ncols(), self.obs.ma);
+        let (nn, n, ma) = (
+            self.ensemble.nrows(),
+            self.ensemble.ncols(),
+            self.core.obs.ma,
+        );
         let mut rng = stream(self.cfg.seed, self.step, Purpose::Perturbation);
         let zs = &self.pobs.zs;
         for j in 0..nn {
@@ -29,12 +33,12 @@ impl Enkf {
                 let lre: f64 = (0..=a)
                     .map(|b| self.ws.noise_factor[a + b * ma] * self.ws.draws[b])
                     .sum();
-                let row = self.obs.keep[a];
-                self.ws.innovation[a] = self.obs.z[row] + lre - zs[row * nn + j];
+                let row = self.core.obs.keep[a];
+                self.ws.innovation[a] = self.core.obs.z[row] + lre - zs[row * nn + j];
             }
             for i in 0..n {
                 let inc: f64 = (0..ma)
-                    .map(|a| self.obs.kt[a + i * ma] * self.ws.innovation[a])
+                    .map(|a| self.core.obs.kt[a + i * ma] * self.ws.innovation[a])
                     .sum();
                 self.ensemble[(j, i)] += inc;
             }

@@ -35,7 +35,11 @@ impl Enkf {
     /// The ensemble transform analysis of the accepted rows (the equations in this
     /// module's doc), through the small form when there are fewer rows than members.
     pub(super) fn transform_update(&mut self) -> Result<(), FilterError> {
-        let (nn, n, ma) = (self.ensemble.nrows(), self.ensemble.ncols(), self.obs.ma);
+        let (nn, n, ma) = (
+            self.ensemble.nrows(),
+            self.ensemble.ncols(),
+            self.core.obs.ma,
+        );
         let mm = self.ws.whitened.nrows();
         let zs = &self.pobs.zs;
         let nf = nn as f64;
@@ -44,7 +48,7 @@ impl Enkf {
             // Row a of Ỹ is the contiguous row of predicted readings over the members,
             // scaled: build Ỹᵀ (`ytt`) in that order, then Ỹ from it.
             for a in 0..ma {
-                let row = self.obs.keep[a];
+                let row = self.core.obs.keep[a];
                 let (yb, w) = (self.ws.reading_mean[row], self.ws.inv_noise_sd[a]);
                 let src = &zs[row * nn..(row + 1) * nn];
                 for (t, &z) in self.ws.whitened_t[a * nn..(a + 1) * nn].iter_mut().zip(src) {
@@ -60,7 +64,7 @@ impl Enkf {
         } else {
             for j in 0..nn {
                 for a in 0..ma {
-                    let row = self.obs.keep[a];
+                    let row = self.core.obs.keep[a];
                     self.ws.draws[a] = zs[row * nn + j] - self.ws.reading_mean[row];
                 }
                 solve_lower(
@@ -79,7 +83,7 @@ impl Enkf {
             }
         }
         for a in 0..ma {
-            self.ws.innovation[a] = self.obs.nu_acc[a];
+            self.ws.innovation[a] = self.core.obs.nu_acc[a];
         }
         whiten(
             &self.ws.noise_factor,
@@ -178,7 +182,7 @@ impl Enkf {
         // Xₐ(j, :) = x̄ + Σ_k X'(k, :) T(k, j): with `trans` = Tᵀ, Xₐ − x̄ = Tᵀ X'.
         let xs = self.ensemble.as_slice();
         for i in 0..n {
-            let m = self.mean[i];
+            let m = self.core.mean[i];
             let col = &xs[i * nn..(i + 1) * nn];
             for (d, &x) in self.ws.member_anomalies[i * nn..(i + 1) * nn]
                 .iter_mut()
@@ -199,7 +203,7 @@ impl Enkf {
             self.ws.analysis_anomalies.as_slice(),
         );
         for i in 0..n {
-            let m = self.mean[i];
+            let m = self.core.mean[i];
             let col = &xa[i * nn..(i + 1) * nn];
             for (x, &d) in xs[i * nn..(i + 1) * nn].iter_mut().zip(col) {
                 *x = m + d;
@@ -215,7 +219,11 @@ impl Enkf {
     ///   cₖ = √((N−1)/(N−1+σₖ²)),
     /// exactly as the full form, at O(N n m) cost instead of O(N³).
     fn transform_low_rank(&mut self) -> Result<(), FilterError> {
-        let (nn, n, ma) = (self.ensemble.nrows(), self.ensemble.ncols(), self.obs.ma);
+        let (nn, n, ma) = (
+            self.ensemble.nrows(),
+            self.ensemble.ncols(),
+            self.core.obs.ma,
+        );
         let nf = nn as f64;
         let g = &mut self.ws.reading_gram[..ma * ma];
         for b in 0..ma {
@@ -238,7 +246,7 @@ impl Enkf {
         // Anomaly of each member: X'ⱼ = xⱼ − x̄, kept in `xa`.
         for i in 0..n {
             for j in 0..nn {
-                self.ws.analysis_anomalies[(j, i)] = self.ensemble[(j, i)] - self.mean[i];
+                self.ws.analysis_anomalies[(j, i)] = self.ensemble[(j, i)] - self.core.mean[i];
             }
         }
         self.ws.mean_weights.fill(0.0);
@@ -289,7 +297,7 @@ impl Enkf {
     /// NIS = d̃ᵀM⁻¹d̃ = rᵀMr = rᵀr + |Ỹᵀr|²/(N−1), a sum of squares (never negative).
     /// (Woodbury: Golub & Van Loan 2013, *Matrix Computations*, §2.1.4.)
     pub(super) fn transform_nis(&mut self) -> f64 {
-        let (nn, ma) = (self.ensemble.nrows(), self.obs.ma);
+        let (nn, ma) = (self.ensemble.nrows(), self.core.obs.ma);
         let mm = self.ws.whitened.nrows();
         let yt = self.ws.whitened.as_slice();
         let r = &mut self.ws.draws[..ma];
@@ -381,14 +389,14 @@ mod tests {
             let mut f = base.clone();
             f.always_full = full;
             assert!(f.update(&model, &reading, &[], 0.0, None).unwrap());
-            let got = f.obs.joint_nis;
+            let got = f.core.obs.joint_nis;
             assert!(
                 (got - direct).abs() < 1e-10 * direct,
                 "{got} vs {direct} (full {full})"
             );
             // Each row's predicted variance (reported with its innovation).
             for r in 0..3 {
-                let got = f.obs.s[r + r * 3];
+                let got = f.core.obs.s[r + r * 3];
                 assert!((got - s[(r, r)]).abs() < 1e-12 * s[(r, r)], "S_rr {got}");
             }
         }
@@ -408,12 +416,12 @@ mod tests {
             .update(&model, &one, &[], 0.0, Some(&[1e9, 1e9]))
             .unwrap());
         for f in [&ungated, &gated] {
-            assert_eq!(f.obs.checks[0].nis, f.obs.joint_nis);
+            assert_eq!(f.core.obs.checks[0].nis, f.core.obs.joint_nis);
             for r in 0..2 {
-                let got = f.obs.s[r + r * 2];
+                let got = f.core.obs.s[r + r * 2];
                 assert!((got - s2[(r, r)]).abs() < 1e-12 * s2[(r, r)], "S_rr {got}");
             }
-            let got = f.obs.joint_nis;
+            let got = f.core.obs.joint_nis;
             assert!(
                 (got - direct2).abs() < 1e-10 * direct2,
                 "{got} vs {direct2}"
