@@ -13,9 +13,9 @@
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
 use crate::filter::shared::FilterCore;
-use crate::filter::{ensure_finite, Estimator, FilterError};
+use crate::filter::{Estimator, FilterError};
 use crate::formula::Workspace;
-use crate::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt, symmetrize};
+use crate::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt};
 use crate::spec::model::{Integration, Model};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
@@ -123,12 +123,7 @@ impl Ekf {
                 _ => row_update::<0>(bufs, nu, r),
             }?;
         }
-        symmetrize(&mut self.core.cov);
-        ensure_finite(
-            self.core.mean.as_slice(),
-            self.core.cov.as_slice(),
-            "updated state",
-        )?;
+        self.core.finish_update()?;
         Ok(nis)
     }
 }
@@ -360,12 +355,7 @@ impl Estimator for Ekf {
             (n, ma, n),
             true,
         );
-        symmetrize(&mut self.core.cov);
-        ensure_finite(
-            self.core.mean.as_slice(),
-            self.core.cov.as_slice(),
-            "updated state",
-        )?;
+        self.core.finish_update()?;
         Ok(true)
     }
 

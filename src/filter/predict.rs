@@ -154,6 +154,25 @@ fn lyapunov_rate(f: &[f64], p: &[f64], qc: &[f64], fp: &mut [f64], dp: &mut [f64
     }
 }
 
+/// Lay out the batch variables of `points` points for a formula program: the states
+/// (`x`, `points × n` column-major, so each state's values over the points are
+/// contiguous), then each of the `nu` inputs `u_j` and the time `t` repeated once per
+/// point; the program's own slots follow. Used by the prediction and the point observer.
+pub(crate) fn load_points(
+    bvars: &mut [f64],
+    x: &[f64],
+    u: &[f64],
+    t: f64,
+    (nu, points): (usize, usize),
+) {
+    let states = x.len();
+    bvars[..states].copy_from_slice(x);
+    for (j, &uj) in u.iter().enumerate() {
+        bvars[states + j * points..states + (j + 1) * points].fill(uj);
+    }
+    bvars[states + nu * points..states + (nu + 1) * points].fill(t);
+}
+
 /// Propagates beliefs of one model; owns every buffer it needs.
 #[derive(Debug, Clone)]
 pub struct Predictor {
@@ -568,15 +587,7 @@ impl Predictor {
             }
             Dynamics::Next(program) => {
                 let slots = program.slots();
-                self.bvars[..n * mp].copy_from_slice(x.as_slice());
-                for (j, uj) in u.iter().enumerate() {
-                    self.bvars[(n + j) * mp..(n + j + 1) * mp]
-                        .iter_mut()
-                        .for_each(|v| *v = *uj);
-                }
-                self.bvars[(n + nu) * mp..(n + nu + 1) * mp]
-                    .iter_mut()
-                    .for_each(|v| *v = t0);
+                load_points(&mut self.bvars, x.as_slice(), u, t0, (nu, mp));
                 self.bvars[(n + nu + 1) * mp..(n + nu + 2) * mp]
                     .iter_mut()
                     .for_each(|v| *v = dt);

@@ -5,6 +5,8 @@
 
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
+use crate::filter::{ensure_finite, FilterError};
+use crate::linalg::symmetrize;
 use crate::spec::model::{Integration, Model};
 use nalgebra::{DMatrix, DVector};
 
@@ -41,5 +43,12 @@ impl FilterCore {
             pred: Predictor::new(model, integration, points),
             obs: ObsSpace::new(model),
         }
+    }
+
+    /// The end of every moment-form update: make the covariance symmetric, `(P + Pᵀ)/2`,
+    /// and refuse a non-finite mean or covariance.
+    pub fn finish_update(&mut self) -> Result<(), FilterError> {
+        symmetrize(&mut self.cov);
+        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")
     }
 }

@@ -11,8 +11,8 @@
 
 use crate::filter::observe::PointObserver;
 use crate::filter::shared::FilterCore;
-use crate::filter::{ensure_finite, Estimator, FilterError};
-use crate::linalg::{cholesky_psd, symmetrize};
+use crate::filter::{Estimator, FilterError};
+use crate::linalg::cholesky_psd;
 use crate::spec::model::{Integration, Model, Unscented};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
@@ -199,12 +199,7 @@ impl Estimator for Ukf {
         self.core
             .obs
             .subtract_gain_cross(self.core.cov.as_mut_slice());
-        symmetrize(&mut self.core.cov);
-        ensure_finite(
-            self.core.mean.as_slice(),
-            self.core.cov.as_slice(),
-            "updated state",
-        )?;
+        self.core.finish_update()?;
         Ok(true)
     }
 

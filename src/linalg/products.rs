@@ -24,13 +24,7 @@ use nalgebra::DMatrix;
 /// `out = a bᵀ` for `a: r × k`, `b: c × k` (no allocation).
 #[inline]
 pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
-    let (r, k, c) = (a.nrows(), a.ncols(), b.nrows());
-    let (a, b) = (a.as_slice(), b.as_slice());
-    let o = out.as_mut_slice();
-    if r == k && k == c && square::<true>(r, a, b, o) {
-        return;
-    }
-    gemm_nt(a, b, o, (r, k, c), false);
+    product::<true>(a, b, out, false);
 }
 
 /// `out = a b` for `a: r × k`, `b: k × c` (no allocation: nalgebra's product hands
@@ -39,54 +33,47 @@ pub fn mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
 /// independent entries proceed side by side.
 #[inline]
 pub fn mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
-    let (r, k, c) = (a.nrows(), a.ncols(), b.ncols());
-    debug_assert_eq!(b.nrows(), k);
-    let (a, b) = (a.as_slice(), b.as_slice());
-    let o = out.as_mut_slice();
-    if r == k && k == c && square::<false>(r, a, b, o) {
-        return;
-    }
-    gemm_nn(a, b, o, (r, k, c), false);
+    product::<false>(a, b, out, false);
 }
 
 /// `out += a b` for `a: r × k`, `b: k × c` (the same additions as [`mul_ab`], onto the
 /// old contents of `out`).
 #[inline]
 pub fn add_mul_ab(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
-    let (r, k, c) = (a.nrows(), a.ncols(), b.ncols());
-    assert_eq!(b.nrows(), k, "add_mul_ab: inner dimensions differ");
-    assert_eq!(
-        out.shape(),
-        (r, c),
-        "add_mul_ab: output has the wrong shape"
-    );
-    gemm_nn(
-        a.as_slice(),
-        b.as_slice(),
-        out.as_mut_slice(),
-        (r, k, c),
-        true,
-    );
+    product::<false>(a, b, out, true);
 }
 
 /// `out += a bᵀ` for `a: r × k`, `b: c × k` (the same additions as [`mul_abt`], onto the
 /// old contents of `out`).
 #[inline]
 pub fn add_mul_abt(a: &DMatrix<f64>, b: &DMatrix<f64>, out: &mut DMatrix<f64>) {
-    let (r, k, c) = (a.nrows(), a.ncols(), b.nrows());
-    assert_eq!(b.ncols(), k, "add_mul_abt: inner dimensions differ");
-    assert_eq!(
-        out.shape(),
-        (r, c),
-        "add_mul_abt: output has the wrong shape"
-    );
-    gemm_nt(
-        a.as_slice(),
-        b.as_slice(),
-        out.as_mut_slice(),
-        (r, k, c),
-        true,
-    );
+    product::<true>(a, b, out, true);
+}
+
+/// The four matrix forms above: `a b` (`T = false`) or `a bᵀ` (`T = true`), written over
+/// `out` or added to it. Square products up to 8 × 8 that overwrite take the fixed-size
+/// kernels ([`square`]), the rest [`gemm`]; both add in the same order.
+#[inline]
+fn product<const T: bool>(
+    a: &DMatrix<f64>,
+    b: &DMatrix<f64>,
+    out: &mut DMatrix<f64>,
+    accumulate: bool,
+) {
+    let (r, k) = a.shape();
+    let (c, inner) = if T {
+        (b.nrows(), b.ncols())
+    } else {
+        (b.ncols(), b.nrows())
+    };
+    debug_assert_eq!(inner, k, "product: inner dimensions differ");
+    debug_assert_eq!(out.shape(), (r, c), "product: output has the wrong shape");
+    let (a, b) = (a.as_slice(), b.as_slice());
+    let o = out.as_mut_slice();
+    if !accumulate && r == k && k == c && square::<T>(r, a, b, o) {
+        return;
+    }
+    gemm::<T>(a, b, o, (r, k, c), accumulate);
 }
 
 /// `o = a b`, or `o += a b` with `accumulate`, for column-major slices `a: r × k`,

@@ -407,6 +407,25 @@ fn rotate_rows<const B: usize>(
 mod tests {
     use super::*;
 
+    /// `Yᵀ Y + shift · I` (`n × n`, column-major) for an irregular `rank × n` matrix `Y`:
+    /// symmetric, of rank `rank` before the shift, so with `rank < n` it has an eigenvalue
+    /// `shift` repeated `n − rank` times.
+    fn gram_plus_shift(n: usize, rank: usize, shift: f64) -> Vec<f64> {
+        let y: Vec<f64> = (0..rank * n)
+            .map(|k| ((k * 7 + 3) % 11) as f64 / 5.0 - 1.0 + (k as f64 * 0.37).sin())
+            .collect();
+        let mut a = vec![0.0; n * n];
+        for j in 0..n {
+            for i in 0..n {
+                a[i + j * n] = (0..rank)
+                    .map(|k| y[k + i * rank] * y[k + j * rank])
+                    .sum::<f64>()
+                    + if i == j { shift } else { 0.0 };
+            }
+        }
+        a
+    }
+
     /// Cyclic Jacobi (Golub & Van Loan §8.5.2, from memory): sweeps of plane rotations
     /// that zero each off-diagonal pair `(p, q)` in turn, `J(p, q, θ)ᵀ A J(p, q, θ)`,
     /// until the off-diagonal part is negligible. Slow and plain: the oracle for
@@ -459,18 +478,7 @@ mod tests {
         // distinct and with repeated eigenvalues.
         for n in [1usize, 2, 3, 6, 9, 17, 40] {
             for rank in [3usize, n] {
-                let y: Vec<f64> = (0..rank * n)
-                    .map(|k| ((k * 5 + 1) % 13) as f64 / 4.0 - 1.5 + (k as f64 * 0.29).cos())
-                    .collect();
-                let mut a = vec![0.0; n * n];
-                for j in 0..n {
-                    for i in 0..n {
-                        a[i + j * n] = (0..rank)
-                            .map(|k| y[k + i * rank] * y[k + j * rank])
-                            .sum::<f64>()
-                            + if i == j { 2.0 } else { 0.0 };
-                    }
-                }
+                let a = gram_plus_shift(n, rank, 2.0);
                 let (mut v, mut d, mut e) = (a.clone(), vec![0.0; n], vec![0.0; 3 * n]);
                 assert!(symmetric_eigen(&mut v, &mut d, &mut e, n));
                 let want = jacobi_eigenvalues(&a, n);
@@ -492,15 +500,7 @@ mod tests {
         // body: IEEE 754 operations in the same order give the same result whatever the
         // register width. On a CPU without AVX2 both calls run the baseline copy.
         let n = 40;
-        let y: Vec<f64> = (0..n * n)
-            .map(|k| ((k * 7 + 3) % 11) as f64 / 5.0 - 1.0 + (k as f64 * 0.37).sin())
-            .collect();
-        let mut a = vec![0.0; n * n];
-        for j in 0..n {
-            for i in 0..n {
-                a[i + j * n] = (0..n).map(|k| y[k + i * n] * y[k + j * n]).sum::<f64>();
-            }
-        }
+        let a = gram_plus_shift(n, n, 0.0);
         let (mut v1, mut d1, mut e1) = (a.clone(), vec![0.0; n], vec![0.0; 3 * n]);
         let (mut v2, mut d2, mut e2) = (a.clone(), vec![0.0; n], vec![0.0; 3 * n]);
         assert!(symmetric_eigen_body::<8>(&mut v1, &mut d1, &mut e1, n));
@@ -519,18 +519,7 @@ mod tests {
         // pass, and on a dense full-rank matrix of the benchmark's size.
         let cases = [(1usize, 3usize), (2, 3), (9, 3), (11, 3), (40, 3), (40, 40)];
         for (n, rank) in cases {
-            let y: Vec<f64> = (0..rank * n)
-                .map(|k| ((k * 7 + 3) % 11) as f64 / 5.0 - 1.0 + (k as f64 * 0.37).sin())
-                .collect();
-            let mut a = vec![0.0; n * n];
-            for j in 0..n {
-                for i in 0..n {
-                    a[i + j * n] = (0..rank)
-                        .map(|k| y[k + i * rank] * y[k + j * rank])
-                        .sum::<f64>()
-                        + if i == j { 8.0 } else { 0.0 };
-                }
-            }
+            let a = gram_plus_shift(n, rank, 8.0);
             let (mut v, mut d, mut e) = (a.clone(), vec![0.0; n], vec![0.0; 3 * n]);
             assert!(symmetric_eigen(&mut v, &mut d, &mut e, n));
             assert!(d.windows(2).all(|w| w[0] <= w[1]), "ascending");
