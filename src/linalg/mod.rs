@@ -4,14 +4,14 @@
 //!
 //! | file | holds | source |
 //! | --- | --- | --- |
-//! | [`cholesky`] | `A = L Lᵀ` (definite and semi-definite), triangular solves | Golub & Van Loan §4.2 |
+//! | [`cholesky`](mod@cholesky) | `A = L Lᵀ` (definite and semi-definite), triangular solves | Golub & Van Loan §4.2 |
 //! | [`lu`] | `P A = L U` with partial pivoting, solve in place | Golub & Van Loan §3.4 |
 //! | [`products`] | `A B`, `A Bᵀ`, `+=` forms, `Φ P Φᵀ + Q`, dot product | Golub & Van Loan §1.1, §1.5 |
-//! | [`symmetric_eigen`] | `A = V Λ Vᵀ` by Householder and implicit QL | Wilkinson & Reinsch II/2–II/3 |
+//! | [`symmetric_eigen`](mod@symmetric_eigen) | `A = V Λ Vᵀ` by Householder and implicit QL | Wilkinson & Reinsch II/2–II/3 |
 //! | [`repair`] | `(P + Pᵀ)/2`, symmetry check, exact rounding | Higham §10.1 |
 //! | [`finite`] | no NaN or infinity anywhere | IEEE 754 |
 //! | [`norm`] | `‖A‖₁` | Golub & Van Loan §2.3 |
-//! | [`dispatch`] | AVX2 copies of hot kernels, chosen at run time | |
+//! | `dispatch.rs` | AVX2 copies of hot kernels, chosen at run time | |
 //!
 //! Rules every kernel keeps: the order of floating-point operations is fixed and
 //! documented (results are the same bits on every machine, which bit-exact resume relies

@@ -1,7 +1,7 @@
-//! Ensemble Kalman filter: the members and their forecast ([`members`]), the analysis
-//! shared by both update forms ([`analysis`]), the perturbed-observations update
-//! ([`perturbed`], Burgers et al. 1998), the ensemble transform ([`transform`], Bishop et
-//! al. 2001, Hunt et al. 2007), and the buffers they work in ([`workspace`]).
+//! Ensemble Kalman filter: the members and their forecast (`members.rs`), the analysis
+//! shared by both update forms (`analysis.rs`), the perturbed-observations update
+//! (`perturbed.rs`, Burgers et al. 1998), the ensemble transform (`transform.rs`, Bishop
+//! et al. 2001, Hunt et al. 2007), and the buffers they work in (`workspace.rs`).
 
 mod analysis;
 mod members;
