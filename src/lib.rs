@@ -23,7 +23,7 @@ pub mod filter;
 pub mod formula;
 pub mod http;
 pub mod job;
+pub mod linalg;
 pub mod problem;
-pub mod simd;
 pub mod simulate;
 pub mod spec;

@@ -9,7 +9,7 @@
 //! Nothing here knows about requests or JSON: [`run`] hands each time's truth and readings
 //! to a [`Sink`]; `POST /v1/simulate` ([`crate::job`]) parses the request and writes them.
 
-use crate::filter::linalg::cholesky_psd;
+use crate::linalg::cholesky_psd;
 use crate::filter::predict::Predictor;
 use crate::spec::model::{Integration, Model, Prior};
 use crate::spec::time::Instant;

@@ -4,7 +4,7 @@
 //! exponentials of [`super::Discretiser`]), so this is the one place the exponential is
 //! computed. All scratch lives in [`Expm`], so repeated calls allocate nothing.
 
-use super::dense;
+use crate::linalg::{lu_solve_in_place, mul_ab, norm1};
 use nalgebra::DMatrix;
 
 /// Padé degrees tried in order, with the largest 1-norm each handles to unit roundoff
@@ -117,7 +117,7 @@ impl Expm {
         let n = self.n;
         assert_eq!(a.shape(), (n, n), "expm: input is not {n} x {n}");
         assert_eq!(out.shape(), (n, n), "expm: output is not {n} x {n}");
-        let norm = dense::norm1(a);
+        let norm = norm1(a);
         if !norm.is_finite() {
             out.fill(f64::NAN);
             return;
@@ -127,7 +127,7 @@ impl Expm {
             return;
         }
         self.a1.copy_from(a);
-        dense::mul(&mut self.a2, &self.a1, &self.a1, false, 0.0);
+        mul_ab(&self.a1, &self.a1, &mut self.a2);
         for &(m, theta) in &DEGREES[..4] {
             if norm <= theta {
                 self.pade_low(m);
@@ -147,7 +147,7 @@ impl Expm {
         self.pade13();
         self.solve(out);
         for _ in 0..s {
-            dense::mul(&mut self.tmp, out, out, false, 0.0);
+            mul_ab(out, out, &mut self.tmp);
             out.copy_from(&self.tmp);
         }
     }
@@ -169,29 +169,29 @@ impl Expm {
         axpy(&mut self.tmp, b[3], &self.a2);
         axpy(&mut self.v, b[2], &self.a2);
         if m >= 5 {
-            dense::mul(&mut self.a4, &self.a2, &self.a2, false, 0.0);
+            mul_ab(&self.a2, &self.a2, &mut self.a4);
             axpy(&mut self.tmp, b[5], &self.a4);
             axpy(&mut self.v, b[4], &self.a4);
         }
         if m >= 7 {
-            dense::mul(&mut self.a6, &self.a4, &self.a2, false, 0.0);
+            mul_ab(&self.a4, &self.a2, &mut self.a6);
             axpy(&mut self.tmp, b[7], &self.a6);
             axpy(&mut self.v, b[6], &self.a6);
         }
         if m >= 9 {
             // A⁸ goes into u, which is overwritten below anyway.
-            dense::mul(&mut self.u, &self.a6, &self.a2, false, 0.0);
+            mul_ab(&self.a6, &self.a2, &mut self.u);
             axpy(&mut self.tmp, b[9], &self.u);
             axpy(&mut self.v, b[8], &self.u);
         }
-        dense::mul(&mut self.u, &self.a1, &self.tmp, false, 0.0);
+        mul_ab(&self.a1, &self.tmp, &mut self.u);
     }
 
     /// `U` and `V` of `r₁₃(A)` with six products (Higham 2005, Algorithm 2.3, line 10).
     fn pade13(&mut self) {
         let b = &B13;
-        dense::mul(&mut self.a4, &self.a2, &self.a2, false, 0.0);
-        dense::mul(&mut self.a6, &self.a4, &self.a2, false, 0.0);
+        mul_ab(&self.a2, &self.a2, &mut self.a4);
+        mul_ab(&self.a4, &self.a2, &mut self.a6);
         // tmp = b13 A6 + b11 A4 + b9 A2; u = A6 tmp + b7 A6 + b5 A4 + b3 A2 + b1 I.
         lin3(
             &mut self.tmp,
@@ -201,7 +201,7 @@ impl Expm {
             &self.a2,
             0.0,
         );
-        dense::mul(&mut self.v, &self.a6, &self.tmp, false, 0.0);
+        mul_ab(&self.a6, &self.tmp, &mut self.v);
         add_lin3(
             &mut self.v,
             [b[7], b[5], b[3]],
@@ -210,7 +210,7 @@ impl Expm {
             &self.a2,
             b[1],
         );
-        dense::mul(&mut self.u, &self.a1, &self.v, false, 0.0);
+        mul_ab(&self.a1, &self.v, &mut self.u);
         // v = A6 (b12 A6 + b10 A4 + b8 A2) + b6 A6 + b4 A4 + b2 A2 + b0 I.
         lin3(
             &mut self.tmp,
@@ -220,7 +220,7 @@ impl Expm {
             &self.a2,
             0.0,
         );
-        dense::mul(&mut self.v, &self.a6, &self.tmp, false, 0.0);
+        mul_ab(&self.a6, &self.tmp, &mut self.v);
         add_lin3(
             &mut self.v,
             [b[6], b[4], b[2]],
@@ -243,7 +243,7 @@ impl Expm {
         }
         // θ_m keep ‖U‖ well below ‖V‖, so V − U is far from singular for finite input;
         // a failure can only come from non-finite entries, which the output then shows.
-        if !dense::lu_solve_in_place(&mut self.tmp, &mut self.piv, out) {
+        if !lu_solve_in_place(&mut self.tmp, &mut self.piv, out) {
             out.fill(f64::NAN);
         }
     }

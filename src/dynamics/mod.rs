@@ -1,7 +1,6 @@
 //! Time propagation between readings: matrix exponential, exact discretisation of linear
 //! continuous models (Van Loan), and an adaptive embedded Runge–Kutta integrator.
 
-mod dense;
 mod expm;
 mod ode;
 mod van_loan;

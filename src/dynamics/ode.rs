@@ -4,6 +4,8 @@
 //! It controls its own error, so the prediction error stays far below the reported
 //! standard deviations, and it allocates nothing once built.
 
+use crate::linalg::all_finite;
+
 /// Why an integration stopped early.
 #[derive(Debug, Clone, PartialEq)]
 pub enum OdeError {
@@ -358,10 +360,6 @@ impl Dopri5 {
             }
         }
     }
-}
-
-fn all_finite(v: &[f64]) -> bool {
-    v.iter().all(|x| x.is_finite())
 }
 
 /// One right-hand-side evaluation, counted and checked.

@@ -4,7 +4,8 @@
 //! Linear models skip numerical integration entirely: one block exponential gives the
 //! transition, the input gain and the process noise of a step, exactly up to rounding.
 
-use super::{dense, Expm};
+use super::Expm;
+use crate::linalg::{add_mul_ab, add_mul_abt, mul_ab, mul_abt, norm1, symmetrize};
 use nalgebra::DMatrix;
 
 /// The discrete model over one step: `x⁺ = phi x + gamma u + w`, `E[w w'] = q`.
@@ -134,7 +135,7 @@ impl Discretiser {
             out.q.fill(0.0);
             return;
         }
-        let norm_a = dense::norm1(a) * dt;
+        let norm_a = norm1(a) * dt;
         if dt < 0.0 || !dt.is_finite() || !norm_a.is_finite() {
             out.phi.fill(f64::NAN);
             out.gamma.fill(f64::NAN);
@@ -149,8 +150,8 @@ impl Discretiser {
         };
         let h = dt * 2f64.powi(-halvings);
         let norm_ah = norm_a * 2f64.powi(-halvings);
-        let scale_q = balancing_power(dense::norm1(qc) * h, norm_ah);
-        let scale_b = balancing_power(dense::norm1(b) * h, norm_ah);
+        let scale_q = balancing_power(norm1(qc) * h, norm_ah);
+        let scale_b = balancing_power(norm1(b) * h, norm_ah);
 
         self.block.fill(0.0);
         for j in 0..n {
@@ -171,17 +172,17 @@ impl Discretiser {
         out.gamma.iter_mut().for_each(|x| *x *= scale_b);
         self.tmp.copy_from(&self.block_exp.view((0, n), (n, n)));
         self.tmp.iter_mut().for_each(|x| *x *= scale_q);
-        dense::mul(&mut out.q, &self.tmp, &out.phi, true, 0.0);
-        symmetrise(&mut out.q);
+        mul_abt(&self.tmp, &out.phi, &mut out.q);
+        symmetrize(&mut out.q);
 
         for _ in 0..halvings {
             // Q ← Φ Q Φ' + Q and Γ ← Φ Γ + Γ use the old Φ, so Φ is squared last.
-            dense::mul(&mut self.tmp, &out.phi, &out.q, false, 0.0);
-            dense::mul(&mut out.q, &self.tmp, &out.phi, true, 1.0);
-            symmetrise(&mut out.q);
+            mul_ab(&out.phi, &out.q, &mut self.tmp);
+            add_mul_abt(&self.tmp, &out.phi, &mut out.q);
+            symmetrize(&mut out.q);
             self.tmp_gamma.copy_from(&out.gamma);
-            dense::mul(&mut out.gamma, &out.phi, &self.tmp_gamma, false, 1.0);
-            dense::mul(&mut self.tmp, &out.phi, &out.phi, false, 0.0);
+            add_mul_ab(&out.phi, &self.tmp_gamma, &mut out.gamma);
+            mul_ab(&out.phi, &out.phi, &mut self.tmp);
             out.phi.copy_from(&self.tmp);
         }
     }
@@ -198,18 +199,6 @@ fn balancing_power(block_norm: f64, target: f64) -> f64 {
     }
     let k = (block_norm / target).log2().round().clamp(-1000.0, 1000.0) as i32;
     2f64.powi(k)
-}
-
-/// `q ← (q + q')/2`: rounding leaves a covariance very slightly asymmetric.
-fn symmetrise(q: &mut DMatrix<f64>) {
-    let n = q.nrows();
-    for j in 0..n {
-        for i in j + 1..n {
-            let m = 0.5 * (q[(i, j)] + q[(j, i)]);
-            q[(i, j)] = m;
-            q[(j, i)] = m;
-        }
-    }
 }
 
 #[cfg(test)]

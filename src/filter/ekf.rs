@@ -12,11 +12,10 @@
 //! factorisation and only rank-one corrections; see `Ekf::sequential_update`.
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
-use crate::filter::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt, symmetrize};
-use crate::filter::observe::ObsSpace;
-use crate::filter::predict::Predictor;
-use crate::filter::{ensure_finite, Estimator, FilterError};
+use crate::filter::shared::FilterCore;
+use crate::filter::{Estimator, FilterError};
 use crate::formula::Workspace;
+use crate::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt};
 use crate::spec::model::{Integration, Model};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
@@ -24,10 +23,8 @@ use nalgebra::{DMatrix, DVector};
 /// The extended Kalman filter's state and buffers.
 #[derive(Debug, Clone)]
 pub struct Ekf {
-    mean: DVector<f64>,
-    cov: DMatrix<f64>,
-    pred: Predictor,
-    obs: ObsSpace,
+    /// Mean, covariance, cross covariance, update buffers and propagator.
+    core: FilterCore,
     sws: Vec<Workspace>,
     vars: Vec<f64>,
     zbuf: Vec<f64>,
@@ -35,7 +32,6 @@ pub struct Ekf {
     h: Vec<f64>,
     prev_cov: DMatrix<f64>,
     phi: DMatrix<f64>,
-    cross: DMatrix<f64>,
     a: DMatrix<f64>,
     t1: DMatrix<f64>,
     kr: Vec<f64>,
@@ -65,10 +61,7 @@ impl Ekf {
         let mm: usize = model.sensors.iter().map(|s| s.dim).sum();
         let dmax = model.sensors.iter().map(|s| s.dim).max().unwrap_or(1);
         Self {
-            mean,
-            cov,
-            pred: Predictor::new(model, integration, 0),
-            obs: ObsSpace::new(model),
+            core: FilterCore::new(model, integration, 0, mean, cov),
             sws: model
                 .sensors
                 .iter()
@@ -80,7 +73,6 @@ impl Ekf {
             h: vec![0.0; mm * n],
             prev_cov: DMatrix::zeros(n, n),
             phi: DMatrix::zeros(n, n),
-            cross: DMatrix::zeros(n, n),
             a: DMatrix::zeros(n, n),
             t1: DMatrix::zeros(n, n),
             kr: vec![0.0; n * mm],
@@ -103,23 +95,23 @@ impl Ekf {
     /// over the rows (the rows' innovations are the stacked innovation whitened by the
     /// Cholesky factor of S). Returns that NIS.
     fn sequential_update(&mut self) -> Result<f64, FilterError> {
-        let (n, m, ma) = (self.mean.len(), self.obs.m, self.obs.ma);
+        let (n, m, ma) = (self.core.mean.len(), self.core.obs.m, self.core.obs.ma);
         self.dx.fill(0.0);
         let mut nis = 0.0;
         for a in 0..ma {
-            let row = self.obs.keep[a];
+            let row = self.core.obs.keep[a];
             for j in 0..n {
                 self.hrow[j] = self.h[row + j * m];
             }
             let bufs = RowBuffers {
-                p: self.cov.as_mut_slice(),
-                mean: self.mean.as_mut_slice(),
+                p: self.core.cov.as_mut_slice(),
+                mean: self.core.mean.as_mut_slice(),
                 h: &self.hrow,
                 c: &mut self.ph,
                 k: &mut self.k,
                 dx: &mut self.dx,
             };
-            let (nu, r) = (self.obs.nu_acc[a], self.obs.r_acc[a + a * ma]);
+            let (nu, r) = (self.core.obs.nu_acc[a], self.core.obs.r_acc[a + a * ma]);
             // The size fixed at compile time for small models, so the loops unroll.
             nis += match n {
                 1 => row_update::<1>(bufs, nu, r),
@@ -131,8 +123,7 @@ impl Ekf {
                 _ => row_update::<0>(bufs, nu, r),
             }?;
         }
-        symmetrize(&mut self.cov);
-        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
+        self.core.finish_update()?;
         Ok(nis)
     }
 }
@@ -205,22 +196,29 @@ impl Estimator for Ekf {
         keep_cross: bool,
     ) -> Result<(), FilterError> {
         if keep_cross {
-            self.prev_cov.copy_from(&self.cov);
-            self.pred.predict_gaussian(
+            self.prev_cov.copy_from(&self.core.cov);
+            self.core.pred.predict_gaussian(
                 model,
-                &mut self.mean,
-                &mut self.cov,
+                &mut self.core.mean,
+                &mut self.core.cov,
                 u,
                 t0,
                 dt,
                 Some(&mut self.phi),
             )?;
             // Cov(x_k, x_{k+1}) = P_k Φᵀ.
-            mul_abt(&self.prev_cov, &self.phi, &mut self.cross);
+            mul_abt(&self.prev_cov, &self.phi, &mut self.core.cross);
             Ok(())
         } else {
-            self.pred
-                .predict_gaussian(model, &mut self.mean, &mut self.cov, u, t0, dt, None)
+            self.core.pred.predict_gaussian(
+                model,
+                &mut self.core.mean,
+                &mut self.core.cov,
+                u,
+                t0,
+                dt,
+                None,
+            )
         }
     }
 
@@ -234,12 +232,12 @@ impl Estimator for Ekf {
     ) -> Result<bool, FilterError> {
         let n = model.n();
         let nu = model.nu();
-        self.obs.begin(model, reading);
-        let m = self.obs.m;
-        self.vars[..n].copy_from_slice(self.mean.as_slice());
+        self.core.obs.begin(model, reading);
+        let m = self.core.obs.m;
+        self.vars[..n].copy_from_slice(self.core.mean.as_slice());
         self.vars[n..n + nu].copy_from_slice(u);
         self.vars[n + nu] = t;
-        for ck in &self.obs.checks {
+        for ck in &self.core.obs.checks {
             let sensor = &model.sensors[ck.sensor];
             let d = ck.dim;
             if let Some(af) = &sensor.affine {
@@ -251,7 +249,7 @@ impl Estimator for Ekf {
                     for (w, v) in row.iter().zip(&self.vars[..cols]) {
                         z += w * v;
                     }
-                    self.obs.zhat[ck.row + a] = z;
+                    self.core.obs.zhat[ck.row + a] = z;
                     for j in 0..n {
                         self.h[(ck.row + a) + j * m] = row[j];
                     }
@@ -267,7 +265,7 @@ impl Estimator for Ekf {
                 &mut self.jbuf[..d * n],
             );
             for a in 0..d {
-                self.obs.zhat[ck.row + a] = self.zbuf[a];
+                self.core.obs.zhat[ck.row + a] = self.zbuf[a];
                 for j in 0..n {
                     self.h[(ck.row + a) + j * m] = self.jbuf[a * n + j];
                 }
@@ -276,54 +274,60 @@ impl Estimator for Ekf {
         if !self.h[..m * n].iter().all(|x| x.is_finite()) {
             return Err(FilterError::NonFinite("sensor Jacobian"));
         }
-        let by_rows = self.obs.r_diagonal && !self.always_stacked;
-        let only_check = by_rows && self.obs.joint_is_only_check(gate);
+        let by_rows = self.core.obs.r_diagonal && !self.always_stacked;
+        let only_check = by_rows && self.core.obs.joint_is_only_check(gate);
         if only_check {
             // Only the predicted variance h P hᵀ of each row (the answer reports it).
-            let p = self.cov.as_slice();
+            let p = self.core.cov.as_slice();
             for r in 0..m {
                 let mut v = 0.0;
                 for j in 0..n {
                     let pj: f64 = (0..n).map(|i| p[i + j * n] * self.h[r + i * m]).sum();
                     v += self.h[r + j * m] * pj;
                 }
-                self.obs.s[r + r * m] = v;
+                self.core.obs.s[r + r * m] = v;
             }
         } else {
             // C = P Hᵀ (n × m), S = H C (m × m): the stacked update, or each sensor's own
             // NIS for the gate.
             gemm_nt(
-                self.cov.as_slice(),
+                self.core.cov.as_slice(),
                 &self.h,
-                &mut self.obs.c,
+                &mut self.core.obs.c,
                 (n, n, m),
                 false,
             );
-            gemm_nn(&self.h, &self.obs.c, &mut self.obs.s, (m, n, m), false);
+            gemm_nn(
+                &self.h,
+                &self.core.obs.c,
+                &mut self.core.obs.s,
+                (m, n, m),
+                false,
+            );
         }
         if by_rows {
-            if !self.obs.gate_blocks(gate)? {
+            if !self.core.obs.gate_blocks(gate)? {
                 return Ok(false);
             }
             let nis = self.sequential_update()?;
-            self.obs.set_joint_nis(nis, only_check);
+            self.core.obs.set_joint_nis(nis, only_check);
             return Ok(true);
         }
-        if !self.obs.gate(gate)? {
+        if !self.core.obs.gate(gate)? {
             return Ok(false);
         }
-        self.obs.gain()?;
-        self.obs.apply_gain(self.mean.as_mut_slice());
+        self.core.obs.gain()?;
+        self.core.obs.apply_gain(self.core.mean.as_mut_slice());
         // Joseph form: A = I − K H_acc, P ← A P Aᵀ + K R Kᵀ.
-        let ma = self.obs.ma;
-        let kt = &self.obs.kt;
+        let ma = self.core.obs.ma;
+        let kt = &self.core.obs.kt;
         for i in 0..n {
             for a in 0..ma {
                 self.k[i + a * n] = kt[a + i * ma];
             }
         }
         for j in 0..n {
-            for (a, &row) in self.obs.keep.iter().enumerate() {
+            for (a, &row) in self.core.obs.keep.iter().enumerate() {
                 self.h_acc[a + j * ma] = self.h[row + j * m];
             }
         }
@@ -335,33 +339,32 @@ impl Estimator for Ekf {
         for i in 0..n {
             a[i + i * n] += 1.0;
         }
-        mul_ab(&self.a, &self.cov, &mut self.t1);
-        mul_abt(&self.t1, &self.a, &mut self.cov);
-        gemm_nn(&self.k, &self.obs.r_acc, &mut self.kr, (n, ma, ma), false);
-        gemm_nt(&self.kr, &self.k, self.cov.as_mut_slice(), (n, ma, n), true);
-        symmetrize(&mut self.cov);
-        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
+        mul_ab(&self.a, &self.core.cov, &mut self.t1);
+        mul_abt(&self.t1, &self.a, &mut self.core.cov);
+        gemm_nn(
+            &self.k,
+            &self.core.obs.r_acc,
+            &mut self.kr,
+            (n, ma, ma),
+            false,
+        );
+        gemm_nt(
+            &self.kr,
+            &self.k,
+            self.core.cov.as_mut_slice(),
+            (n, ma, n),
+            true,
+        );
+        self.core.finish_update()?;
         Ok(true)
     }
 
-    fn obs(&self) -> &ObsSpace {
-        &self.obs
+    fn core(&self) -> &FilterCore {
+        &self.core
     }
 
-    fn mean(&self) -> &DVector<f64> {
-        &self.mean
-    }
-
-    fn covariance(&self) -> &DMatrix<f64> {
-        &self.cov
-    }
-
-    fn cross(&self) -> &DMatrix<f64> {
-        &self.cross
-    }
-
-    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
-        self.pred.set_deadline(deadline);
+    fn core_mut(&mut self) -> &mut FilterCore {
+        &mut self.core
     }
 
     fn clone_box(&self) -> Box<dyn Estimator> {
@@ -410,24 +413,24 @@ mod tests {
             assert!(rows.update(&model, reading, &[], 0.0, gate).unwrap());
             assert!(stacked.update(&model, reading, &[], 0.0, gate).unwrap());
             let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * (1.0 + b.abs());
-            for (a, b) in rows.mean.iter().zip(stacked.mean.iter()) {
+            for (a, b) in rows.core.mean.iter().zip(stacked.core.mean.iter()) {
                 assert!(close(*a, *b), "mean {a} vs {b}");
             }
-            for (a, b) in rows.cov.iter().zip(stacked.cov.iter()) {
+            for (a, b) in rows.core.cov.iter().zip(stacked.core.cov.iter()) {
                 assert!(close(*a, *b), "covariance {a} vs {b}");
             }
-            assert!(close(rows.obs.joint_nis, stacked.obs.joint_nis));
-            for (a, b) in rows.obs.checks.iter().zip(&stacked.obs.checks) {
+            assert!(close(rows.core.obs.joint_nis, stacked.core.obs.joint_nis));
+            for (a, b) in rows.core.obs.checks.iter().zip(&stacked.core.obs.checks) {
                 assert_eq!(a.accepted, b.accepted);
                 assert!(close(a.nis, b.nis), "sensor NIS {} vs {}", a.nis, b.nis);
             }
             // Each row's predicted variance (reported with its innovation).
-            let m = rows.obs.m;
+            let m = rows.core.obs.m;
             for r in 0..m {
-                let (a, b) = (rows.obs.s[r + r * m], stacked.obs.s[r + r * m]);
+                let (a, b) = (rows.core.obs.s[r + r * m], stacked.core.obs.s[r + r * m]);
                 assert!(close(a, b), "S diagonal {a} vs {b}");
             }
-            assert_eq!(rows.obs.ma, if gate.is_some() { 2 } else { m });
+            assert_eq!(rows.core.obs.ma, if gate.is_some() { 2 } else { m });
         }
     }
 }

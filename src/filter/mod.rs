@@ -1,22 +1,25 @@
 //! The filters: extended, unscented and ensemble Kalman filters behind one [`Estimator`]
 //! trait, with their shared propagation ([`predict`]), update machinery ([`observe`]),
-//! dense kernels ([`linalg`]), the run loop ([`run`]) and the RTS smoother ([`smoother`]).
+//! what every filter holds ([`shared`]), the run loop ([`run`]) and the RTS smoother
+//! ([`smoother`]); their dense kernels live in [`crate::linalg`].
 
 pub mod ekf;
 pub mod enkf;
-pub mod linalg;
 pub mod observe;
 pub mod predict;
 pub mod run;
+pub mod shared;
 pub mod smoother;
 #[cfg(test)]
 mod test_fixtures;
 pub mod ukf;
 
+use crate::linalg::all_finite;
 use crate::spec::model::Model;
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
 use observe::ObsSpace;
+use shared::FilterCore;
 
 /// Why a filter step could not go on. The run loop adds the step and time.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -48,7 +51,7 @@ impl std::fmt::Display for FilterError {
 /// `Ok` when every entry of `a` and `b` is finite, else `NonFinite(what)`: the check that
 /// keeps NaN and infinities out of every answer.
 pub fn ensure_finite(a: &[f64], b: &[f64], what: &'static str) -> Result<(), FilterError> {
-    if linalg::all_finite(a) && linalg::all_finite(b) {
+    if all_finite(a) && all_finite(b) {
         Ok(())
     } else {
         Err(FilterError::NonFinite(what))
@@ -80,17 +83,31 @@ pub trait Estimator: Send {
         gate: Option<&[f64]>,
     ) -> Result<bool, FilterError>;
 
+    /// The belief, update buffers and propagator the filter holds.
+    fn core(&self) -> &FilterCore;
+
+    /// [`Estimator::core`], to change.
+    fn core_mut(&mut self) -> &mut FilterCore;
+
     /// The update buffers of the last update (innovations, NIS, acceptance).
-    fn obs(&self) -> &ObsSpace;
+    fn obs(&self) -> &ObsSpace {
+        &self.core().obs
+    }
 
     /// Current mean over all states.
-    fn mean(&self) -> &DVector<f64>;
+    fn mean(&self) -> &DVector<f64> {
+        &self.core().mean
+    }
 
     /// Current covariance over all states.
-    fn covariance(&self) -> &DMatrix<f64>;
+    fn covariance(&self) -> &DMatrix<f64> {
+        &self.core().cov
+    }
 
     /// Cov(x_prev, x_pred) of the last prediction (valid after `predict(.., true)`).
-    fn cross(&self) -> &DMatrix<f64>;
+    fn cross(&self) -> &DMatrix<f64> {
+        &self.core().cross
+    }
 
     /// Ensemble members (rows), for the ensemble filter.
     fn members(&self) -> Option<&DMatrix<f64>> {
@@ -104,7 +121,9 @@ pub trait Estimator: Send {
 
     /// Give up any prediction still integrating after `deadline` with
     /// [`FilterError::Deadline`], so one long gap cannot outlast the request's budget.
-    fn set_deadline(&mut self, deadline: Option<std::time::Instant>);
+    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
+        self.core_mut().pred.set_deadline(deadline);
+    }
 
     /// Note that one more measurement line was processed (random streams derive from it).
     fn advance_step(&mut self) {}

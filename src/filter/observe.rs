@@ -7,8 +7,9 @@
 //! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6). Each sensor reading j
 //! is judged by NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4).
 
-use crate::filter::linalg::{cholesky, cholesky_solve, mahalanobis};
+use crate::filter::predict::load_points;
 use crate::filter::FilterError;
+use crate::linalg::{cholesky, cholesky_solve, mahalanobis};
 use crate::spec::model::Model;
 use crate::spec::reading::Reading;
 
@@ -426,16 +427,8 @@ impl PointObserver {
         u: &[f64],
         t: f64,
     ) {
-        let (n, nu, mp) = (model.n(), model.nu(), self.points);
-        self.bvars[..n * mp].copy_from_slice(x.as_slice());
-        for (j, uj) in u.iter().enumerate() {
-            self.bvars[(n + j) * mp..(n + j + 1) * mp]
-                .iter_mut()
-                .for_each(|v| *v = *uj);
-        }
-        self.bvars[(n + nu) * mp..(n + nu + 1) * mp]
-            .iter_mut()
-            .for_each(|v| *v = t);
+        let (nu, mp) = (model.nu(), self.points);
+        load_points(&mut self.bvars, x.as_slice(), u, t, (nu, mp));
         for ck in checks {
             let sensor = &model.sensors[ck.sensor];
             let slots = sensor.program.slots();

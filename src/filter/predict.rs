@@ -13,9 +13,9 @@
 //! Everything is preallocated at construction; a prediction allocates nothing.
 
 use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
-use crate::filter::linalg::{all_finite, congruence_plus, symmetrize};
 use crate::filter::{ensure_finite, FilterError};
 use crate::formula::{BatchWorkspace, Program, Workspace};
+use crate::linalg::{all_finite, congruence_plus, symmetrize};
 use crate::spec::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
 use nalgebra::{DMatrix, DVector};
 
@@ -152,6 +152,25 @@ fn lyapunov_rate(f: &[f64], p: &[f64], qc: &[f64], fp: &mut [f64], dp: &mut [f64
             dp[i + j * n] = fp[i + j * n] + fp[j + i * n] + qc[i + j * n];
         }
     }
+}
+
+/// Lay out the batch variables of `points` points for a formula program: the states
+/// (`x`, `points × n` column-major, so each state's values over the points are
+/// contiguous), then each of the `nu` inputs `u_j` and the time `t` repeated once per
+/// point; the program's own slots follow. Used by the prediction and the point observer.
+pub(crate) fn load_points(
+    bvars: &mut [f64],
+    x: &[f64],
+    u: &[f64],
+    t: f64,
+    (nu, points): (usize, usize),
+) {
+    let states = x.len();
+    bvars[..states].copy_from_slice(x);
+    for (j, &uj) in u.iter().enumerate() {
+        bvars[states + j * points..states + (j + 1) * points].fill(uj);
+    }
+    bvars[states + nu * points..states + (nu + 1) * points].fill(t);
 }
 
 /// Propagates beliefs of one model; owns every buffer it needs.
@@ -335,7 +354,7 @@ impl Predictor {
 
     /// Number of grid steps for a discrete linear model over a gap `dt`.
     fn grid_steps(dt: f64, grid: f64) -> usize {
-        crate::filter::linalg::round_half_away(dt / grid).max(0.0) as usize
+        crate::linalg::round_half_away(dt / grid).max(0.0) as usize
     }
 
     /// Gaussian prediction over `dt > 0` from time `t0` with inputs `u`. When `phi` is
@@ -400,7 +419,7 @@ impl Predictor {
                     }
                     congruence_plus(matrix, cov, q_used, &mut self.tmp);
                     if let Some(p) = phi.as_deref_mut() {
-                        crate::filter::linalg::mul_ab(matrix, p, &mut self.tmp);
+                        crate::linalg::mul_ab(matrix, p, &mut self.tmp);
                         p.copy_from(&self.tmp);
                     }
                 }
@@ -526,7 +545,7 @@ impl Predictor {
                 self.discretise(model, dt);
                 let d = &self.dcache[self.current];
                 // X ← X Φᵀ + 1 (Γ u)ᵀ
-                crate::filter::linalg::mul_abt(x, &d.phi, &mut self.xm);
+                crate::linalg::mul_abt(x, &d.phi, &mut self.xm);
                 for i in 0..n {
                     let c = if self.has_offset {
                         d.gamma[(i, nu)]
@@ -556,7 +575,7 @@ impl Predictor {
                     self.vtmp[i] = (0..nu).map(|j| b[(i, j)] * u[j]).sum();
                 }
                 for _ in 0..k {
-                    crate::filter::linalg::mul_abt(x, matrix, &mut self.xm);
+                    crate::linalg::mul_abt(x, matrix, &mut self.xm);
                     for i in 0..n {
                         for j in 0..mp {
                             x[(j, i)] = self.xm[(j, i)] + self.vtmp[i];
@@ -568,15 +587,7 @@ impl Predictor {
             }
             Dynamics::Next(program) => {
                 let slots = program.slots();
-                self.bvars[..n * mp].copy_from_slice(x.as_slice());
-                for (j, uj) in u.iter().enumerate() {
-                    self.bvars[(n + j) * mp..(n + j + 1) * mp]
-                        .iter_mut()
-                        .for_each(|v| *v = *uj);
-                }
-                self.bvars[(n + nu) * mp..(n + nu + 1) * mp]
-                    .iter_mut()
-                    .for_each(|v| *v = t0);
+                load_points(&mut self.bvars, x.as_slice(), u, t0, (nu, mp));
                 self.bvars[(n + nu + 1) * mp..(n + nu + 2) * mp]
                     .iter_mut()
                     .for_each(|v| *v = dt);

@@ -10,7 +10,6 @@ use crate::filter::ekf::Ekf;
 use crate::filter::enkf::Enkf;
 use crate::filter::ukf::Ukf;
 use crate::filter::{Estimator, FilterError};
-use crate::problem::{Problem, ProblemKind};
 use crate::spec::model::{Dynamics, FilterConfig, LinearTime, Method, Model, Prior};
 use crate::spec::reading::Reading;
 use crate::spec::time::{Instant, TimeMode};
@@ -54,6 +53,75 @@ pub struct Run {
     pub counts: Counts,
 }
 
+/// Why a run could not start or go on, with everything its message needs. The job layer
+/// turns it into the answer's problem document (`job::failure`); the filter layer knows
+/// nothing of HTTP.
+#[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
+pub enum RunError {
+    /// The unscented filter's settings (`/filter/unscented`) cannot be used, for the stated
+    /// reason.
+    Unscented(String),
+    /// The ensemble could not be drawn from the prior (`/prior`).
+    Ensemble(FilterError),
+    /// A line's time comes before the time already reached.
+    TimeDecreasing {
+        /// JSON Pointer of the line (its `/t` is at fault), relative to the caller's base.
+        pointer: String,
+        /// The line's time, as the request writes times.
+        at: String,
+        /// The time already reached.
+        current: String,
+    },
+    /// A line's time is not a whole number of steps of a discrete model after the prior.
+    OffGrid {
+        /// JSON Pointer of the line (its `/t` is at fault), relative to the caller's base.
+        pointer: String,
+        /// The line's time, as the request writes times.
+        at: String,
+        /// The model's step.
+        dt: f64,
+    },
+    /// A filter step failed on line `line` (counted from 1) at time `at`.
+    Step {
+        /// Line number, counted from 1.
+        line: u64,
+        /// The line's time, as the request writes times.
+        at: String,
+        /// What went wrong ([`FilterError::Deadline`] when the compute budget ran out).
+        cause: FilterError,
+    },
+}
+
+impl std::fmt::Display for RunError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            RunError::Unscented(why) => f.write_str(why),
+            RunError::Ensemble(e) => write!(f, "cannot draw the ensemble: {e}"),
+            RunError::TimeDecreasing { at, current, .. } => {
+                write!(f, "times must not decrease: {at} comes after {current}")
+            }
+            RunError::OffGrid { at, dt, .. } => write!(
+                f,
+                "time {at} is not on the model's grid prior.t + k·{dt} (the discrete model steps by dt)"
+            ),
+            RunError::Step {
+                line,
+                at,
+                cause: FilterError::Deadline,
+            } => write!(
+                f,
+                "the request needed more than the compute deadline; it stopped inside the prediction to line {line} (t = {at})"
+            ),
+            RunError::Step { line, at, cause } => {
+                write!(f, "the filter stopped at step {line} (t = {at}): {cause}")
+            }
+        }
+    }
+}
+
+impl std::error::Error for RunError {}
+
 /// Time of a failing step in messages.
 fn fmt_time(t: &Instant, mode: TimeMode) -> String {
     match mode {
@@ -69,7 +137,7 @@ impl Run {
         cfg: FilterConfig,
         prior: Prior,
         keep_cross: bool,
-    ) -> Result<Self, Problem> {
+    ) -> Result<Self, RunError> {
         let est: Box<dyn Estimator> = match cfg.method {
             Method::Ekf => Box::new(Ekf::new(&model, cfg.integration, prior.mean, prior.cov)),
             Method::Ukf => Box::new(
@@ -80,7 +148,7 @@ impl Run {
                     prior.mean,
                     prior.cov,
                 )
-                .map_err(|e| Problem::field("/filter/unscented", e))?,
+                .map_err(RunError::Unscented)?,
             ),
             Method::Enkf => Box::new(
                 Enkf::new(
@@ -92,7 +160,7 @@ impl Run {
                     prior.members,
                     prior.step,
                 )
-                .map_err(|e| Problem::field("/prior", format!("cannot draw the ensemble: {e}")))?,
+                .map_err(RunError::Ensemble)?,
             ),
         };
         let thresholds = cfg.gate.map(|p| {
@@ -142,18 +210,19 @@ impl Run {
     }
 
     /// Check that `t` lies on the grid of a discrete linear model.
-    fn check_grid(&self, t: &Instant, pointer: &str) -> Result<(), Problem> {
+    fn check_grid(&self, t: &Instant, pointer: &str) -> Result<(), RunError> {
         if let Dynamics::Linear {
             time: LinearTime::Discrete { dt },
             ..
         } = &self.model.dynamics
         {
             let k = self.origin.until(t, self.mode) / dt;
-            if (k - crate::filter::linalg::round_half_away(k)).abs() > 1e-6 {
-                return Err(Problem::field(
-                    format!("{pointer}/t"),
-                    format!("time {} is not on the model's grid prior.t + k·{dt} (the discrete model steps by dt)", fmt_time(t, self.mode)),
-                ));
+            if (k - crate::linalg::round_half_away(k)).abs() > 1e-6 {
+                return Err(RunError::OffGrid {
+                    pointer: pointer.to_string(),
+                    at: fmt_time(t, self.mode),
+                    dt: *dt,
+                });
             }
         }
         Ok(())
@@ -165,29 +234,17 @@ impl Run {
         self.est.set_deadline(deadline);
     }
 
-    fn failure(&self, e: FilterError, t: &Instant) -> Problem {
-        if matches!(e, FilterError::Deadline) {
-            return Problem::new(
-                ProblemKind::DeadlineExceeded,
-                format!(
-                    "the request needed more than the compute deadline; it stopped inside the prediction to line {} (t = {})",
-                    self.counts.steps + 1,
-                    fmt_time(t, self.mode)
-                ),
-            );
+    /// The error of a step that failed with `cause` on the line at `t` (the next line).
+    fn failure(&self, cause: FilterError, t: &Instant) -> RunError {
+        RunError::Step {
+            line: self.counts.steps + 1,
+            at: fmt_time(t, self.mode),
+            cause,
         }
-        Problem::new(
-            ProblemKind::NumericalFailure,
-            format!(
-                "the filter stopped at step {} (t = {}): {e}",
-                self.counts.steps + 1,
-                fmt_time(t, self.mode)
-            ),
-        )
     }
 
     /// Apply one measurement line; `pointer` locates it in the request for errors.
-    pub fn step(&mut self, r: &Reading, pointer: &str) -> Result<StepDone, Problem> {
+    pub fn step(&mut self, r: &Reading, pointer: &str) -> Result<StepDone, RunError> {
         self.step_capturing(r, pointer, None)
     }
 
@@ -203,16 +260,13 @@ impl Run {
         r: &Reading,
         pointer: &str,
         capture: Option<&mut Option<(DVector<f64>, DMatrix<f64>)>>,
-    ) -> Result<StepDone, Problem> {
+    ) -> Result<StepDone, RunError> {
         if self.t.is_after(&r.t, self.mode) {
-            return Err(Problem::field(
-                format!("{pointer}/t"),
-                format!(
-                    "times must not decrease: {} comes after {}",
-                    fmt_time(&r.t, self.mode),
-                    fmt_time(&self.t, self.mode)
-                ),
-            ));
+            return Err(RunError::TimeDecreasing {
+                pointer: pointer.to_string(),
+                at: fmt_time(&r.t, self.mode),
+                current: fmt_time(&self.t, self.mode),
+            });
         }
         self.check_grid(&r.t, pointer)?;
         let dt = self.t.until(&r.t, self.mode);
@@ -263,7 +317,7 @@ impl Run {
 
     /// A prediction-only estimate at `at` (not before the current time) that leaves the run
     /// untouched.
-    pub fn predict_aside(&self, at: &Instant) -> Result<(DVector<f64>, DMatrix<f64>), Problem> {
+    pub fn predict_aside(&self, at: &Instant) -> Result<(DVector<f64>, DMatrix<f64>), RunError> {
         let dt = self.t.until(at, self.mode);
         if dt <= 0.0 {
             return Ok((self.est.mean().clone(), self.est.covariance().clone()));

@@ -8,7 +8,7 @@
 //! unscented form (Särkkä 2008, IEEE TAC 53(3)), the member cross covariance for the ensemble.
 //! Lines with equal times have no prediction between them (G = I).
 
-use crate::filter::linalg::{cholesky, cholesky_solve, symmetrize};
+use crate::linalg::{cholesky, cholesky_solve, symmetrize};
 use nalgebra::{DMatrix, DVector};
 
 /// What the forward pass leaves for one line.
@@ -67,7 +67,7 @@ pub fn rts(steps: &mut [Stored]) -> Result<(), SmoothError> {
         dp.copy_from(&next.cov);
         dp -= p_pred;
         g.mul_to(&dp, &mut tmp);
-        crate::filter::linalg::mul_abt(&tmp, &g, &mut dp);
+        crate::linalg::mul_abt(&tmp, &g, &mut dp);
         cur.cov += &dp;
         symmetrize(&mut cur.cov);
         if !cur.mean.iter().chain(cur.cov.iter()).all(|x| x.is_finite()) {

@@ -9,10 +9,10 @@
 //! applies K = C S⁻¹, P⁺ = P − K S Kᵀ (= P − K Cᵀ), symmetrised.
 //! Fails with a typed error if P loses positive semi-definiteness (its factor fails).
 
-use crate::filter::linalg::{cholesky_psd, symmetrize};
-use crate::filter::observe::{ObsSpace, PointObserver};
-use crate::filter::predict::Predictor;
-use crate::filter::{ensure_finite, Estimator, FilterError};
+use crate::filter::observe::PointObserver;
+use crate::filter::shared::FilterCore;
+use crate::filter::{Estimator, FilterError};
+use crate::linalg::cholesky_psd;
 use crate::spec::model::{Integration, Model, Unscented};
 use crate::spec::reading::Reading;
 use nalgebra::{DMatrix, DVector};
@@ -20,10 +20,8 @@ use nalgebra::{DMatrix, DVector};
 /// The unscented filter's state and buffers.
 #[derive(Debug, Clone)]
 pub struct Ukf {
-    mean: DVector<f64>,
-    cov: DMatrix<f64>,
-    pred: Predictor,
-    obs: ObsSpace,
+    /// Mean, covariance, cross covariance, update buffers and propagator.
+    core: FilterCore,
     pobs: PointObserver,
     wm: Vec<f64>,
     wc: Vec<f64>,
@@ -33,7 +31,6 @@ pub struct Ukf {
     mean0: DVector<f64>,
     l: Vec<f64>,
     q: DMatrix<f64>,
-    cross: DMatrix<f64>,
 }
 
 /// Weights and spread of the scaled unscented transform for `n` states, or why they are unusable.
@@ -66,10 +63,7 @@ impl Ukf {
         let (wm, wc, scale) = weights(n, params)?;
         let pts = 2 * n + 1;
         Ok(Self {
-            mean,
-            cov,
-            pred: Predictor::new(model, integration, pts),
-            obs: ObsSpace::new(model),
+            core: FilterCore::new(model, integration, pts, mean, cov),
             pobs: PointObserver::new(model, pts),
             wm,
             wc,
@@ -79,17 +73,16 @@ impl Ukf {
             mean0: DVector::zeros(n),
             l: vec![0.0; n * n],
             q: DMatrix::zeros(n, n),
-            cross: DMatrix::zeros(n, n),
         })
     }
 
     /// Draw sigma points (rows of `sigma`) from the current mean and covariance.
     fn draw(&mut self) -> Result<(), FilterError> {
-        let n = self.mean.len();
-        cholesky_psd(self.cov.as_slice(), &mut self.l, n)
+        let n = self.core.mean.len();
+        cholesky_psd(self.core.cov.as_slice(), &mut self.l, n)
             .map_err(|_| FilterError::NotPositive("state covariance"))?;
         for i in 0..n {
-            let m = self.mean[i];
+            let m = self.core.mean[i];
             self.sigma[(0, i)] = m;
             for k in 0..n {
                 let d = self.scale * self.l[i + k * n];
@@ -100,11 +93,11 @@ impl Ukf {
         Ok(())
     }
 
-    /// Weighted mean of the sigma points into `self.mean`.
+    /// Weighted mean of the sigma points into `self.core.mean`.
     fn mean_of_points(&mut self) {
         let pts = self.sigma.nrows();
-        for i in 0..self.mean.len() {
-            self.mean[i] = (0..pts).map(|j| self.wm[j] * self.sigma[(j, i)]).sum();
+        for i in 0..self.core.mean.len() {
+            self.core.mean[i] = (0..pts).map(|j| self.wm[j] * self.sigma[(j, i)]).sum();
         }
     }
 }
@@ -121,40 +114,41 @@ impl Estimator for Ukf {
         self.draw()?;
         if keep_cross {
             self.sigma0.copy_from(&self.sigma);
-            self.mean0.copy_from(&self.mean);
+            self.mean0.copy_from(&self.core.mean);
         }
-        self.pred
+        self.core
+            .pred
             .predict_points(model, &mut self.sigma, &self.wm, u, t0, dt, &mut self.q)?;
         self.mean_of_points();
-        let (n, pts) = (self.mean.len(), self.sigma.nrows());
+        let (n, pts) = (self.core.mean.len(), self.sigma.nrows());
         for j in 0..n {
             for i in 0..=j {
                 let mut s = 0.0;
                 for k in 0..pts {
                     s += self.wc[k]
-                        * (self.sigma[(k, i)] - self.mean[i])
-                        * (self.sigma[(k, j)] - self.mean[j]);
+                        * (self.sigma[(k, i)] - self.core.mean[i])
+                        * (self.sigma[(k, j)] - self.core.mean[j]);
                 }
                 let v = s + self.q[(i, j)];
-                self.cov[(i, j)] = v;
-                self.cov[(j, i)] = v;
+                self.core.cov[(i, j)] = v;
+                self.core.cov[(j, i)] = v;
             }
         }
         if keep_cross {
             // Cov(x_k, x_{k+1}) = Σ Wᶜ (X⁰ − m⁰)(X − m)ᵀ (Särkkä 2008, IEEE TAC 53(3)).
             for j in 0..n {
                 for i in 0..n {
-                    self.cross[(i, j)] = (0..pts)
+                    self.core.cross[(i, j)] = (0..pts)
                         .map(|k| {
                             self.wc[k]
                                 * (self.sigma0[(k, i)] - self.mean0[i])
-                                * (self.sigma[(k, j)] - self.mean[j])
+                                * (self.sigma[(k, j)] - self.core.mean[j])
                         })
                         .sum();
                 }
             }
         }
-        if !self.cov.iter().all(|x| x.is_finite()) {
+        if !self.core.cov.iter().all(|x| x.is_finite()) {
             return Err(FilterError::NonFinite("predicted covariance"));
         }
         Ok(())
@@ -168,63 +162,53 @@ impl Estimator for Ukf {
         t: f64,
         gate: Option<&[f64]>,
     ) -> Result<bool, FilterError> {
-        self.obs.begin(model, reading);
+        self.core.obs.begin(model, reading);
         self.draw()?;
-        self.pobs.eval(model, &self.obs.checks, &self.sigma, u, t);
-        let (n, m, pts) = (self.mean.len(), self.obs.m, self.sigma.nrows());
+        self.pobs
+            .eval(model, &self.core.obs.checks, &self.sigma, u, t);
+        let (n, m, pts) = (self.core.mean.len(), self.core.obs.m, self.sigma.nrows());
         let zs = &self.pobs.zs;
         for r in 0..m {
-            self.obs.zhat[r] = (0..pts).map(|k| self.wm[k] * zs[r * pts + k]).sum();
+            self.core.obs.zhat[r] = (0..pts).map(|k| self.wm[k] * zs[r * pts + k]).sum();
         }
         for c in 0..m {
             for r in 0..m {
-                self.obs.s[r + c * m] = (0..pts)
+                self.core.obs.s[r + c * m] = (0..pts)
                     .map(|k| {
                         self.wc[k]
-                            * (zs[r * pts + k] - self.obs.zhat[r])
-                            * (zs[c * pts + k] - self.obs.zhat[c])
+                            * (zs[r * pts + k] - self.core.obs.zhat[r])
+                            * (zs[c * pts + k] - self.core.obs.zhat[c])
                     })
                     .sum();
             }
             for i in 0..n {
-                self.obs.c[i + c * n] = (0..pts)
+                self.core.obs.c[i + c * n] = (0..pts)
                     .map(|k| {
                         self.wc[k]
-                            * (self.sigma[(k, i)] - self.mean[i])
-                            * (zs[c * pts + k] - self.obs.zhat[c])
+                            * (self.sigma[(k, i)] - self.core.mean[i])
+                            * (zs[c * pts + k] - self.core.obs.zhat[c])
                     })
                     .sum();
             }
         }
-        if !self.obs.gate(gate)? {
+        if !self.core.obs.gate(gate)? {
             return Ok(false);
         }
-        self.obs.gain()?;
-        self.obs.apply_gain(self.mean.as_mut_slice());
-        self.obs.subtract_gain_cross(self.cov.as_mut_slice());
-        symmetrize(&mut self.cov);
-        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
+        self.core.obs.gain()?;
+        self.core.obs.apply_gain(self.core.mean.as_mut_slice());
+        self.core
+            .obs
+            .subtract_gain_cross(self.core.cov.as_mut_slice());
+        self.core.finish_update()?;
         Ok(true)
     }
 
-    fn obs(&self) -> &ObsSpace {
-        &self.obs
+    fn core(&self) -> &FilterCore {
+        &self.core
     }
 
-    fn mean(&self) -> &DVector<f64> {
-        &self.mean
-    }
-
-    fn covariance(&self) -> &DMatrix<f64> {
-        &self.cov
-    }
-
-    fn cross(&self) -> &DMatrix<f64> {
-        &self.cross
-    }
-
-    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
-        self.pred.set_deadline(deadline);
+    fn core_mut(&mut self) -> &mut FilterCore {
+        &mut self.core
     }
 
     fn clone_box(&self) -> Box<dyn Estimator> {

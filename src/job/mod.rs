@@ -15,6 +15,7 @@
 
 use crate::config::Limits;
 mod check;
+mod failure;
 mod filtering;
 mod pipeline;
 mod plain;

@@ -62,7 +62,7 @@ impl Lines<'_> {
             let reading = source.next(i)?;
             preds.write(run, self.writer, Some(&reading.t))?;
             run.step(reading, "")
-                .map_err(|p| problem_under(p, &line_pointer(i)))?;
+                .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
             let est = run.estimator();
             block.push(
                 self.writer,

@@ -28,7 +28,7 @@ impl Lines<'_> {
             preds.write(run, self.writer, Some(&reading.t))?;
             let mut predicted = None;
             run.step_capturing(&reading, "", Some(&mut predicted))
-                .map_err(|p| problem_under(p, &line_pointer(i)))?;
+                .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
             let est = run.estimator();
             let predicted = predicted.map(|(m, p)| (m, p, est.cross().clone()));
             stored.push(Stored {

@@ -64,7 +64,8 @@ impl Stream {
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;
-        self.run.step(&self.reading, "").map_err(|mut p| {
+        self.run.step(&self.reading, "").map_err(|e| {
+            let mut p = Problem::from(e);
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;

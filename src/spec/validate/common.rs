@@ -2,7 +2,7 @@
 //! naming what was found), numbers with a sign, matrices of a given size, covariances,
 //! names, times, and refusing keys a section does not have.
 
-use crate::filter::linalg::{cholesky_psd, is_symmetric, symmetrize};
+use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
 use crate::formula::FormulaError;
 use crate::spec::error::{SpecErrorKind, SpecErrors};
 use crate::spec::raw::{Expected, Field, Matrix, RawTime};

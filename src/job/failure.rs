@@ -1,0 +1,69 @@
+//! How a filter run's failure reads in an answer: [`RunError`] (the filter layer's own
+//! error) becomes the RFC 9457 problem document the web layer and the CLI send.
+//!
+//! Faults in the request (a time going backwards, off the model's grid, unusable unscented
+//! settings, a prior the ensemble cannot be drawn from) are 422s pointing at the field;
+//! a step that stops on a numerical failure is `numerical-failure`; one that runs out of
+//! the compute budget is `deadline-exceeded`. The detail is the error's own message.
+
+use crate::filter::run::RunError;
+use crate::filter::FilterError;
+use crate::problem::{Problem, ProblemKind};
+
+impl From<RunError> for Problem {
+    fn from(e: RunError) -> Self {
+        let detail = e.to_string();
+        match e {
+            RunError::Unscented(_) => Problem::field("/filter/unscented", detail),
+            RunError::Ensemble(_) => Problem::field("/prior", detail),
+            RunError::TimeDecreasing { pointer, .. } | RunError::OffGrid { pointer, .. } => {
+                Problem::field(format!("{pointer}/t"), detail)
+            }
+            RunError::Step {
+                cause: FilterError::Deadline,
+                ..
+            } => Problem::new(ProblemKind::DeadlineExceeded, detail),
+            RunError::Step { .. } => Problem::new(ProblemKind::NumericalFailure, detail),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn request_faults_are_422s_at_the_field_and_step_failures_are_not() {
+        // API.md: times going backwards are a 422 with a JSON Pointer (RFC 6901) to the
+        // field; RFC 9457 carries the pointer in `errors`.
+        let p = Problem::from(RunError::TimeDecreasing {
+            pointer: "/measurements/3".into(),
+            at: "2.5".into(),
+            current: "4".into(),
+        });
+        assert_eq!(p.status, 422);
+        assert_eq!(p.errors[0].pointer, "/measurements/3/t");
+        assert_eq!(
+            p.errors[0].detail,
+            "times must not decrease: 2.5 comes after 4"
+        );
+        let p = Problem::from(RunError::Ensemble(FilterError::NotPositive(
+            "prior covariance",
+        )));
+        assert_eq!((p.status, p.errors[0].pointer.as_str()), (422, "/prior"));
+        let step = |cause| RunError::Step {
+            line: 7,
+            at: "0.25".into(),
+            cause,
+        };
+        let p = Problem::from(step(FilterError::NonFinite("state")));
+        assert!(p.type_uri.ends_with("/numerical-failure") && p.errors.is_empty());
+        assert_eq!(
+            p.detail,
+            "the filter stopped at step 7 (t = 0.25): a non-finite value appeared in the state"
+        );
+        let p = Problem::from(step(FilterError::Deadline));
+        assert!(p.type_uri.ends_with("/deadline-exceeded"), "{}", p.type_uri);
+        assert_eq!(p.status, ProblemKind::DeadlineExceeded.status_title().0);
+    }
+}
