@@ -9,8 +9,8 @@
 //! Nothing here knows about requests or JSON: [`run`] hands each time's truth and readings
 //! to a [`Sink`]; `POST /v1/simulate` ([`crate::job`]) parses the request and writes them.
 
-use crate::linalg::cholesky_psd;
 use crate::filter::predict::Predictor;
+use crate::linalg::cholesky_psd;
 use crate::spec::model::{Integration, Model, Prior};
 use crate::spec::time::Instant;
 use nalgebra::DMatrix;

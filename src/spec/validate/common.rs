@@ -2,8 +2,8 @@
 //! naming what was found), numbers with a sign, matrices of a given size, covariances,
 //! names, times, and refusing keys a section does not have.
 
-use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
 use crate::formula::FormulaError;
+use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
 use crate::spec::error::{SpecErrorKind, SpecErrors};
 use crate::spec::raw::{Expected, Field, Matrix, RawTime};
 use crate::spec::reader::{child, index, Errors};
