@@ -11,7 +11,20 @@
 //! | [`repair`] | `(P + Pᵀ)/2`, symmetry check, exact rounding | Higham §10.1 |
 //! | [`finite`] | no NaN or infinity anywhere | IEEE 754 |
 //! | [`norm`] | `‖A‖₁` | Golub & Van Loan §2.3 |
-//! | `dispatch.rs` | AVX2 copies of hot kernels, chosen at run time | |
+//!
+//! Three kernels are compiled twice, for baseline x86-64 (SSE2, two doubles per
+//! instruction) and for AVX2 (four), and pick the copy for the CPU at run time through the
+//! `multiversion` crate: the tiled products `gemm_blocked_nn` and `gemm_blocked_nt`
+//! (`products.rs`) and `symmetric_eigen`. Each gives its two copies a block size sized to
+//! the sixteen registers of each width (tiles of 8 rows or 4, rotations over 16 rows or 8),
+//! chosen inside the function with `target_cfg_f!`. Both copies compute the same bits:
+//! Rust never fuses a multiplication and an addition on its own (no floating-point
+//! contraction without an explicit `mul_add`), LLVM vectorises a sum only where the order
+//! of its additions stays as written, only `avx2` is enabled (not `fma`), and the block
+//! size decides which entries share a register, never the order in which one entry's
+//! terms are added. Each kernel's tests compare the two copies bit for bit. (The AVX2
+//! copies were checked instruction for instruction against the hand-written dispatch they
+//! replace.)
 //!
 //! Rules every kernel keeps: the order of floating-point operations is fixed and
 //! documented (results are the same bits on every machine, which bit-exact resume relies
@@ -21,7 +34,6 @@
 //! This module sits below `filter`, `dynamics` and `spec` and imports none of them.
 
 pub mod cholesky;
-pub(crate) mod dispatch;
 pub mod finite;
 pub mod lu;
 pub mod norm;
@@ -33,7 +45,6 @@ pub use cholesky::{
     cholesky, cholesky_psd, cholesky_solve, mahalanobis, solve_lower, solve_lower_transposed,
     NotPositive,
 };
-pub use dispatch::has_avx2;
 pub use finite::all_finite;
 pub use lu::lu_solve_in_place;
 pub use norm::norm1;

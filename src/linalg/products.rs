@@ -17,8 +17,9 @@
 //! allocates a packing buffer on every call, so the filter steps and the discretisation
 //! use these instead.
 
-use super::dispatch::with_avx2_copy;
 use super::repair::symmetrize;
+use multiversion::multiversion;
+use multiversion::target::target_cfg_f;
 use nalgebra::DMatrix;
 
 /// `out = a bᵀ` for `a: r × k`, `b: c × k` (no allocation).
@@ -126,14 +127,38 @@ fn gemm<const T: bool>(
 /// and column count that takes the tiled form.
 const BLOCK: usize = 4;
 
-with_avx2_copy! {
-    /// [`gemm_blocked`] for `o = a b`.
-    fn gemm_blocked_nn(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool, upper: bool) => gemm_blocked::<false, 8>, gemm_blocked::<false, 4>;
+/// [`gemm_blocked`] for `o = a b`.
+#[multiversion(targets("x86_64+avx2"), dispatcher = "direct")]
+fn gemm_blocked_nn(
+    a: &[f64],
+    b: &[f64],
+    o: &mut [f64],
+    dims: (usize, usize, usize),
+    accumulate: bool,
+    upper: bool,
+) {
+    if target_cfg_f!(target_feature = "avx2") {
+        gemm_blocked::<false, 8>(a, b, o, dims, accumulate, upper)
+    } else {
+        gemm_blocked::<false, 4>(a, b, o, dims, accumulate, upper)
+    }
 }
 
-with_avx2_copy! {
-    /// [`gemm_blocked`] for `o = a bᵀ`.
-    fn gemm_blocked_nt(a: &[f64], b: &[f64], o: &mut [f64], dims: (usize, usize, usize), accumulate: bool, upper: bool) => gemm_blocked::<true, 8>, gemm_blocked::<true, 4>;
+/// [`gemm_blocked`] for `o = a bᵀ`.
+#[multiversion(targets("x86_64+avx2"), dispatcher = "direct")]
+fn gemm_blocked_nt(
+    a: &[f64],
+    b: &[f64],
+    o: &mut [f64],
+    dims: (usize, usize, usize),
+    accumulate: bool,
+    upper: bool,
+) {
+    if target_cfg_f!(target_feature = "avx2") {
+        gemm_blocked::<true, 8>(a, b, o, dims, accumulate, upper)
+    } else {
+        gemm_blocked::<true, 4>(a, b, o, dims, accumulate, upper)
+    }
 }
 
 /// `o = a bᵀ` like [`gemm_nt`], but only the blocks of `o` that reach the upper triangle
@@ -340,7 +365,7 @@ mod tests {
 
     #[test]
     fn avx2_copies_of_the_tiled_product_compute_the_same_bits() {
-        // The tiled kernel compiled for AVX2 (see `dispatch`) must round exactly as the
+        // The tiled kernel compiled for AVX2 (see the module overview of `linalg`) must round exactly as the
         // baseline body: IEEE 754 operations in the same order give the same result
         // whatever the register width. On a CPU without AVX2 both calls run the baseline.
         let y: Vec<f64> = (0..1600)

@@ -19,9 +19,10 @@
 //! The ensemble transform calls it once per reading line; nalgebra's `symmetric_eigen`
 //! allocates its factors on every call, so this one works in caller-owned buffers.
 
-use super::dispatch::with_avx2_copy;
 use super::finite::all_finite;
 use super::products::dot4;
+use multiversion::multiversion;
+use multiversion::target::target_cfg_f;
 
 /// Whether `a² + b²` can be formed plainly: squaring can neither overflow nor lose
 /// precision to underflow.
@@ -65,7 +66,6 @@ fn rotation(a: f64, b: f64, num: f64) -> (f64, f64, f64) {
     }
 }
 
-with_avx2_copy! {
 /// Eigen-decomposition of a symmetric `n × n` matrix held column-major in `v` (only its
 /// values are read; it is overwritten with the orthonormal eigenvectors as columns),
 /// eigenvalues ascending into `d`, `scratch` (length ≥ 3n) as scratch. Householder
@@ -85,7 +85,13 @@ with_avx2_copy! {
 ///
 /// It replaces nalgebra's `symmetric_eigen`, which allocates its factors on every call,
 /// in the ensemble transform that runs once per reading line.
-pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usize) -> bool => symmetric_eigen_body::<16>, symmetric_eigen_body::<8>;
+#[multiversion(targets("x86_64+avx2"), dispatcher = "direct")]
+pub fn symmetric_eigen(v: &mut [f64], d: &mut [f64], scratch: &mut [f64], n: usize) -> bool {
+    if target_cfg_f!(target_feature = "avx2") {
+        symmetric_eigen_body::<16>(v, d, scratch, n)
+    } else {
+        symmetric_eigen_body::<8>(v, d, scratch, n)
+    }
 }
 
 /// The body of [`symmetric_eigen`], inlined into its baseline and its AVX2 copy, with the
@@ -496,7 +502,7 @@ mod tests {
 
     #[test]
     fn avx2_copy_computes_the_same_bits_as_the_baseline() {
-        // The copy compiled for AVX2 (see `dispatch`) must round exactly as the baseline
+        // The copy compiled for AVX2 (see the module overview of `linalg`) must round exactly as the baseline
         // body: IEEE 754 operations in the same order give the same result whatever the
         // register width. On a CPU without AVX2 both calls run the baseline copy.
         let n = 40;
