@@ -16,7 +16,7 @@ use support::{
     cart, cart_readings, cv1, cv1_readings, cv3, cv3_readings, lorenz96, lorenz96_readings,
     run_all, Setup,
 };
-use tacit::spec::reading::Reading;
+use tacit::model::Reading;
 
 /// CPU seconds used by this process so far, or `None` without `/proc`.
 fn cpu_seconds() -> Option<f64> {

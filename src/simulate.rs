@@ -11,8 +11,8 @@
 
 use crate::filter::predict::Predictor;
 use crate::linalg::cholesky_psd;
-use crate::spec::model::{Integration, Model, Prior};
-use crate::spec::time::Instant;
+use crate::model::Instant;
+use crate::model::{Integration, Model, Prior};
 use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha20Rng;

@@ -14,9 +14,9 @@ use serde_json::{json, Value};
 use std::sync::Arc;
 use tacit::config::Limits;
 use tacit::filter::run::Run;
-use tacit::spec::reading::Reading;
-use tacit::spec::time::Instant;
-use tacit::spec::validate;
+use tacit::model::Instant;
+use tacit::model::Reading;
+use tacit::request::validate;
 
 /// Lines run before counting (first-use effects, caches).
 const WARM_UP: usize = 8;

@@ -13,10 +13,10 @@ use serde_json::{json, Value};
 use std::sync::Arc;
 use tacit::config::Limits;
 use tacit::filter::run::Run;
-use tacit::spec::model::{FilterConfig, Model, Prior};
-use tacit::spec::reading::Reading;
-use tacit::spec::time::Instant;
-use tacit::spec::validate;
+use tacit::model::Instant;
+use tacit::model::Reading;
+use tacit::model::{FilterConfig, Model, Prior};
+use tacit::request::validate;
 
 /// Pointer passed to `Run::step` (only used in error messages).
 pub const PTR: &str = "/measurements/0";

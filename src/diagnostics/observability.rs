@@ -7,7 +7,7 @@
 //!
 //! The analysis alone; the `POST /v1/check` answer built on it is [`crate::job::check`].
 
-use crate::spec::model::{Dynamics, Model};
+use crate::model::{Dynamics, Model};
 use nalgebra::{DMatrix, DVector};
 use serde::Serialize;
 

@@ -16,8 +16,8 @@ use crate::filter::shared::FilterCore;
 use crate::filter::{Estimator, FilterError};
 use crate::formula::Workspace;
 use crate::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt};
-use crate::spec::model::{Integration, Model};
-use crate::spec::reading::Reading;
+use crate::model::Reading;
+use crate::model::{Integration, Model};
 use nalgebra::{DMatrix, DVector};
 
 /// The extended Kalman filter's state and buffers.
@@ -376,7 +376,7 @@ impl Estimator for Ekf {
 mod tests {
     use super::*;
     use crate::filter::test_fixtures::{integration, prior, three_states, two_sensors};
-    use crate::spec::time::Instant;
+    use crate::model::Instant;
 
     #[test]
     fn row_at_a_time_update_equals_the_stacked_update() {

@@ -15,8 +15,8 @@ mod test_fixtures;
 pub mod ukf;
 
 use crate::linalg::all_finite;
-use crate::spec::model::Model;
-use crate::spec::reading::Reading;
+use crate::model::Model;
+use crate::model::Reading;
 use nalgebra::{DMatrix, DVector};
 use observe::ObsSpace;
 use shared::FilterCore;

@@ -10,8 +10,8 @@
 use crate::filter::predict::load_points;
 use crate::filter::FilterError;
 use crate::linalg::{cholesky, cholesky_solve, mahalanobis};
-use crate::spec::model::Model;
-use crate::spec::reading::Reading;
+use crate::model::Model;
+use crate::model::Reading;
 
 /// One sensor's innovation on a line.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]

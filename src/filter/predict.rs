@@ -16,7 +16,7 @@ use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
 use crate::filter::{ensure_finite, FilterError};
 use crate::formula::{BatchWorkspace, Program, Workspace};
 use crate::linalg::{all_finite, congruence_plus, symmetrize};
-use crate::spec::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
+use crate::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
 use nalgebra::{DMatrix, DVector};
 
 /// `x` rounded to the nearest value with 40 significant bits (the low 12 mantissa bits

@@ -10,9 +10,9 @@ use crate::filter::ekf::Ekf;
 use crate::filter::enkf::Enkf;
 use crate::filter::ukf::Ukf;
 use crate::filter::{Estimator, FilterError};
-use crate::spec::model::{Dynamics, FilterConfig, LinearTime, Method, Model, Prior};
-use crate::spec::reading::Reading;
-use crate::spec::time::{Instant, TimeMode};
+use crate::model::Reading;
+use crate::model::{Dynamics, FilterConfig, LinearTime, Method, Model, Prior};
+use crate::model::{Instant, TimeMode};
 use nalgebra::{DMatrix, DVector};
 use std::sync::Arc;
 

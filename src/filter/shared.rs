@@ -7,7 +7,7 @@ use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
 use crate::filter::{ensure_finite, FilterError};
 use crate::linalg::symmetrize;
-use crate::spec::model::{Integration, Model};
+use crate::model::{Integration, Model};
 use nalgebra::{DMatrix, DVector};
 
 /// The parts of a filter that every filter has.

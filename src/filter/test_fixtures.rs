@@ -1,13 +1,13 @@
 //! Small models shared by the filters' unit tests.
 
 use crate::config::Limits;
-use crate::spec::model::{Ensemble, EnsembleUpdate, Integration, Model};
+use crate::model::{Ensemble, EnsembleUpdate, Integration, Model};
 use nalgebra::{DMatrix, DVector};
 use serde_json::{json, Value};
 
 /// A three-state oscillator (a' = b, b' = −a, c constant) read by `sensors`.
 pub fn three_states(sensors: Value) -> Model {
-    crate::spec::validate::model(
+    crate::request::validate::model(
         &json!({"states": ["a", "b", "c"], "dynamics": {"rates": {"a": "b", "b": "-a"}},
                 "sensors": sensors}),
         "/model",

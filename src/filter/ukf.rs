@@ -13,8 +13,8 @@ use crate::filter::observe::PointObserver;
 use crate::filter::shared::FilterCore;
 use crate::filter::{Estimator, FilterError};
 use crate::linalg::cholesky_psd;
-use crate::spec::model::{Integration, Model, Unscented};
-use crate::spec::reading::Reading;
+use crate::model::Reading;
+use crate::model::{Integration, Model, Unscented};
 use nalgebra::{DMatrix, DVector};
 
 /// The unscented filter's state and buffers.

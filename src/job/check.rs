@@ -6,10 +6,10 @@
 use crate::config::Limits;
 use crate::diagnostics::observability::{analyse, jacobians, Observability};
 use crate::job::{Done, RunStats};
+use crate::model::Dynamics;
 use crate::problem::Problem;
-use crate::spec::model::Dynamics;
-use crate::spec::request;
-use crate::spec::validate;
+use crate::request::envelope;
+use crate::request::validate;
 use nalgebra::{DMatrix, DVector};
 use serde::Serialize;
 
@@ -78,10 +78,10 @@ mod indexmap_like {
 
 /// `POST /v1/check`.
 pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
-    let env = request::envelope(body)?;
-    let model_v = request::section(env.model, "model")?;
+    let env = envelope::envelope(body)?;
+    let model_v = envelope::section(env.model, "model")?;
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
-    let (x, u, t) = match request::optional_section(env.prior)? {
+    let (x, u, t) = match envelope::optional_section(env.prior)? {
         Some(pv) => {
             let p = validate::prior(&pv, "/prior", &model, None).map_err(Problem::invalid)?;
             (p.mean, p.inputs, p.t.secs)

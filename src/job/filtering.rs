@@ -13,8 +13,8 @@ use crate::filter::run::Run;
 use crate::job::write::Writer;
 use crate::job::Pieces;
 use crate::problem::Problem;
-use crate::spec::reading::ReadingParser;
-use crate::spec::request::{self, Envelope};
+use crate::request::envelope::{self, Envelope};
+use crate::request::reading::ReadingParser;
 use serde_json::value::RawValue;
 use std::sync::atomic::AtomicBool;
 
@@ -26,7 +26,7 @@ fn measurement_list<'a>(env: &Envelope<'a>, limits: &Limits) -> Result<Vec<&'a s
         .measurements
         .ok_or_else(|| Problem::field("/measurements", "missing required field 'measurements'"))?;
     let text: &'a str = raw.get();
-    let list = match request::array_elements(text) {
+    let list = match envelope::array_elements(text) {
         Some(list) => list,
         None => {
             let raws: Vec<&'a RawValue> =
@@ -34,7 +34,7 @@ fn measurement_list<'a>(env: &Envelope<'a>, limits: &Limits) -> Result<Vec<&'a s
                     serde_json::error::Category::Data => {
                         Problem::field("/measurements", "expected an array of measurement lines")
                     }
-                    _ => request::json_problem(e),
+                    _ => envelope::json_problem(e),
                 })?;
             raws.into_iter().map(RawValue::get).collect()
         }
@@ -69,7 +69,7 @@ fn run_batch_overlapping(
     smooth: bool,
     overlap_from: usize,
 ) -> Result<Pieces, Problem> {
-    let env = request::envelope(body)?;
+    let env = envelope::envelope(body)?;
     let Setup {
         model,
         cfg,

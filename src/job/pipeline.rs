@@ -6,8 +6,8 @@ use super::plain::{Lines, Predictions, Shape, Source};
 use crate::filter::run::Run;
 use crate::job::records::Records;
 use crate::job::write::Writer;
+use crate::model::Reading;
 use crate::problem::{Problem, ProblemKind};
-use crate::spec::reading::Reading;
 use std::sync::mpsc;
 
 /// Blocks of records in flight between the two threads (besides the one being filled).

@@ -10,9 +10,10 @@ use crate::filter::run::Run;
 use crate::job::records::Records;
 use crate::job::write::Writer;
 use crate::job::RunStats;
+use crate::model::Model;
+use crate::model::Reading;
 use crate::problem::{Problem, ProblemKind};
-use crate::spec::model::Model;
-use crate::spec::reading::{LineError, Reading, ReadingParser};
+use crate::request::reading::{LineError, ReadingParser};
 
 /// What the filtering loop of one batch reads and writes with.
 pub(super) struct Lines<'a> {
@@ -120,7 +121,7 @@ pub(super) fn stats(run: &Run) -> RunStats {
 
 /// The `output.at` prediction times and how far they have been written.
 pub(super) struct Predictions<'a> {
-    pub(super) at: &'a [crate::spec::time::Instant],
+    pub(super) at: &'a [crate::model::Instant],
     pub(super) next: usize,
     pub(super) buf: Vec<u8>,
 }
@@ -131,7 +132,7 @@ impl Predictions<'_> {
         &mut self,
         run: &Run,
         writer: &Writer,
-        upto: Option<&crate::spec::time::Instant>,
+        upto: Option<&crate::model::Instant>,
     ) -> Result<(), Problem> {
         let mode = run.mode();
         while let Some(at) = self.at.get(self.next) {

@@ -9,7 +9,7 @@
 
 use crate::filter::observe::ObsSpace;
 use crate::job::write::Writer;
-use crate::spec::time::Instant;
+use crate::model::Instant;
 use nalgebra::{DMatrix, DVector};
 
 /// One step's place in a block.

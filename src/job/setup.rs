@@ -3,10 +3,10 @@
 //! the cancel flag while the lines run.
 
 use crate::config::Limits;
+use crate::model::{FilterConfig, Model, OutputConfig, Prior};
 use crate::problem::{FieldError, Problem, ProblemKind};
-use crate::spec::model::{FilterConfig, Model, OutputConfig, Prior};
-use crate::spec::request::{self, Envelope};
-use crate::spec::validate;
+use crate::request::envelope::{self, Envelope};
+use crate::request::validate;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::Instant as Clock;
@@ -25,12 +25,12 @@ pub struct Setup {
 
 /// Parse `model`, `filter`, `prior` and `output`, collecting every field error.
 pub fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Problem> {
-    let [model_v, filter_v, prior_v] = request::sections([
+    let [model_v, filter_v, prior_v] = envelope::sections([
         (env.model, "model"),
         (env.filter, "filter"),
         (env.prior, "prior"),
     ])?;
-    let output_v = request::optional_section(env.output)?;
+    let output_v = envelope::optional_section(env.output)?;
     let mut errors: Vec<FieldError> = Vec::new();
     let model = validate::model(&model_v, "/model", limits)
         .map_err(|e| errors.extend(e))

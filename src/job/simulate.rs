@@ -5,13 +5,13 @@
 use crate::config::Limits;
 use crate::job::write::{num, Writer};
 use crate::job::{Done, RunStats};
+use crate::model::Model;
+use crate::model::{Instant, TimeMode};
 use crate::problem::{Problem, ProblemKind};
+use crate::request::envelope;
+use crate::request::reader::{array, index, number, positive, whole, Errors, Obj};
+use crate::request::validate;
 use crate::simulate::{self, Plan, Sample, Schedule, SimulateError, Sink};
-use crate::spec::model::Model;
-use crate::spec::reader::{array, index, number, positive, whole, Errors, Obj};
-use crate::spec::request;
-use crate::spec::time::{Instant, TimeMode};
-use crate::spec::validate;
 use serde_json::Value;
 use std::sync::atomic::AtomicBool;
 
@@ -190,14 +190,14 @@ fn input_schedule(
 
 /// `POST /v1/simulate`.
 pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    let env = request::envelope(body)?;
+    let env = envelope::envelope(body)?;
     if env.readings.is_some() {
         return Err(Problem::field(
             "/readings",
             "the sampling schedule is now called 'sampling' (v2); 'readings' is no longer read",
         ));
     }
-    let [model_v, prior_v, times_v] = request::sections([
+    let [model_v, prior_v, times_v] = envelope::sections([
         (env.model, "model"),
         (env.prior, "prior"),
         (env.times, "times"),
@@ -208,16 +208,16 @@ pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Don
     let mut mode = Some(prior.mode);
     let times = times(&times_v, &mut mode, limits, &mut errs);
     let inputs = input_schedule(
-        request::optional_section(env.inputs)?,
+        envelope::optional_section(env.inputs)?,
         &model,
         &mut mode,
         &mut errs,
     );
-    let seed = match request::optional_section(env.seed)? {
+    let seed = match envelope::optional_section(env.seed)? {
         Some(s) => whole(&s, "/seed", &mut errs).unwrap_or(0),
         None => 0,
     };
-    let sched = schedules(request::optional_section(env.sampling)?, &model, &mut errs);
+    let sched = schedules(envelope::optional_section(env.sampling)?, &model, &mut errs);
     if !errs.is_empty() {
         return Err(Problem::invalid(errs.into_vec()));
     }

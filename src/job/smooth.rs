@@ -5,8 +5,8 @@
 use super::plain::{line_pointer, line_problem, problem_under, Lines, Predictions};
 use crate::filter::run::Run;
 use crate::filter::smoother::{rts, Stored};
+use crate::model::Reading;
 use crate::problem::{Problem, ProblemKind};
-use crate::spec::reading::Reading;
 
 impl Lines<'_> {
     /// Filter every line keeping what the smoother needs, smooth, and write the smoothed

@@ -8,9 +8,10 @@ use crate::config::Limits;
 use crate::filter::run::Run;
 use crate::job::write::Writer;
 use crate::job::RunStats;
+use crate::model::Reading;
 use crate::problem::{Problem, ProblemKind};
-use crate::spec::reading::{Reading, ReadingParser};
-use crate::spec::request;
+use crate::request::envelope;
+use crate::request::reading::ReadingParser;
 
 /// A stream in progress (see [`crate::job::StreamSession`]).
 pub struct Stream {
@@ -23,7 +24,7 @@ pub struct Stream {
 impl Stream {
     /// Parse the header line `{model, filter, prior, output?}`.
     pub fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
-        let env = request::envelope(header)?;
+        let env = envelope::envelope(header)?;
         if env.measurements.is_some() {
             return Err(Problem::field("/measurements", "the stream's first line holds model, filter, prior and output; readings follow one per line"));
         }

@@ -5,8 +5,8 @@
 use crate::diagnostics::nis::NisSummary;
 use crate::filter::observe::ObsSpace;
 use crate::filter::run::Counts;
-use crate::spec::model::{CovarianceOutput, Model, OutputConfig};
-use crate::spec::time::{Instant, TimeMode};
+use crate::model::{CovarianceOutput, Model, OutputConfig};
+use crate::model::{Instant, TimeMode};
 use nalgebra::{DMatrix, DVector};
 
 /// Writes the pieces of responses for one model.
@@ -332,7 +332,7 @@ impl Writer {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::spec::model::OutputConfig;
+    use crate::model::OutputConfig;
 
     fn square_text(m: &[f64], n: usize) -> String {
         let w = Writer {

@@ -31,7 +31,7 @@
 //! on); each file's tests keep a plain textbook version as the oracle; a reordering for
 //! speed stays only with a named bench showing more than 5 %.
 //!
-//! This module sits below `filter`, `dynamics` and `spec` and imports none of them.
+//! This module sits below `filter`, `dynamics`, `model` and `request` and imports none of them.
 
 pub mod cholesky;
 pub mod finite;

@@ -16,8 +16,8 @@
 use super::members::Enkf;
 use crate::filter::FilterError;
 use crate::linalg::{all_finite, cholesky};
-use crate::spec::model::{EnsembleUpdate, Model};
-use crate::spec::reading::Reading;
+use crate::model::Reading;
+use crate::model::{EnsembleUpdate, Model};
 
 impl Enkf {
     /// Update with the sensors present on `reading` at time `t`, gating each against

@@ -324,8 +324,8 @@ mod tests {
     use super::*;
     use crate::filter::test_fixtures::{etkf, integration, prior, three_states, two_sensors};
     use crate::filter::Estimator;
-    use crate::spec::reading::Reading;
-    use crate::spec::time::Instant;
+    use crate::model::Instant;
+    use crate::model::Reading;
     use nalgebra::{DMatrix, DVector};
     use serde_json::json;
 

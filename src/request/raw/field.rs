@@ -11,7 +11,7 @@ use std::marker::PhantomData;
 
 /// A human name of a JSON value's type, for "expected X, found Y" messages.
 pub fn kind_of(v: &Value) -> &'static str {
-    crate::spec::reader::kind_of(v)
+    crate::request::reader::kind_of(v)
 }
 
 /// What a raw type looks like in JSON, for "expected X, found Y" messages.
@@ -222,7 +222,7 @@ impl<T> Expected for Entries<'_, T> {
 /// Raw types read from a JSON object.
 macro_rules! an_object {
     ($($t:ty),*) => {
-        $(impl $crate::spec::raw::Expected for $t {
+        $(impl $crate::request::raw::Expected for $t {
             const EXPECTED: &'static str = "an object";
             const OBJECT: bool = true;
         })*
@@ -247,7 +247,7 @@ macro_rules! by_json_type {
                 impl<'de: 'a, 'a> serde::de::Visitor<'de> for V<'a> {
                     type Value = $t;
                     fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-                        f.write_str(<$t as $crate::spec::raw::Expected>::EXPECTED)
+                        f.write_str(<$t as $crate::request::raw::Expected>::EXPECTED)
                     }
                     $(
                     fn visit_u64<E: serde::de::Error>(self, x: u64) -> Result<$t, E> {

@@ -269,7 +269,7 @@ pub enum SpecErrorKind {
 
 /// "a, b, c" for messages listing known names.
 fn list<S: AsRef<str>>(names: &[S]) -> String {
-    crate::spec::reader::names_list(names)
+    crate::request::reader::names_list(names)
 }
 
 /// `"a", "b" or "c"`.

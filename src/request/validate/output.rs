@@ -2,12 +2,12 @@
 //! predict at.
 
 use super::common::{optional, time, typed, unknown_fields};
+use crate::model::TimeMode;
+use crate::model::{CovarianceOutput, OutputConfig};
 use crate::problem::FieldError;
-use crate::spec::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::spec::model::{CovarianceOutput, OutputConfig};
-use crate::spec::raw::{self, RawOutput};
-use crate::spec::reader::{child, index};
-use crate::spec::time::TimeMode;
+use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
+use crate::request::raw::{self, RawOutput};
+use crate::request::reader::{child, index};
 use serde_json::Value;
 
 /// Parse the optional `output` section at `ptr` (absent or `null`: the defaults), with
@@ -80,7 +80,7 @@ fn checked(o: &RawOutput, ptr: &str, mode: TimeMode, errs: &mut SpecErrors) -> O
 mod tests {
     use super::super::common::faults;
     use super::*;
-    use crate::spec::time::Instant;
+    use crate::model::Instant;
     use serde_json::json;
 
     #[test]

@@ -4,11 +4,11 @@ use super::common::{
     non_negative, number, optional, positive, required, typed, unknown_fields, whole,
 };
 use crate::config::Limits;
+use crate::model::{Ensemble, EnsembleUpdate, FilterConfig, Integration, Method, Unscented};
 use crate::problem::FieldError;
-use crate::spec::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::spec::model::{Ensemble, EnsembleUpdate, FilterConfig, Integration, Method, Unscented};
-use crate::spec::raw::{self, RawEnsemble, RawFilter, RawGate, RawIntegration, RawUnscented};
-use crate::spec::reader::child;
+use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
+use crate::request::raw::{self, RawEnsemble, RawFilter, RawGate, RawIntegration, RawUnscented};
+use crate::request::reader::child;
 use serde_json::Value;
 
 /// Parse and check the `filter` section at `ptr`, reporting every fault found as the

@@ -4,10 +4,10 @@
 
 use crate::formula::FormulaError;
 use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
-use crate::spec::error::{SpecErrorKind, SpecErrors};
-use crate::spec::raw::{Expected, Field, Matrix, RawTime};
-use crate::spec::reader::{child, index, Errors};
-use crate::spec::time::{Instant, TimeMode};
+use crate::model::{Instant, TimeMode};
+use crate::request::error::{SpecErrorKind, SpecErrors};
+use crate::request::raw::{Expected, Field, Matrix, RawTime};
+use crate::request::reader::{child, index, Errors};
 use nalgebra::DMatrix;
 use serde::Deserialize;
 use serde_json::{Map, Value};
@@ -345,7 +345,7 @@ pub(super) fn time(
 }
 
 /// [`time`] for callers that read their section with the pointer-carrying reader
-/// (`spec::reader`): a time value in JSON, its errors pushed as field errors.
+/// (`request::reader`): a time value in JSON, its errors pushed as field errors.
 pub fn time_value(
     v: &Value,
     ptr: &str,
@@ -367,7 +367,7 @@ pub fn time_value(
 /// Every fault of a failed check as `(pointer, message)`, for the section tests.
 #[cfg(test)]
 pub(super) fn faults<T: std::fmt::Debug>(
-    r: Result<T, Vec<crate::spec::error::SpecError>>,
+    r: Result<T, Vec<crate::request::error::SpecError>>,
 ) -> Vec<(String, String)> {
     r.expect_err("the check should fail")
         .into_iter()

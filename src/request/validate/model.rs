@@ -8,11 +8,11 @@ use super::dynamics::{dynamics, process_noise};
 use super::sensors::sensors;
 use crate::config::Limits;
 use crate::formula::FormulaLimits;
+use crate::model::{EstimatedParameter, Model};
 use crate::problem::FieldError;
-use crate::spec::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::spec::model::{EstimatedParameter, Model};
-use crate::spec::raw::{self, Field, RawEstimated, RawModel, RawParameter};
-use crate::spec::reader::{child, index};
+use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
+use crate::request::raw::{self, Field, RawEstimated, RawModel, RawParameter};
+use crate::request::reader::{child, index};
 use serde_json::Value;
 
 /// Parse and check the `model` section at `ptr`, reporting every fault found as the
@@ -204,7 +204,7 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
 mod tests {
     use super::super::common::faults;
     use super::*;
-    use crate::spec::model::{Dynamics, LinearTime, ProcessNoise};
+    use crate::model::{Dynamics, LinearTime, ProcessNoise};
     use serde_json::json;
 
     /// An overhead crane trolley pushed by a motor, its rail drag estimated.

@@ -5,10 +5,10 @@ use super::common::{
 };
 use crate::config::Limits;
 use crate::formula::{FormulaLimits, Program, Source};
-use crate::spec::error::{SpecErrorKind, SpecErrors};
-use crate::spec::model::Sensor;
-use crate::spec::raw::{Entries, Field, Measures, RawSensor, Spread};
-use crate::spec::reader::{child, index};
+use crate::model::Sensor;
+use crate::request::error::{SpecErrorKind, SpecErrors};
+use crate::request::raw::{Entries, Field, Measures, RawSensor, Spread};
+use crate::request::reader::{child, index};
 use nalgebra::DMatrix;
 
 /// Check every sensor; a sensor with a fault is left out after its errors are recorded.

@@ -1,11 +1,11 @@
-//! The validation step: raw sections (`spec::raw`) in, the checked [`Model`],
+//! The validation step: raw sections (`request::raw`) in, the checked [`Model`],
 //! [`FilterConfig`], [`Prior`] and [`OutputConfig`] out, or every fault found, each at
 //! its JSON Pointer. One file per section; shared checks in `common`.
 //!
-//! [`Model`]: crate::spec::model::Model
-//! [`FilterConfig`]: crate::spec::model::FilterConfig
-//! [`Prior`]: crate::spec::model::Prior
-//! [`OutputConfig`]: crate::spec::model::OutputConfig
+//! [`Model`]: crate::model::Model
+//! [`FilterConfig`]: crate::model::FilterConfig
+//! [`Prior`]: crate::model::Prior
+//! [`OutputConfig`]: crate::model::OutputConfig
 
 mod common;
 mod dynamics;

@@ -3,38 +3,16 @@
 //! (a million lines per request), so it uses typed serde with borrowed strings rather than
 //! a generic JSON tree.
 
+use crate::model::Model;
+use crate::model::Reading;
+use crate::model::{Instant, TimeMode};
 use crate::problem::{escape_token, FieldError};
-use crate::spec::line_scan::Scan;
-use crate::spec::model::Model;
-use crate::spec::reader::names_list;
-use crate::spec::time::{Instant, TimeMode};
+use crate::request::line_scan::Scan;
+use crate::request::reader::names_list;
 use serde::de::{Deserializer, MapAccess, SeqAccess, Visitor};
 use serde::Deserialize;
 use std::borrow::Cow;
 use std::fmt;
-
-/// One measurement line, checked against the model.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct Reading {
-    /// Time of the line.
-    pub t: Instant,
-    /// Sensors read on this line: `(sensor index, offset into z)`, in model sensor order.
-    pub sensors: Vec<(usize, usize)>,
-    /// Stacked reading values.
-    pub z: Vec<f64>,
-    /// Per-reading noise overrides: `(sensor index, offset into std)`.
-    pub std_overrides: Vec<(usize, usize)>,
-    /// Override std values (a line's `noise_std`).
-    pub std: Vec<f64>,
-    /// Inputs set on this line: `(input index, value)`.
-    pub inputs: Vec<(usize, f64)>,
-}
-
-impl Default for Instant {
-    fn default() -> Self {
-        Instant::seconds(0.0)
-    }
-}
 
 enum RawTime<'a> {
     Num(f64),
@@ -489,7 +467,7 @@ mod plain_line_tests {
     use serde_json::json;
 
     fn model() -> Model {
-        crate::spec::validate::model(
+        crate::request::validate::model(
             &json!({"states": ["x", "y"], "dynamics": {"rates": {"x": "y"}},
                     "sensors": {"a": {"measures": "x", "std": 1.0},
                                 "v": {"measures": ["x", "y"], "std": 1.0},

@@ -6,10 +6,10 @@ use super::common::{
     required, typed, unknown_fields,
 };
 use crate::formula::{FormulaLimits, Program, Source};
-use crate::spec::error::{SpecErrorKind, SpecErrors};
-use crate::spec::model::{Dynamics, EstimatedParameter, LinearTime, ProcessNoise};
-use crate::spec::raw::{Entries, Field, FormulaText, RawDynamics, RawLinear, RawProcessNoise};
-use crate::spec::reader::child;
+use crate::model::{Dynamics, EstimatedParameter, LinearTime, ProcessNoise};
+use crate::request::error::{SpecErrorKind, SpecErrors};
+use crate::request::raw::{Entries, Field, FormulaText, RawDynamics, RawLinear, RawProcessNoise};
+use crate::request::reader::child;
 use nalgebra::{DMatrix, DVector};
 
 /// Check `model.dynamics`. `dims` is `(n, nu)`: all states (estimated parameters
@@ -351,7 +351,7 @@ mod tests {
     use super::super::common::faults;
     use super::super::model::check_model;
     use crate::config::Limits;
-    use crate::spec::model::{Dynamics, LinearTime, Model, ProcessNoise};
+    use crate::model::{Dynamics, LinearTime, Model, ProcessNoise};
     use serde_json::{json, Value};
 
     /// A water tower: level and inflow, the level read by a gauge, the outflow
@@ -365,7 +365,7 @@ mod tests {
         })
     }
 
-    fn check(v: &Value) -> Result<Model, Vec<crate::spec::error::SpecError>> {
+    fn check(v: &Value) -> Result<Model, Vec<crate::request::error::SpecError>> {
         check_model(v, "/model", &Limits::default())
     }
 

@@ -2,7 +2,7 @@
 //! with its own rules (the model as a tree with pointers, readings on the fast path).
 
 use crate::problem::{FieldError, Problem, ProblemKind};
-use crate::spec::reading::clean_message;
+use crate::request::reading::clean_message;
 use serde::Deserialize;
 use serde_json::value::RawValue;
 use serde_json::Value;

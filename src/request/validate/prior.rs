@@ -5,12 +5,12 @@ use super::common::{
     check_covariance, matrix, non_negative, number, optional, present, required, time, typed,
     unknown_fields, whole,
 };
+use crate::model::TimeMode;
+use crate::model::{FilterConfig, Method, Model, Prior};
 use crate::problem::FieldError;
-use crate::spec::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::spec::model::{FilterConfig, Method, Model, Prior};
-use crate::spec::raw::{self, Entries, RawPrior};
-use crate::spec::reader::child;
-use crate::spec::time::TimeMode;
+use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
+use crate::request::raw::{self, Entries, RawPrior};
+use crate::request::reader::child;
 use nalgebra::{DMatrix, DVector};
 use serde_json::Value;
 

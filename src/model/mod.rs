@@ -1,0 +1,13 @@
+//! The checked types the filters consume: the plant model, the run settings, reading times
+//! and parsed measurement lines. They are built only by [`crate::request`], so every value
+//! here has passed validation once and the filters never re-check it.
+
+mod plant;
+mod reading;
+mod settings;
+pub mod time;
+
+pub use plant::*;
+pub use reading::Reading;
+pub use settings::*;
+pub use time::{Instant, TimeMode};

@@ -1,0 +1,139 @@
+//! The checked run settings: which filter and how it is tuned, the prior, and what the
+//! answer carries. Validated once by [`crate::request`], like the plant model.
+
+use crate::model::time::{Instant, TimeMode};
+use nalgebra::{DMatrix, DVector};
+
+/// Which filter runs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Method {
+    /// Extended Kalman filter.
+    Ekf,
+    /// Unscented Kalman filter.
+    Ukf,
+    /// Ensemble Kalman filter.
+    Enkf,
+}
+
+impl Method {
+    /// The name used in requests and metrics.
+    pub fn name(self) -> &'static str {
+        match self {
+            Method::Ekf => "ekf",
+            Method::Ukf => "ukf",
+            Method::Enkf => "enkf",
+        }
+    }
+}
+
+/// Scaled unscented transform parameters.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Unscented {
+    /// Spread of the sigma points.
+    pub alpha: f64,
+    /// Prior-knowledge weight on the centre point's covariance (2 is optimal for Gaussians).
+    pub beta: f64,
+    /// Secondary scaling.
+    pub kappa: f64,
+}
+
+/// Ensemble analysis variants.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EnsembleUpdate {
+    /// Stochastic update with perturbed observations.
+    Perturbed,
+    /// Deterministic ensemble transform (ETKF).
+    Deterministic,
+}
+
+/// Ensemble settings.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Ensemble {
+    /// Number of members.
+    pub members: usize,
+    /// Seed of every random draw.
+    pub seed: u64,
+    /// Multiplicative inflation of forecast anomalies.
+    pub inflation: f64,
+    /// Analysis variant.
+    pub update: EnsembleUpdate,
+}
+
+/// Integration settings for continuous nonlinear models.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Integration {
+    /// Largest step of the adaptive integrator.
+    pub max_step: f64,
+    /// Relative tolerance of the adaptive integrator.
+    pub rtol: f64,
+    /// Absolute tolerance of the adaptive integrator.
+    pub atol: f64,
+    /// When set, classic fixed-step RK4 with at most this step instead of adaptive steps.
+    pub fixed_step: Option<f64>,
+}
+
+/// Every filter setting of a request.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FilterConfig {
+    /// Which filter.
+    pub method: Method,
+    /// UKF parameters.
+    pub unscented: Unscented,
+    /// EnKF parameters.
+    pub ensemble: Ensemble,
+    /// Integrator settings.
+    pub integration: Integration,
+    /// Gate probability (`None` when every reading is used).
+    pub gate: Option<f64>,
+}
+
+/// The starting point of a run: a Gaussian (and for the ensemble, optionally its members).
+#[derive(Debug, Clone)]
+pub struct Prior {
+    /// Time of the prior.
+    pub t: Instant,
+    /// Whether times are seconds or timestamps.
+    pub mode: TimeMode,
+    /// Mean over all states.
+    pub mean: DVector<f64>,
+    /// Covariance over all states (symmetric PSD).
+    pub cov: DMatrix<f64>,
+    /// Ensemble members as rows (`members × n`), when resuming an ensemble run.
+    pub members: Option<DMatrix<f64>>,
+    /// Ensemble step counter (random streams are derived from seed and step).
+    pub step: u64,
+    /// Inputs held at the prior's time.
+    pub inputs: DVector<f64>,
+}
+
+/// How much covariance each estimate carries.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CovarianceOutput {
+    /// `std` and the full `covariance`.
+    Full,
+    /// `std` only.
+    Std,
+    /// Neither.
+    None,
+}
+
+/// Response options.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutputConfig {
+    /// Covariance detail.
+    pub covariance: CovarianceOutput,
+    /// Whether innovations are reported.
+    pub innovations: bool,
+    /// Extra prediction-only times.
+    pub at: Vec<Instant>,
+}
+
+impl Default for OutputConfig {
+    fn default() -> Self {
+        Self {
+            covariance: CovarianceOutput::Full,
+            innovations: true,
+            at: Vec::new(),
+        }
+    }
+}

@@ -1,0 +1,13 @@
+//! Requests: JSON in, checked types out. Parsing happens in two stages: the request
+//! envelope (`envelope`) and serde mirror types of each section (`raw`), then one
+//! validation step (`validate`) producing the checked [`crate::model`] types that the
+//! filters consume, with typed errors (`error`). Measurement lines have their own reader
+//! (`reading`), with a byte cursor for the usual line (`line_scan`).
+
+pub mod envelope;
+pub mod error;
+mod line_scan;
+pub mod raw;
+pub mod reader;
+pub mod reading;
+pub mod validate;
