@@ -227,7 +227,7 @@ fn next_steps_allocate_nothing() {
         .map(|k| {
             let t = 0.1 * k as f64;
             let (x, y) = (10.0 * (0.1 * t).cos(), 10.0 * (0.1 * t).sin());
-            let range = (x * x + y * y).sqrt();
+            let range = x.hypot(y);
             if k % 5 == 0 {
                 line(t, &[(0, 0), (1, 1)], &[range, 1.5 + 0.1 * t])
             } else {

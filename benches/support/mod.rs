@@ -19,11 +19,11 @@ use tacit::model::{FilterConfig, Model, Prior};
 use tacit::request::validate;
 
 /// Pointer passed to `Run::step` (only used in error messages).
-pub const PTR: &str = "/measurements/0";
+pub(crate) const PTR: &str = "/measurements/0";
 
 /// A checked model, filter and prior: everything `Run::new` needs.
 #[derive(Clone)]
-pub struct Setup {
+pub(crate) struct Setup {
     /// The model.
     pub model: Arc<Model>,
     /// Filter settings.
@@ -34,7 +34,7 @@ pub struct Setup {
 
 impl Setup {
     /// Validate the three request sections exactly as the service does.
-    pub fn new(model: Value, filter: Value, prior: Value) -> Self {
+    pub(crate) fn new(model: Value, filter: Value, prior: Value) -> Self {
         let limits = Limits::default();
         let model = validate::model(&model, "/model", &limits).expect("bench model is valid");
         let cfg = validate::filter(&filter, "/filter", &limits).expect("bench filter is valid");
@@ -48,26 +48,26 @@ impl Setup {
     }
 
     /// A fresh run from the prior.
-    pub fn run(&self) -> Run {
+    pub(crate) fn run(&self) -> Run {
         Run::new(self.model.clone(), self.cfg, self.prior.clone(), false).expect("run starts")
     }
 }
 
 /// Apply every reading in order; panics on a filter failure (a bench must not time errors).
-pub fn run_all(run: &mut Run, readings: &[Reading]) {
+pub(crate) fn run_all(run: &mut Run, readings: &[Reading]) {
     for r in readings {
         run.step(r, PTR).expect("step succeeds");
     }
 }
 
 /// A seeded standard normal stream (the seed is part of each bench's setup).
-pub fn normals(seed: u64) -> impl FnMut() -> f64 {
+pub(crate) fn normals(seed: u64) -> impl FnMut() -> f64 {
     let mut rng = ChaCha20Rng::seed_from_u64(seed);
     move || rng.sample(StandardNormal)
 }
 
 /// One reading line at `t` with every sensor `0..z.len()` present (scalar sensors).
-pub fn scalar_line(t: f64, z: Vec<f64>) -> Reading {
+pub(crate) fn scalar_line(t: f64, z: Vec<f64>) -> Reading {
     Reading {
         t: Instant::seconds(t),
         sensors: (0..z.len()).map(|i| (i, i)).collect(),
@@ -77,13 +77,13 @@ pub fn scalar_line(t: f64, z: Vec<f64>) -> Reading {
 }
 
 /// Reading times `k · dt` for `k = 1..=steps`, computed as a client would send them.
-pub fn time(k: usize, dt: f64) -> f64 {
+pub(crate) fn time(k: usize, dt: f64) -> f64 {
     k as f64 * dt
 }
 
 /// Conveyor carriage on one axis: constant velocity, position read by a laser gauge.
 /// `time` is `"discrete"` (F given, fixed `dt`) or `"continuous"` (A given, Van Loan).
-pub fn cv1(method: &str, time: &str, dt: f64) -> Setup {
+pub(crate) fn cv1(method: &str, time: &str, dt: f64) -> Setup {
     let dynamics = if time == "discrete" {
         json!({"linear": {"time": "discrete", "dt": dt, "F": [[1.0, dt], [0.0, 1.0]]}})
     } else {
@@ -106,7 +106,7 @@ pub fn cv1(method: &str, time: &str, dt: f64) -> Setup {
 }
 
 /// Readings of the carriage moving at 0.7 m/s, seeded.
-pub fn cv1_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
+pub(crate) fn cv1_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
     let mut e = normals(seed);
     (1..=steps)
         .map(|k| {
@@ -117,7 +117,7 @@ pub fn cv1_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
 }
 
 /// Gantry head in 3-D: constant velocity per axis, each position read by its own encoder.
-pub fn cv3(method: &str, time: &str, dt: f64) -> Setup {
+pub(crate) fn cv3(method: &str, time: &str, dt: f64) -> Setup {
     let states = ["px", "py", "pz", "vx", "vy", "vz"];
     let mut f = vec![vec![0.0; 6]; 6];
     for i in 0..6 {
@@ -159,7 +159,7 @@ pub fn cv3(method: &str, time: &str, dt: f64) -> Setup {
 }
 
 /// Readings of the gantry head moving at (0.7, −0.3, 0.1) m/s, seeded.
-pub fn cv3_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
+pub(crate) fn cv3_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
     let mut e = normals(seed);
     (1..=steps)
         .map(|k| {
@@ -179,7 +179,7 @@ pub fn cv3_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
 /// Survey cart in the plane: state [x, y, heading, speed], discrete `next` map
 /// x⁺ = x + dt·speed·cos(heading), y⁺ = y + dt·speed·sin(heading), heading and speed held
 /// (random walk), read by a range beacon at the origin, sqrt(x² + y²).
-pub fn cart(method: &str) -> Setup {
+pub(crate) fn cart(method: &str) -> Setup {
     Setup::new(
         json!({
             "states": ["x", "y", "heading", "speed"],
@@ -200,7 +200,7 @@ pub fn cart(method: &str) -> Setup {
 }
 
 /// Range readings of the cart circling the beacon (truth: speed 1, turning 0.1 rad/s), seeded.
-pub fn cart_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
+pub(crate) fn cart_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
     let mut e = normals(seed);
     let (mut x, mut y, mut h) = (10.0f64, 0.0f64, 1.5f64);
     (1..=steps)
@@ -208,14 +208,14 @@ pub fn cart_readings(steps: usize, dt: f64, seed: u64) -> Vec<Reading> {
             x += dt * h.cos();
             y += dt * h.sin();
             h += 0.1 * dt;
-            scalar_line(time(k, dt), vec![(x * x + y * y).sqrt() + 0.1 * e()])
+            scalar_line(time(k, dt), vec![x.hypot(y) + 0.1 * e()])
         })
         .collect()
 }
 
 /// Lorenz-96 (Lorenz 1996) with 40 variables and F = 8, every variable read with std 1;
 /// ETKF with 40 members and inflation 1.05, RK4 with fixed step `h`.
-pub fn lorenz96(h: f64) -> Setup {
+pub(crate) fn lorenz96(h: f64) -> Setup {
     let n = 40;
     let names: Vec<String> = (0..n).map(|i| format!("x{i}")).collect();
     let mut rates = serde_json::Map::new();
@@ -248,7 +248,7 @@ fn l96_rate(x: &[f64], dx: &mut [f64]) {
 }
 
 /// Readings of a Lorenz-96 truth (RK4, step 0.01, from the prior mean) every 0.05, seeded.
-pub fn lorenz96_readings(cycles: usize, seed: u64) -> Vec<Reading> {
+pub(crate) fn lorenz96_readings(cycles: usize, seed: u64) -> Vec<Reading> {
     let n = 40;
     let mut e = normals(seed);
     let mut x: Vec<f64> = (0..n).map(|i| if i == 19 { 8.5 } else { 8.0 }).collect();
@@ -284,7 +284,13 @@ pub fn lorenz96_readings(cycles: usize, seed: u64) -> Vec<Reading> {
 
 /// Time whole runs over `readings` (a fresh run per iteration, built outside the timing),
 /// reporting readings per second under `group/name`.
-pub fn timed(c: &mut Criterion, group: &str, name: &str, setup: &Setup, readings: &[Reading]) {
+pub(crate) fn timed(
+    c: &mut Criterion,
+    group: &str,
+    name: &str,
+    setup: &Setup,
+    readings: &[Reading],
+) {
     let mut g = c.benchmark_group(group);
     g.throughput(Throughput::Elements(readings.len() as u64));
     g.bench_function(name, |b| {

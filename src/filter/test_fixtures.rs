@@ -6,7 +6,7 @@ use nalgebra::{DMatrix, DVector};
 use serde_json::{json, Value};
 
 /// A three-state oscillator (a' = b, b' = −a, c constant) read by `sensors`.
-pub fn three_states(sensors: Value) -> Model {
+pub(super) fn three_states(sensors: Value) -> Model {
     crate::request::validate::model(
         &json!({"states": ["a", "b", "c"], "dynamics": {"rates": {"a": "b", "b": "-a"}},
                 "sensors": sensors}),
@@ -17,13 +17,13 @@ pub fn three_states(sensors: Value) -> Model {
 }
 
 /// Two sensors, one of them a nonlinear pair: a + c, then (b², a).
-pub fn two_sensors() -> Value {
+pub(super) fn two_sensors() -> Value {
     json!({"s1": {"measures": "a + c", "std": 0.3},
            "s2": {"measures": ["b*b", "a"], "std": [0.5, 0.2]}})
 }
 
 /// Adaptive integration at its defaults.
-pub fn integration() -> Integration {
+pub(super) fn integration() -> Integration {
     Integration {
         max_step: f64::INFINITY,
         rtol: 1e-6,
@@ -33,7 +33,7 @@ pub fn integration() -> Integration {
 }
 
 /// The prior mean (1, 0.5, −0.2) with independent variances (0.4, 0.3, 0.2).
-pub fn prior() -> (DVector<f64>, DMatrix<f64>) {
+pub(super) fn prior() -> (DVector<f64>, DMatrix<f64>) {
     (
         DVector::from_vec(vec![1.0, 0.5, -0.2]),
         DMatrix::from_diagonal(&DVector::from_vec(vec![0.4, 0.3, 0.2])),
@@ -41,7 +41,7 @@ pub fn prior() -> (DVector<f64>, DMatrix<f64>) {
 }
 
 /// A 25-member ETKF without inflation, seeded.
-pub fn etkf(seed: u64) -> Ensemble {
+pub(super) fn etkf(seed: u64) -> Ensemble {
     Ensemble {
         members: 25,
         seed,

@@ -23,7 +23,7 @@ use tower_http::request_id::{
 use tower_http::trace::{DefaultOnResponse, TraceLayer};
 
 /// The header carrying each request's id (taken from the client or generated).
-pub const REQUEST_ID: &str = "x-request-id";
+pub(super) const REQUEST_ID: &str = "x-request-id";
 
 /// The whole service: routes from [`routes::ALL`] with keys on `/v1/*`, then [`layered`].
 pub fn app(state: AppState) -> Router {

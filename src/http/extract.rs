@@ -31,7 +31,7 @@ impl FromRequest<AppState> for JsonBody {
 }
 
 /// The media type of a request (`type/subtype`, lower case, parameters dropped).
-pub fn media_type(headers: &HeaderMap) -> Option<String> {
+pub(super) fn media_type(headers: &HeaderMap) -> Option<String> {
     let v = headers.get(header::CONTENT_TYPE)?.to_str().ok()?;
     let essence = v.split(';').next().unwrap_or("").trim();
     Some(essence.to_ascii_lowercase())
@@ -39,7 +39,7 @@ pub fn media_type(headers: &HeaderMap) -> Option<String> {
 
 /// 415 unless the request's media type is one of `accepted`; `expected` names the
 /// preferred one in the message.
-pub fn require_media_type(
+pub(super) fn require_media_type(
     headers: &HeaderMap,
     accepted: &[&str],
     expected: &str,
@@ -58,7 +58,7 @@ pub fn require_media_type(
 }
 
 /// The declared `Content-Length`, if present and readable.
-pub fn content_length(headers: &HeaderMap) -> Option<u64> {
+pub(super) fn content_length(headers: &HeaderMap) -> Option<u64> {
     headers
         .get(header::CONTENT_LENGTH)?
         .to_str()
@@ -68,7 +68,7 @@ pub fn content_length(headers: &HeaderMap) -> Option<u64> {
 }
 
 /// The 413 for a body over `limit` bytes.
-pub fn too_large(limit: usize) -> Problem {
+pub(super) fn too_large(limit: usize) -> Problem {
     Problem::new(
         ProblemKind::TooLarge,
         format!("the request body exceeds the limit of {limit} bytes"),
@@ -78,7 +78,7 @@ pub fn too_large(limit: usize) -> Problem {
 /// Read a whole body, refusing it as soon as it passes `limit` (a declared length over
 /// the limit is refused before reading anything). The buffer is reserved once from the
 /// declared length, so a large batch is not copied while it grows.
-pub async fn read_limited(
+pub(super) async fn read_limited(
     body: Body,
     limit: usize,
     declared: Option<u64>,

@@ -156,7 +156,7 @@ where
 }
 
 /// A `200 application/json` response around bytes the job wrote.
-pub fn json_response(body: Vec<u8>) -> Response {
+pub(super) fn json_response(body: Vec<u8>) -> Response {
     let mut res = body.into_response();
     res.headers_mut().insert(
         header::CONTENT_TYPE,
@@ -167,7 +167,7 @@ pub fn json_response(body: Vec<u8>) -> Response {
 
 /// A `200 application/json` response sending the pieces one after the other, with their
 /// total length declared (the run has finished: nothing here can fail any more).
-pub fn pieces_response(pieces: Pieces) -> Response {
+pub(super) fn pieces_response(pieces: Pieces) -> Response {
     if pieces.parts.len() == 1 {
         return json_response(pieces.into_done().body);
     }
@@ -187,7 +187,7 @@ pub fn pieces_response(pieces: Pieces) -> Response {
 }
 
 /// The text of a panic payload, for the log only.
-pub fn panic_message(payload: &(dyn Any + Send)) -> String {
+pub(super) fn panic_message(payload: &(dyn Any + Send)) -> String {
     if let Some(s) = payload.downcast_ref::<&str>() {
         (*s).to_string()
     } else if let Some(s) = payload.downcast_ref::<String>() {

@@ -18,15 +18,15 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 /// A job is sent to the lane only if its request body is at most this many bytes.
-pub const SMALL_BODY: usize = 64 * 1024;
+pub(super) const SMALL_BODY: usize = 64 * 1024;
 
 /// A lane thread on one job for longer than this counts as stuck.
-pub const STUCK_AFTER: Duration = Duration::from_millis(5);
+pub(super) const STUCK_AFTER: Duration = Duration::from_millis(5);
 
 type Task = Box<dyn FnOnce() + Send + 'static>;
 
 /// What a lane job hands back: its value, or the text of its panic.
-pub type Outcome<T> = Result<T, Box<dyn std::any::Any + Send + 'static>>;
+pub(super) type Outcome<T> = Result<T, Box<dyn std::any::Any + Send + 'static>>;
 
 /// The lane: a queue and the threads that drain it. Dropping it (with the app state)
 /// closes the queue, and the threads end once they have run what was queued.

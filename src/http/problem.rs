@@ -41,7 +41,7 @@ pub fn problem_response(p: &Problem) -> Response {
 }
 
 /// The 503 for a full server, with `Retry-After`.
-pub fn overloaded(retry_after_secs: u64) -> Response {
+pub(super) fn overloaded(retry_after_secs: u64) -> Response {
     let p = Problem::new(
         ProblemKind::Overloaded,
         "too many requests are running; retry later",
@@ -53,7 +53,7 @@ pub fn overloaded(retry_after_secs: u64) -> Response {
 }
 
 /// The generic 500: the client learns nothing about internals, the log has the rest.
-pub fn internal() -> Problem {
+pub(super) fn internal() -> Problem {
     Problem::new(
         ProblemKind::Internal,
         "an internal error occurred; it has been logged with this request's id",
@@ -62,7 +62,7 @@ pub fn internal() -> Problem {
 
 /// The problem as the client may see it: a 500 from the core is a bug whose words go to
 /// the log (inside the request's span, so with its id), replaced by the generic detail.
-pub fn public(p: Problem) -> Problem {
+pub(super) fn public(p: Problem) -> Problem {
     if p.status == 500 {
         tracing::error!(detail = %p.detail, "internal error");
         internal()

@@ -51,7 +51,7 @@ mod indexmap_like {
     use serde::{Serialize, Serializer};
 
     /// Sensor name → observability, serialised in model order.
-    pub struct Ordered(pub Vec<(String, Observability)>);
+    pub(super) struct Ordered(pub Vec<(String, Observability)>);
 
     impl Serialize for Ordered {
         fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
@@ -77,7 +77,7 @@ mod indexmap_like {
 }
 
 /// `POST /v1/check`.
-pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
+pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
     let env = envelope::envelope(body)?;
     let model_v = envelope::section(env.model, "model")?;
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;

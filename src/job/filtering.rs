@@ -49,10 +49,10 @@ fn measurement_list<'a>(env: &Envelope<'a>, limits: &Limits) -> Result<Vec<&'a s
 /// another while it is being filtered, so its time is about the longest of the three
 /// rather than their sum. Below it, threads and their hand-overs would cost more than
 /// they save.
-pub const OVERLAP_MIN_LINES: usize = 4096;
+pub(super) const OVERLAP_MIN_LINES: usize = 4096;
 
 /// `POST /v1/estimate` and, with `smooth`, `POST /v1/smooth`.
-pub fn run_batch(
+pub(super) fn run_batch(
     body: &[u8],
     limits: &Limits,
     cancel: &AtomicBool,

@@ -12,7 +12,7 @@ use std::sync::Arc;
 use std::time::Instant as Clock;
 
 /// Everything a filtering request needs before the first reading.
-pub struct Setup {
+pub(super) struct Setup {
     /// The checked model.
     pub model: Arc<Model>,
     /// Filter settings.
@@ -24,7 +24,7 @@ pub struct Setup {
 }
 
 /// Parse `model`, `filter`, `prior` and `output`, collecting every field error.
-pub fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Problem> {
+pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Problem> {
     let [model_v, filter_v, prior_v] = envelope::sections([
         (env.model, "model"),
         (env.filter, "filter"),
@@ -62,14 +62,14 @@ pub fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Problem> {
 }
 
 /// Checks the per-request deadline and the cancel flag every so many steps.
-pub struct Guard<'a> {
+pub(super) struct Guard<'a> {
     cancel: &'a AtomicBool,
     deadline: Option<Clock>,
 }
 
 impl<'a> Guard<'a> {
     /// A guard for `limits.deadline` from now.
-    pub fn new(limits: &Limits, cancel: &'a AtomicBool) -> Self {
+    pub(super) fn new(limits: &Limits, cancel: &'a AtomicBool) -> Self {
         Self {
             cancel,
             deadline: limits.deadline.map(|d| Clock::now() + d),
@@ -77,12 +77,12 @@ impl<'a> Guard<'a> {
     }
 
     /// When the request's compute budget runs out, if it has one.
-    pub fn deadline(&self) -> Option<Clock> {
+    pub(super) fn deadline(&self) -> Option<Clock> {
         self.deadline
     }
 
     /// Err when cancelled or past the deadline (checked on every 256th step).
-    pub fn check(&self, step: usize) -> Result<(), Problem> {
+    pub(super) fn check(&self, step: usize) -> Result<(), Problem> {
         if step % 256 != 0 {
             return Ok(());
         }

@@ -189,7 +189,7 @@ fn input_schedule(
 }
 
 /// `POST /v1/simulate`.
-pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
     let env = envelope::envelope(body)?;
     if env.readings.is_some() {
         return Err(Problem::field(

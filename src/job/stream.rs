@@ -14,7 +14,7 @@ use crate::request::envelope;
 use crate::request::reading::ReadingParser;
 
 /// A stream in progress (see [`crate::job::StreamSession`]).
-pub struct Stream {
+pub(super) struct Stream {
     run: Run,
     writer: Writer,
     reading: Reading,
@@ -23,7 +23,7 @@ pub struct Stream {
 
 impl Stream {
     /// Parse the header line `{model, filter, prior, output?}`.
-    pub fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
+    pub(super) fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
         let env = envelope::envelope(header)?;
         if env.measurements.is_some() {
             return Err(Problem::field("/measurements", "the stream's first line holds model, filter, prior and output; readings follow one per line"));
@@ -51,7 +51,12 @@ impl Stream {
     }
 
     /// One measurement line → one estimate line.
-    pub fn push(&mut self, line: &[u8], line_no: u64, out: &mut Vec<u8>) -> Result<(), Problem> {
+    pub(super) fn push(
+        &mut self,
+        line: &[u8],
+        line_no: u64,
+        out: &mut Vec<u8>,
+    ) -> Result<(), Problem> {
         let text = std::str::from_utf8(line).map_err(|_| {
             Problem::new(
                 ProblemKind::MalformedJson,
@@ -84,7 +89,7 @@ impl Stream {
     }
 
     /// The last line `{posterior, summary}`.
-    pub fn finish(self, out: &mut Vec<u8>) -> RunStats {
+    pub(super) fn finish(self, out: &mut Vec<u8>) -> RunStats {
         out.push(b'{');
         let est = self.run.estimator();
         self.writer.posterior(

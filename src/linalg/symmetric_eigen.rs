@@ -38,6 +38,7 @@ fn squares_are_safe(a: f64, b: f64) -> bool {
 /// `hypot`, and as accurate to within an ulp, which the QL iteration does not notice),
 /// `hypot` outside that range.
 #[inline(always)]
+#[allow(clippy::imprecise_flops)] // the plain formula is chosen on purpose, see above
 fn pythag(a: f64, b: f64) -> f64 {
     if squares_are_safe(a, b) {
         (a * a + b * b).sqrt()

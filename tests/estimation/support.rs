@@ -8,21 +8,21 @@ use tacit::problem::Problem;
 static NOT_CANCELLED: AtomicBool = AtomicBool::new(false);
 
 /// Run `/v1/estimate` in-process.
-pub fn estimate(body: &Value) -> Result<Value, Problem> {
+pub(super) fn estimate(body: &Value) -> Result<Value, Problem> {
     let bytes = serde_json::to_vec(body).unwrap();
     tacit::job::estimate(&bytes, &Limits::default(), &NOT_CANCELLED)
         .map(|d| serde_json::from_slice(&d.body).unwrap())
 }
 
 /// Run `/v1/smooth` in-process.
-pub fn smooth(body: &Value) -> Result<Value, Problem> {
+pub(super) fn smooth(body: &Value) -> Result<Value, Problem> {
     let bytes = serde_json::to_vec(body).unwrap();
     tacit::job::smooth(&bytes, &Limits::default(), &NOT_CANCELLED)
         .map(|d| serde_json::from_slice(&d.body).unwrap())
 }
 
 /// Run `/v1/simulate` in-process.
-pub fn simulate(body: &Value) -> Value {
+pub(super) fn simulate(body: &Value) -> Value {
     let bytes = serde_json::to_vec(body).unwrap();
     let d = tacit::job::simulate(&bytes, &Limits::default(), &NOT_CANCELLED)
         .unwrap_or_else(|p| panic!("simulate failed: {p}"));
@@ -30,25 +30,25 @@ pub fn simulate(body: &Value) -> Value {
 }
 
 /// Run `/v1/check` in-process.
-pub fn check(body: &Value) -> Result<Value, Problem> {
+pub(super) fn check(body: &Value) -> Result<Value, Problem> {
     let bytes = serde_json::to_vec(body).unwrap();
     tacit::job::check(&bytes, &Limits::default()).map(|d| serde_json::from_slice(&d.body).unwrap())
 }
 
 /// Estimate, panicking with the problem on failure.
-pub fn ok(body: &Value) -> Value {
+pub(super) fn ok(body: &Value) -> Value {
     estimate(body).unwrap_or_else(|p| panic!("estimate failed: {p}"))
 }
 
 /// `v[key]` as f64.
-pub fn f(v: &Value, key: &str) -> f64 {
+pub(super) fn f(v: &Value, key: &str) -> f64 {
     v[key]
         .as_f64()
         .unwrap_or_else(|| panic!("{key} is not a number in {v}"))
 }
 
 /// A covariance matrix from an estimate.
-pub fn matrix(v: &Value) -> Vec<Vec<f64>> {
+pub(super) fn matrix(v: &Value) -> Vec<Vec<f64>> {
     v.as_array()
         .unwrap()
         .iter()
@@ -63,6 +63,6 @@ pub fn matrix(v: &Value) -> Vec<Vec<f64>> {
 }
 
 /// Relative difference scaled by `max(|a|, |b|, floor)`.
-pub fn rel(a: f64, b: f64, floor: f64) -> f64 {
+pub(super) fn rel(a: f64, b: f64, floor: f64) -> f64 {
     (a - b).abs() / a.abs().max(b.abs()).max(floor)
 }

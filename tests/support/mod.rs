@@ -9,7 +9,7 @@ use tokio::sync::oneshot;
 use tokio::task::JoinHandle;
 
 /// A server running in the test's runtime; stops when dropped.
-pub struct Server {
+pub(crate) struct Server {
     /// Where it listens.
     pub addr: SocketAddr,
     /// `http://127.0.0.1:PORT`.
@@ -24,12 +24,12 @@ pub struct Server {
 
 impl Server {
     /// The full URL of `path`.
-    pub fn url(&self, path: &str) -> String {
+    pub(crate) fn url(&self, path: &str) -> String {
         format!("{}{}", self.base, path)
     }
 
     /// Send the shutdown signal and wait for the server loop to return.
-    pub async fn shutdown(mut self) -> std::io::Result<()> {
+    pub(crate) async fn shutdown(mut self) -> std::io::Result<()> {
         if let Some(s) = self.stop.take() {
             let _ = s.send(());
         }
@@ -40,7 +40,7 @@ impl Server {
     }
 
     /// Send the shutdown signal without waiting.
-    pub fn signal_shutdown(&mut self) {
+    pub(crate) fn signal_shutdown(&mut self) {
         if let Some(s) = self.stop.take() {
             let _ = s.send(());
         }
@@ -56,7 +56,7 @@ impl Drop for Server {
 }
 
 /// Start the real server (same `serve` as `tacit serve`) with `config`.
-pub async fn start(config: ServerConfig) -> Server {
+pub(crate) async fn start(config: ServerConfig) -> Server {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
         .await
         .expect("bind loopback");
@@ -77,12 +77,12 @@ pub async fn start(config: ServerConfig) -> Server {
 }
 
 /// Start with the default configuration.
-pub async fn start_default() -> Server {
+pub(crate) async fn start_default() -> Server {
     start(ServerConfig::default()).await
 }
 
 /// Serve an arbitrary router on an ephemeral port (for routers built in tests).
-pub async fn serve_router(router: axum::Router) -> String {
+pub(crate) async fn serve_router(router: axum::Router) -> String {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
         .await
         .expect("bind loopback");
@@ -93,7 +93,7 @@ pub async fn serve_router(router: axum::Router) -> String {
 
 /// The parts of a problem answer every test looks at.
 #[derive(Debug)]
-pub struct Answer {
+pub(crate) struct Answer {
     pub status: u16,
     pub content_type: String,
     pub headers: reqwest::header::HeaderMap,
@@ -102,7 +102,7 @@ pub struct Answer {
 }
 
 /// Read a response whole, parsing JSON when it is JSON.
-pub async fn answer(res: reqwest::Response) -> Answer {
+pub(crate) async fn answer(res: reqwest::Response) -> Answer {
     let status = res.status().as_u16();
     let headers = res.headers().clone();
     let content_type = headers
@@ -122,7 +122,7 @@ pub async fn answer(res: reqwest::Response) -> Answer {
 }
 
 /// POST `body` to `path` with the given content type and read the answer whole.
-pub async fn post(
+pub(crate) async fn post(
     s: &Server,
     path: &str,
     content_type: &str,
@@ -141,7 +141,7 @@ pub async fn post(
 }
 
 /// Assert an RFC 9457 answer with `status`, checking the shape every problem has.
-pub fn assert_problem(a: &Answer, status: u16) {
+pub(crate) fn assert_problem(a: &Answer, status: u16) {
     assert_eq!(a.status, status, "status of {}", a.text);
     assert_eq!(a.content_type, "application/problem+json", "{}", a.text);
     assert_eq!(a.body["status"], status, "{}", a.text);
@@ -165,7 +165,7 @@ pub fn assert_problem(a: &Answer, status: u16) {
 }
 
 /// Assert that the problem lists an error at exactly `pointer`.
-pub fn assert_pointer(a: &Answer, pointer: &str) {
+pub(crate) fn assert_pointer(a: &Answer, pointer: &str) {
     let errors = a.body["errors"].as_array().cloned().unwrap_or_default();
     assert!(
         errors.iter().any(|e| e["pointer"] == pointer),
@@ -175,7 +175,7 @@ pub fn assert_pointer(a: &Answer, pointer: &str) {
 }
 
 /// POST a JSON value to `path` and read the answer whole.
-pub async fn post_json(s: &Server, path: &str, body: &serde_json::Value) -> Answer {
+pub(crate) async fn post_json(s: &Server, path: &str, body: &serde_json::Value) -> Answer {
     post(
         s,
         path,
@@ -186,6 +186,6 @@ pub async fn post_json(s: &Server, path: &str, body: &serde_json::Value) -> Answ
 }
 
 /// POST raw bytes as `application/json` (for bodies that are not JSON).
-pub async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Answer {
+pub(crate) async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Answer {
     post(s, path, "application/json", body).await
 }

@@ -73,7 +73,7 @@ pub(super) struct Workspace {
 
 impl Workspace {
     /// Buffers for `members` members, `n` states and `m` reading rows over all sensors.
-    pub fn new(members: usize, n: usize, m: usize) -> Self {
+    pub(super) fn new(members: usize, n: usize, m: usize) -> Self {
         let nn = members;
         Self {
             member_weights: vec![1.0 / nn as f64; nn],

@@ -11,7 +11,11 @@ use axum::middleware::Next;
 use axum::response::Response;
 
 /// Middleware: 401 problem+json unless the request carries an accepted bearer key.
-pub async fn require_key(State(state): State<AppState>, req: Request, next: Next) -> Response {
+pub(crate) async fn require_key(
+    State(state): State<AppState>,
+    req: Request,
+    next: Next,
+) -> Response {
     let keys = state.keys();
     if keys.is_empty() {
         return next.run(req).await;

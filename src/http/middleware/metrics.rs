@@ -8,7 +8,7 @@ use std::time::Instant;
 
 /// Middleware: time each request and count it under its route template (not its raw
 /// path, which would let clients create unbounded label values).
-pub async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
+pub(crate) async fn track(State(state): State<AppState>, req: Request, next: Next) -> Response {
     let route = req.extensions().get::<MatchedPath>().cloned();
     let method = req.method().clone();
     let start = Instant::now();

@@ -4,5 +4,5 @@
 mod auth;
 mod metrics;
 
-pub use auth::require_key;
-pub use metrics::track;
+pub(super) use auth::require_key;
+pub(super) use metrics::track;

@@ -11,7 +11,7 @@ use axum::routing::post;
 use axum::Router;
 
 /// `POST /v1/estimate`, `POST /v1/smooth`.
-pub const ROUTES: &[Route] = &[
+pub(super) const ROUTES: &[Route] = &[
     Route {
         method: "POST",
         path: "/v1/estimate",

@@ -11,7 +11,7 @@ use axum::routing::get;
 use axum::{Json, Router};
 
 /// `GET /healthz`, `GET /readyz`.
-pub const ROUTES: &[Route] = &[
+pub(super) const ROUTES: &[Route] = &[
     Route {
         method: "GET",
         path: "/healthz",

@@ -8,7 +8,7 @@ use axum::routing::get;
 use axum::{Json, Router};
 
 /// `GET /v1/info`.
-pub const ROUTES: &[Route] = &[Route {
+pub(super) const ROUTES: &[Route] = &[Route {
     method: "GET",
     path: "/v1/info",
     keyed: true,

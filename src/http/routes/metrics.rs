@@ -10,7 +10,7 @@ use axum::routing::get;
 use axum::Router;
 
 /// `GET /metrics`.
-pub const ROUTES: &[Route] = &[Route {
+pub(super) const ROUTES: &[Route] = &[Route {
     method: "GET",
     path: "/metrics",
     keyed: false,

@@ -12,7 +12,7 @@ use axum::routing::post;
 use axum::Router;
 
 /// `POST /v1/check`, `POST /v1/simulate`.
-pub const ROUTES: &[Route] = &[
+pub(super) const ROUTES: &[Route] = &[
     Route {
         method: "POST",
         path: "/v1/check",

@@ -11,7 +11,7 @@ use axum::routing::get;
 use axum::Router;
 
 /// `GET /openapi.json`.
-pub const ROUTES: &[Route] = &[Route {
+pub(super) const ROUTES: &[Route] = &[Route {
     method: "GET",
     path: "/openapi.json",
     keyed: false,

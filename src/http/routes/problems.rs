@@ -15,7 +15,7 @@ use axum::routing::get;
 use axum::Router;
 
 /// `GET /problems/{slug}`.
-pub const ROUTES: &[Route] = &[Route {
+pub(super) const ROUTES: &[Route] = &[Route {
     method: "GET",
     path: "/problems/{slug}",
     keyed: false,
@@ -46,7 +46,7 @@ async fn page(Path(slug): Path<String>) -> Response {
 
 /// The page of one kind. The table's texts are our own and hold no markup characters,
 /// so they go in as they are.
-pub fn html(kind: ProblemKind) -> String {
+pub(super) fn html(kind: ProblemKind) -> String {
     let a = kind.about();
     let mut others = String::new();
     for k in ProblemKind::ALL {

@@ -38,7 +38,7 @@ use tokio::sync::mpsc::error::TryRecvError;
 use tokio::sync::OwnedSemaphorePermit;
 
 /// `POST /v1/estimate/stream`.
-pub const ROUTES: &[Route] = &[Route {
+pub(super) const ROUTES: &[Route] = &[Route {
     method: "POST",
     path: "/v1/estimate/stream",
     keyed: true,
@@ -53,7 +53,7 @@ pub fn router() -> Router<AppState> {
 /// Media types accepted for the request. `application/json` is refused on purpose: a
 /// stream of lines is not one JSON document, and a client that says so has likely sent
 /// the batch body to the wrong endpoint.
-pub const NDJSON_TYPES: &[&str] = &["application/x-ndjson", "application/jsonl"];
+pub(super) const NDJSON_TYPES: &[&str] = &["application/x-ndjson", "application/jsonl"];
 
 /// Messages from the chunk reader to the worker; each carries the lines of one chunk.
 enum Input {
