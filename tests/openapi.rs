@@ -663,6 +663,16 @@ fn every_example_problem_type_is_a_documented_page() {
 async fn every_documented_problem_page_is_served() {
     use crate::support::{answer, start_default};
     let d = doc();
+    // Both ways: every kind the service can answer is documented, and every documented
+    // slug is served.
+    let documented: std::collections::BTreeSet<String> = documented_slugs(&d).into_iter().collect();
+    for kind in tacit::problem::ProblemKind::ALL {
+        assert!(
+            documented.contains(kind.slug()),
+            "problem kind {kind:?} (/problems/{}) is not in openapi/openapi.yaml",
+            kind.slug()
+        );
+    }
     let s = start_default().await;
     for slug in documented_slugs(&d) {
         let a = answer(
