@@ -2,10 +2,10 @@
 //! process noise that goes with it (`model.process_noise`).
 
 use super::common::{
-    check_covariance, formula_errors, matrix, non_negative, optional, positive_value, present,
-    required, typed, unknown_fields,
+    check_covariance, compile, matrix, non_negative, optional, positive_value, present, required,
+    typed, unknown_fields,
 };
-use crate::formula::{FormulaLimits, Program, Source};
+use crate::formula::{FormulaLimits, Program};
 use crate::model::{Dynamics, EstimatedParameter, LinearTime, ProcessNoise};
 use crate::request::error::{SpecErrorKind, SpecErrors};
 use crate::request::raw::{Entries, Field, FormulaText, RawDynamics, RawLinear, RawProcessNoise};
@@ -110,22 +110,13 @@ fn formulas_of(
             )),
         }
     }
-    let sources: Vec<Source> = texts
-        .iter()
-        .map(|(t, p)| Source {
-            text: t,
-            pointer: p.clone(),
-        })
-        .collect();
     let slot_names = if kind == "rates" { slots } else { next_slots };
-    match Program::compile(&sources, slot_names, consts, flimits) {
-        Ok(p) if kind == "rates" => Some(rates_or_affine(p, n, nu)),
-        Ok(p) => Some(Dynamics::Next(p)),
-        Err(list) => {
-            formula_errors(errs, list);
-            None
-        }
-    }
+    let p = compile(&texts, slot_names, consts, flimits, errs)?;
+    Some(if kind == "rates" {
+        rates_or_affine(p, n, nu)
+    } else {
+        Dynamics::Next(p)
+    })
 }
 
 /// Rates that are affine in states and inputs with constant coefficients (no `t`, no
