@@ -26,14 +26,11 @@ pub(super) fn dynamics(
     flimits: &FormulaLimits,
     errs: &mut SpecErrors,
 ) -> Option<Dynamics> {
-    let given: Vec<&'static str> = [
+    let given = forms_given([
         ("rates", d.rates.is_some()),
         ("next", d.next.is_some()),
         ("linear", d.linear.is_some()),
-    ]
-    .into_iter()
-    .filter_map(|(k, present)| present.then_some(k))
-    .collect();
+    ]);
     unknown_fields(&d.unknown, ptr, RawDynamics::KNOWN, &[], errs);
     if given.len() != 1 {
         errs.push(ptr, SpecErrorKind::DynamicsForm { given });
@@ -62,6 +59,15 @@ pub(super) fn dynamics(
         flimits,
         errs,
     )
+}
+
+/// The names of the alternative forms a section gives (each paired with whether it is
+/// present), for the error when it gives other than one.
+fn forms_given<const K: usize>(forms: [(&'static str, bool); K]) -> Vec<&'static str> {
+    forms
+        .into_iter()
+        .filter_map(|(k, present)| present.then_some(k))
+        .collect()
 }
 
 /// Compile `rates` or `next`: one formula per model state; a state left out keeps rate
@@ -261,14 +267,11 @@ pub(super) fn process_noise(
     if let Some(f) = f {
         let pn = typed(f, ptr, errs)?;
         unknown_fields(&pn.unknown, ptr, RawProcessNoise::KNOWN, &[], errs);
-        let given: Vec<&'static str> = [
+        let given = forms_given([
             ("density", pn.density.is_some()),
             ("density_matrix", pn.density_matrix.is_some()),
             ("covariance", pn.covariance.is_some()),
-        ]
-        .into_iter()
-        .filter_map(|(k, present)| present.then_some(k))
-        .collect();
+        ]);
         if given.len() > 1 {
             errs.push(ptr, SpecErrorKind::NoiseForms { given });
             return None;
