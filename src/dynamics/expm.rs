@@ -202,7 +202,8 @@ impl Expm {
     /// `v = A6 (h0 A6 + h1 A4 + h2 A2) + l0 A6 + l1 A4 + l2 A2 + c I`: the polynomial in
     /// `A²` that both halves of `r₁₃` share, built through `tmp` with one product.
     fn even_part(&mut self, high: [f64; 3], low: [f64; 3], c: f64) {
-        lin3(&mut self.tmp, high, &self.a6, &self.a4, &self.a2, 0.0);
+        self.tmp.fill(0.0);
+        add_lin3(&mut self.tmp, high, &self.a6, &self.a4, &self.a2, 0.0);
         mul_ab(&self.a6, &self.tmp, &mut self.v);
         add_lin3(&mut self.v, low, &self.a6, &self.a4, &self.a2, c);
     }
@@ -230,19 +231,6 @@ fn axpy(y: &mut DMatrix<f64>, alpha: f64, x: &DMatrix<f64>) {
     for (yi, xi) in y.iter_mut().zip(x.iter()) {
         *yi += alpha * xi;
     }
-}
-
-/// `out = c0 x0 + c1 x1 + c2 x2 + diag · I`.
-fn lin3(
-    out: &mut DMatrix<f64>,
-    c: [f64; 3],
-    x0: &DMatrix<f64>,
-    x1: &DMatrix<f64>,
-    x2: &DMatrix<f64>,
-    diag: f64,
-) {
-    out.fill(0.0);
-    add_lin3(out, c, x0, x1, x2, diag);
 }
 
 /// `out += c0 x0 + c1 x1 + c2 x2 + diag · I`.
