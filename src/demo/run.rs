@@ -225,23 +225,13 @@ async fn batch(
     prior: &Value,
     meas: &[Value],
 ) -> Result<Answer, String> {
-    let body = json!({
-        "model": model,
-        "filter": filter,
-        "prior": prior,
-        "measurements": meas,
-        "output": {"covariance": "full", "innovations": true}
-    });
+    let mut body = request_header(model, filter, prior);
+    body["measurements"] = json!(meas);
     let body = serde_json::to_vec(&body).map_err(|e| e.to_string())?;
     let text = post(addr, "/v1/estimate", "application/json", &body).await?;
     let mut v: Value = serde_json::from_slice(&text)
         .map_err(|e| format!("the service answered something that is not JSON: {e}"))?;
-    let states = v["states"]
-        .as_array()
-        .ok_or("the answer has no states")?
-        .iter()
-        .filter_map(|s| s.as_str().map(String::from))
-        .collect();
+    let states = strings(&v["states"]).ok_or("the answer has no states")?;
     let estimates = match v["estimates"].take() {
         Value::Array(a) => a,
         _ => return Err("the answer has no estimates".into()),
@@ -261,12 +251,7 @@ async fn stream(
     prior: &Value,
     meas: &[Value],
 ) -> Result<Answer, String> {
-    let header = json!({
-        "model": model,
-        "filter": filter,
-        "prior": prior,
-        "output": {"covariance": "full", "innovations": true}
-    });
+    let header = request_header(model, filter, prior);
     let mut body = serde_json::to_vec(&header).map_err(|e| e.to_string())?;
     for m in meas {
         body.push(b'\n');
@@ -291,14 +276,7 @@ async fn stream(
     let mut tail = tail.ok_or("the stream ended without its posterior line")?;
     // The stream's lines carry no `states`; a posterior's covariance rows follow the
     // model's states and then its estimated parameters, as the contract says.
-    let mut states: Vec<String> = model["states"]
-        .as_array()
-        .map(|a| {
-            a.iter()
-                .filter_map(|s| s.as_str().map(String::from))
-                .collect()
-        })
-        .unwrap_or_default();
+    let mut states = strings(&model["states"]).unwrap_or_default();
     if let Some(p) = model["parameters"].as_object() {
         states.extend(
             p.iter()
@@ -312,6 +290,27 @@ async fn stream(
         posterior: tail["posterior"].take(),
         summary: tail["summary"].take(),
     })
+}
+
+/// The request's `{model, filter, prior, output}`: the stream's header line, and the batch
+/// body once its measurements are added. Both ask for full covariances and innovations.
+fn request_header(model: &Value, filter: &Value, prior: &Value) -> Value {
+    json!({
+        "model": model,
+        "filter": filter,
+        "prior": prior,
+        "output": {"covariance": "full", "innovations": true}
+    })
+}
+
+/// The strings of a JSON array (names of states), or `None` when `v` is not an array.
+fn strings(v: &Value) -> Option<Vec<String>> {
+    let a = v.as_array()?;
+    Some(
+        a.iter()
+            .filter_map(|s| s.as_str().map(String::from))
+            .collect(),
+    )
 }
 
 /// POST `body` and return the response body of a 200; any other status is an error

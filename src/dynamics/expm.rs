@@ -192,43 +192,20 @@ impl Expm {
         let b = &B13;
         mul_ab(&self.a2, &self.a2, &mut self.a4);
         mul_ab(&self.a4, &self.a2, &mut self.a6);
-        // tmp = b13 A6 + b11 A4 + b9 A2; u = A6 tmp + b7 A6 + b5 A4 + b3 A2 + b1 I.
-        lin3(
-            &mut self.tmp,
-            [b[13], b[11], b[9]],
-            &self.a6,
-            &self.a4,
-            &self.a2,
-            0.0,
-        );
-        mul_ab(&self.a6, &self.tmp, &mut self.v);
-        add_lin3(
-            &mut self.v,
-            [b[7], b[5], b[3]],
-            &self.a6,
-            &self.a4,
-            &self.a2,
-            b[1],
-        );
+        // u = A (A6 (b13 A6 + b11 A4 + b9 A2) + b7 A6 + b5 A4 + b3 A2 + b1 I).
+        self.even_part([b[13], b[11], b[9]], [b[7], b[5], b[3]], b[1]);
         mul_ab(&self.a1, &self.v, &mut self.u);
         // v = A6 (b12 A6 + b10 A4 + b8 A2) + b6 A6 + b4 A4 + b2 A2 + b0 I.
-        lin3(
-            &mut self.tmp,
-            [b[12], b[10], b[8]],
-            &self.a6,
-            &self.a4,
-            &self.a2,
-            0.0,
-        );
+        self.even_part([b[12], b[10], b[8]], [b[6], b[4], b[2]], b[0]);
+    }
+
+    /// `v = A6 (h0 A6 + h1 A4 + h2 A2) + l0 A6 + l1 A4 + l2 A2 + c I`: the polynomial in
+    /// `A²` that both halves of `r₁₃` share, built through `tmp` with one product.
+    fn even_part(&mut self, high: [f64; 3], low: [f64; 3], c: f64) {
+        self.tmp.fill(0.0);
+        add_lin3(&mut self.tmp, high, &self.a6, &self.a4, &self.a2, 0.0);
         mul_ab(&self.a6, &self.tmp, &mut self.v);
-        add_lin3(
-            &mut self.v,
-            [b[6], b[4], b[2]],
-            &self.a6,
-            &self.a4,
-            &self.a2,
-            b[0],
-        );
+        add_lin3(&mut self.v, low, &self.a6, &self.a4, &self.a2, c);
     }
 
     /// `out = (V − U)⁻¹ (V + U)` from the `u` and `v` buffers.
@@ -254,19 +231,6 @@ fn axpy(y: &mut DMatrix<f64>, alpha: f64, x: &DMatrix<f64>) {
     for (yi, xi) in y.iter_mut().zip(x.iter()) {
         *yi += alpha * xi;
     }
-}
-
-/// `out = c0 x0 + c1 x1 + c2 x2 + diag · I`.
-fn lin3(
-    out: &mut DMatrix<f64>,
-    c: [f64; 3],
-    x0: &DMatrix<f64>,
-    x1: &DMatrix<f64>,
-    x2: &DMatrix<f64>,
-    diag: f64,
-) {
-    out.fill(0.0);
-    add_lin3(out, c, x0, x1, x2, diag);
 }
 
 /// `out += c0 x0 + c1 x1 + c2 x2 + diag · I`.

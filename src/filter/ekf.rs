@@ -197,29 +197,21 @@ impl Estimator for Ekf {
     ) -> Result<(), FilterError> {
         if keep_cross {
             self.prev_cov.copy_from(&self.core.cov);
-            self.core.pred.predict_gaussian(
-                model,
-                &mut self.core.mean,
-                &mut self.core.cov,
-                u,
-                t0,
-                dt,
-                Some(&mut self.phi),
-            )?;
+        }
+        self.core.pred.predict_gaussian(
+            model,
+            &mut self.core.mean,
+            &mut self.core.cov,
+            u,
+            t0,
+            dt,
+            keep_cross.then_some(&mut self.phi),
+        )?;
+        if keep_cross {
             // Cov(x_k, x_{k+1}) = P_k Φᵀ.
             mul_abt(&self.prev_cov, &self.phi, &mut self.core.cross);
-            Ok(())
-        } else {
-            self.core.pred.predict_gaussian(
-                model,
-                &mut self.core.mean,
-                &mut self.core.cov,
-                u,
-                t0,
-                dt,
-                None,
-            )
         }
+        Ok(())
     }
 
     fn update(

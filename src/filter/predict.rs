@@ -173,6 +173,19 @@ pub(crate) fn load_points(
     bvars[states + nu * points..states + (nu + 1) * points].fill(t);
 }
 
+/// `X ← X Mᵀ + 1 vᵀ`: each point (a row of `x`) through the linear map `m`, then moved
+/// by `v`; `xm` (the shape of `x`) holds the product. The one linear point step of both
+/// the continuous (`M = Φ`, `v = Γ u`) and the discrete (`M = A`, `v = B u`) models.
+fn map_points(x: &mut DMatrix<f64>, m: &DMatrix<f64>, v: &DVector<f64>, xm: &mut DMatrix<f64>) {
+    crate::linalg::mul_abt(x, m, xm);
+    let (points, n) = x.shape();
+    for i in 0..n {
+        for j in 0..points {
+            x[(j, i)] = xm[(j, i)] + v[i];
+        }
+    }
+}
+
 /// Propagates beliefs of one model; owns every buffer it needs.
 #[derive(Debug, Clone)]
 pub struct Predictor {
@@ -545,7 +558,6 @@ impl Predictor {
                 self.discretise(model, dt);
                 let d = &self.dcache[self.current];
                 // X ← X Φᵀ + 1 (Γ u)ᵀ
-                crate::linalg::mul_abt(x, &d.phi, &mut self.xm);
                 for i in 0..n {
                     let c = if self.has_offset {
                         d.gamma[(i, nu)]
@@ -554,11 +566,7 @@ impl Predictor {
                     };
                     self.vtmp[i] = (0..nu).map(|j| d.gamma[(i, j)] * u[j]).sum::<f64>() + c;
                 }
-                for i in 0..n {
-                    for j in 0..mp {
-                        x[(j, i)] = self.xm[(j, i)] + self.vtmp[i];
-                    }
-                }
+                map_points(x, &d.phi, &self.vtmp, &mut self.xm);
                 q.copy_from(&d.q);
             }
             Dynamics::Linear {
@@ -575,12 +583,7 @@ impl Predictor {
                     self.vtmp[i] = (0..nu).map(|j| b[(i, j)] * u[j]).sum();
                 }
                 for _ in 0..k {
-                    crate::linalg::mul_abt(x, matrix, &mut self.xm);
-                    for i in 0..n {
-                        for j in 0..mp {
-                            x[(j, i)] = self.xm[(j, i)] + self.vtmp[i];
-                        }
-                    }
+                    map_points(x, matrix, &self.vtmp, &mut self.xm);
                     congruence_plus(matrix, q, &qs, &mut self.tmp);
                 }
                 self.tmp2 = qs;

@@ -116,25 +116,9 @@ impl<'a> Obj<'a> {
         v
     }
 
-    /// An optional finite number.
-    pub fn number(&self, key: &str, errs: &mut Errors) -> Option<f64> {
-        self.get(key).and_then(|v| number(v, &self.at(key), errs))
-    }
-
-    /// A required finite number.
-    pub fn required_number(&self, key: &str, errs: &mut Errors) -> Option<f64> {
-        self.required(key, errs)
-            .and_then(|v| number(v, &self.at(key), errs))
-    }
-
     /// An optional object member.
     pub fn object(&self, key: &str, errs: &mut Errors) -> Option<Obj<'a>> {
         self.get(key).and_then(|v| Obj::new(v, &self.at(key), errs))
-    }
-
-    /// An optional string member.
-    pub fn string(&self, key: &str, errs: &mut Errors) -> Option<&'a str> {
-        self.get(key).and_then(|v| string(v, &self.at(key), errs))
     }
 }
 
@@ -161,28 +145,6 @@ pub fn positive(v: &Value, ptr: &str, what: &str, errs: &mut Errors) -> Option<f
     } else {
         errs.push(ptr, format!("{what} must be positive, got {x}"));
         None
-    }
-}
-
-/// A finite number that must be zero or more.
-pub fn non_negative(v: &Value, ptr: &str, what: &str, errs: &mut Errors) -> Option<f64> {
-    let x = number(v, ptr, errs)?;
-    if x >= 0.0 {
-        Some(x)
-    } else {
-        errs.push(ptr, format!("{what} must not be negative, got {x}"));
-        None
-    }
-}
-
-/// A string, or an error.
-pub fn string<'a>(v: &'a Value, ptr: &str, errs: &mut Errors) -> Option<&'a str> {
-    match v {
-        Value::String(s) => Some(s),
-        other => {
-            errs.push(ptr, format!("expected a string, found {}", kind_of(other)));
-            None
-        }
     }
 }
 
@@ -216,39 +178,6 @@ fn describe(v: &Value) -> String {
         Value::Number(n) => n.to_string(),
         other => kind_of(other).to_string(),
     }
-}
-
-/// A square matrix of finite numbers given as an array of `n` rows.
-pub fn matrix(
-    v: &Value,
-    ptr: &str,
-    rows: usize,
-    cols: usize,
-    errs: &mut Errors,
-) -> Option<Vec<f64>> {
-    let a = array(v, ptr, errs)?;
-    if a.len() != rows {
-        errs.push(ptr, format!("expected {rows} rows, found {}", a.len()));
-        return None;
-    }
-    let mut out = vec![0.0; rows * cols];
-    let before = errs.list.len();
-    for (i, row) in a.iter().enumerate() {
-        let rp = index(ptr, i);
-        let Some(r) = array(row, &rp, errs) else {
-            continue;
-        };
-        if r.len() != cols {
-            errs.push(&rp, format!("expected {cols} columns, found {}", r.len()));
-            continue;
-        }
-        for (j, x) in r.iter().enumerate() {
-            if let Some(x) = number(x, &index(&rp, j), errs) {
-                out[i * cols + j] = x;
-            }
-        }
-    }
-    (errs.list.len() == before).then_some(out)
 }
 
 /// "a, b, c" for messages listing known names.

@@ -2,7 +2,7 @@
 //! naming what was found), numbers with a sign, matrices of a given size, covariances,
 //! names, times, and refusing keys a section does not have.
 
-use crate::formula::FormulaError;
+use crate::formula::{FormulaError, FormulaLimits, Program, Source};
 use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
 use crate::model::{Instant, TimeMode};
 use crate::request::error::{SpecErrorKind, SpecErrors};
@@ -138,15 +138,7 @@ pub(super) fn required<'a, T: Expected>(
     name: &str,
     errs: &mut SpecErrors,
 ) -> Option<&'a T> {
-    if f.is_none() {
-        errs.push(
-            child(parent, name),
-            SpecErrorKind::Missing {
-                name: name.to_string(),
-            },
-        );
-    }
-    optional(f, parent, name, errs)
+    present(f, parent, name, errs).and_then(|f| typed(f, &child(parent, name), errs))
 }
 
 /// A finite number.
@@ -171,11 +163,45 @@ pub(super) fn positive_value(
     what: &'static str,
     errs: &mut SpecErrors,
 ) -> Option<f64> {
+    finite_where(
+        x,
+        ptr,
+        errs,
+        |x| x > 0.0,
+        |value| SpecErrorKind::NotPositive { what, value },
+    )
+}
+
+/// A finite number of zero or more.
+pub(super) fn non_negative_value(
+    x: f64,
+    ptr: &str,
+    what: &'static str,
+    errs: &mut SpecErrors,
+) -> Option<f64> {
+    finite_where(
+        x,
+        ptr,
+        errs,
+        |x| x >= 0.0,
+        |value| SpecErrorKind::Negative { what, value },
+    )
+}
+
+/// A finite number that passes `ok` (a sign test), else the fault recorded at `ptr`:
+/// not finite, or `fault(x)`.
+fn finite_where(
+    x: f64,
+    ptr: &str,
+    errs: &mut SpecErrors,
+    ok: impl FnOnce(f64) -> bool,
+    fault: impl FnOnce(f64) -> SpecErrorKind,
+) -> Option<f64> {
     let x = finite(x, ptr, errs)?;
-    if x > 0.0 {
+    if ok(x) {
         Some(x)
     } else {
-        errs.push(ptr, SpecErrorKind::NotPositive { what, value: x });
+        errs.push(ptr, fault(x));
         None
     }
 }
@@ -198,22 +224,6 @@ pub(super) fn non_negative(
     errs: &mut SpecErrors,
 ) -> Option<f64> {
     typed(f, ptr, errs).and_then(|&x| non_negative_value(x, ptr, what, errs))
-}
-
-/// A finite number of zero or more.
-pub(super) fn non_negative_value(
-    x: f64,
-    ptr: &str,
-    what: &'static str,
-    errs: &mut SpecErrors,
-) -> Option<f64> {
-    let x = finite(x, ptr, errs)?;
-    if x >= 0.0 {
-        Some(x)
-    } else {
-        errs.push(ptr, SpecErrorKind::Negative { what, value: x });
-        None
-    }
 }
 
 /// A whole number of zero or more, from a field.
@@ -303,6 +313,31 @@ pub(super) fn check_covariance(
     }
 }
 
+/// Compile formulas given as `(text, pointer)` over the named `slots`, recording every
+/// compiler error at its own string.
+pub(super) fn compile(
+    texts: &[(String, String)],
+    slots: &[&str],
+    consts: &[(&str, f64)],
+    limits: &FormulaLimits,
+    errs: &mut SpecErrors,
+) -> Option<Program> {
+    let sources: Vec<Source> = texts
+        .iter()
+        .map(|(t, p)| Source {
+            text: t,
+            pointer: p.clone(),
+        })
+        .collect();
+    match Program::compile(&sources, slots, consts, limits) {
+        Ok(p) => Some(p),
+        Err(list) => {
+            formula_errors(errs, list);
+            None
+        }
+    }
+}
+
 /// Record the compiler's errors of a set of formulas, each at its own string.
 pub(super) fn formula_errors(errs: &mut SpecErrors, list: Vec<FormulaError>) {
     for e in list {
@@ -372,6 +407,14 @@ pub(super) fn faults<T: std::fmt::Debug>(
     r.expect_err("the check should fail")
         .into_iter()
         .map(|e| (e.pointer, e.kind.to_string()))
+        .collect()
+}
+
+/// Expected `(pointer, message)` pairs as owned strings, to compare with [`faults`].
+#[cfg(test)]
+pub(super) fn pairs(want: &[(&str, &str)]) -> Vec<(String, String)> {
+    want.iter()
+        .map(|(a, b)| (a.to_string(), b.to_string()))
         .collect()
 }
 

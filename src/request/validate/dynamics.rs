@@ -2,10 +2,10 @@
 //! process noise that goes with it (`model.process_noise`).
 
 use super::common::{
-    check_covariance, formula_errors, matrix, non_negative, optional, positive_value, present,
-    required, typed, unknown_fields,
+    check_covariance, compile, matrix, non_negative, optional, positive_value, present, required,
+    typed, unknown_fields,
 };
-use crate::formula::{FormulaLimits, Program, Source};
+use crate::formula::{FormulaLimits, Program};
 use crate::model::{Dynamics, EstimatedParameter, LinearTime, ProcessNoise};
 use crate::request::error::{SpecErrorKind, SpecErrors};
 use crate::request::raw::{Entries, Field, FormulaText, RawDynamics, RawLinear, RawProcessNoise};
@@ -26,14 +26,11 @@ pub(super) fn dynamics(
     flimits: &FormulaLimits,
     errs: &mut SpecErrors,
 ) -> Option<Dynamics> {
-    let given: Vec<&'static str> = [
+    let given = forms_given([
         ("rates", d.rates.is_some()),
         ("next", d.next.is_some()),
         ("linear", d.linear.is_some()),
-    ]
-    .into_iter()
-    .filter_map(|(k, present)| present.then_some(k))
-    .collect();
+    ]);
     unknown_fields(&d.unknown, ptr, RawDynamics::KNOWN, &[], errs);
     if given.len() != 1 {
         errs.push(ptr, SpecErrorKind::DynamicsForm { given });
@@ -62,6 +59,15 @@ pub(super) fn dynamics(
         flimits,
         errs,
     )
+}
+
+/// The names of the alternative forms a section gives (each paired with whether it is
+/// present), for the error when it gives other than one.
+fn forms_given<const K: usize>(forms: [(&'static str, bool); K]) -> Vec<&'static str> {
+    forms
+        .into_iter()
+        .filter_map(|(k, present)| present.then_some(k))
+        .collect()
 }
 
 /// Compile `rates` or `next`: one formula per model state; a state left out keeps rate
@@ -110,22 +116,13 @@ fn formulas_of(
             )),
         }
     }
-    let sources: Vec<Source> = texts
-        .iter()
-        .map(|(t, p)| Source {
-            text: t,
-            pointer: p.clone(),
-        })
-        .collect();
     let slot_names = if kind == "rates" { slots } else { next_slots };
-    match Program::compile(&sources, slot_names, consts, flimits) {
-        Ok(p) if kind == "rates" => Some(rates_or_affine(p, n, nu)),
-        Ok(p) => Some(Dynamics::Next(p)),
-        Err(list) => {
-            formula_errors(errs, list);
-            None
-        }
-    }
+    let p = compile(&texts, slot_names, consts, flimits, errs)?;
+    Some(if kind == "rates" {
+        rates_or_affine(p, n, nu)
+    } else {
+        Dynamics::Next(p)
+    })
 }
 
 /// Rates that are affine in states and inputs with constant coefficients (no `t`, no
@@ -270,14 +267,11 @@ pub(super) fn process_noise(
     if let Some(f) = f {
         let pn = typed(f, ptr, errs)?;
         unknown_fields(&pn.unknown, ptr, RawProcessNoise::KNOWN, &[], errs);
-        let given: Vec<&'static str> = [
+        let given = forms_given([
             ("density", pn.density.is_some()),
             ("density_matrix", pn.density_matrix.is_some()),
             ("covariance", pn.covariance.is_some()),
-        ]
-        .into_iter()
-        .filter_map(|(k, present)| present.then_some(k))
-        .collect();
+        ]);
         if given.len() > 1 {
             errs.push(ptr, SpecErrorKind::NoiseForms { given });
             return None;

@@ -217,7 +217,7 @@ fn gate(g: &RawGate, ptr: &str, errs: &mut SpecErrors) -> Option<f64> {
 
 #[cfg(test)]
 mod tests {
-    use super::super::common::faults;
+    use super::super::common::{faults, pairs};
     use super::*;
     use serde_json::json;
 
@@ -267,11 +267,7 @@ mod tests {
             ("/filter/integration/atol", "atol must be positive, got 0"),
             ("/filter/gate/probability", "probability must lie strictly between 0 and 1, got 1.5"),
         ];
-        let want: Vec<(String, String)> = want
-            .iter()
-            .map(|(a, b)| (a.to_string(), b.to_string()))
-            .collect();
-        assert_eq!(got, want);
+        assert_eq!(got, pairs(&want));
     }
 
     #[test]

@@ -78,7 +78,7 @@ fn checked(o: &RawOutput, ptr: &str, mode: TimeMode, errs: &mut SpecErrors) -> O
 
 #[cfg(test)]
 mod tests {
-    use super::super::common::faults;
+    use super::super::common::{faults, pairs};
     use super::*;
     use crate::model::Instant;
     use serde_json::json;
@@ -127,11 +127,7 @@ mod tests {
                 "one request uses one time form: all numbers (seconds) or all RFC 3339 strings",
             ),
         ];
-        let want: Vec<(String, String)> = want
-            .iter()
-            .map(|(a, b)| (a.to_string(), b.to_string()))
-            .collect();
-        assert_eq!(got, want);
+        assert_eq!(got, pairs(&want));
         let arr = json!([1]);
         assert_eq!(
             faults(check_output(Some(&arr), "/output", TimeMode::Seconds)),

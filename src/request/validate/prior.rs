@@ -228,7 +228,7 @@ fn spread(
 
 #[cfg(test)]
 mod tests {
-    use super::super::common::faults;
+    use super::super::common::{faults, pairs};
     use super::super::filter::check_filter;
     use super::super::model::check_model;
     use super::*;
@@ -297,11 +297,7 @@ mod tests {
             ("/prior/step", "expected a whole number ≥ 0, found 1.5"),
             ("/prior/members", "members belong to an ensemble (enkf) prior"),
         ];
-        let want: Vec<(String, String)> = want
-            .iter()
-            .map(|(a, b)| (a.to_string(), b.to_string()))
-            .collect();
-        assert_eq!(got, want);
+        assert_eq!(got, pairs(&want));
     }
 
     #[test]

@@ -1,10 +1,10 @@
 //! The sensors of `model.sensors`: each one's formulas and noise covariance.
 
 use super::common::{
-    check_covariance, formula_errors, is_identifier, matrix, positive_value, typed, unknown_fields,
+    check_covariance, compile, is_identifier, matrix, positive_value, typed, unknown_fields,
 };
 use crate::config::Limits;
-use crate::formula::{FormulaLimits, Program, Source};
+use crate::formula::FormulaLimits;
 use crate::model::Sensor;
 use crate::request::error::{SpecErrorKind, SpecErrors};
 use crate::request::raw::{Entries, Field, Measures, RawSensor, Spread};
@@ -99,20 +99,7 @@ fn sensor(
         };
     let dim = texts.len();
     let r = noise(s, sp, dim, errs);
-    let sources: Vec<Source> = texts
-        .iter()
-        .map(|(t, p)| Source {
-            text: t,
-            pointer: p.clone(),
-        })
-        .collect();
-    let program = match Program::compile(&sources, slots, consts, flimits) {
-        Ok(p) => p,
-        Err(list) => {
-            formula_errors(errs, list);
-            return None;
-        }
-    };
+    let program = compile(&texts, slots, consts, flimits, errs)?;
     // Slots are [x, u, t]: affine in states and inputs, never reading t.
     let affine = program.affine_form(slots.len() - 1);
     Some(Sensor {
