@@ -208,10 +208,10 @@ pub struct Predictor {
     // Noise.
     qc: DMatrix<f64>,
     q_step: DMatrix<f64>,
-    drift: DVector<f64>,
+    random_walk: DVector<f64>,
     q_zero: bool,
-    /// Whether every estimated parameter's drift is zero (so per-step noise is `q_step`).
-    drift_zero: bool,
+    /// Whether every estimated parameter's random walk is zero (so per-step noise is `q_step`).
+    random_walk_zero: bool,
     // Integrators and their state vectors.
     ode_g: Dopri5,
     rk_g: Rk4,
@@ -240,12 +240,14 @@ impl Predictor {
             Dynamics::Rates(p) | Dynamics::Next(p) => Some(p),
             Dynamics::Linear { .. } => None,
         };
-        let (qc, q_step, drift) = match &model.noise {
+        let (qc, q_step, random_walk) = match &model.noise {
             ProcessNoise::Density(q) => (q.clone(), DMatrix::zeros(n, n), DVector::zeros(n)),
-            ProcessNoise::PerStep { q, drift } => (DMatrix::zeros(n, n), q.clone(), drift.clone()),
+            ProcessNoise::PerStep { q, random_walk } => {
+                (DMatrix::zeros(n, n), q.clone(), random_walk.clone())
+            }
         };
-        let drift_zero = drift.iter().all(|d| *d == 0.0);
-        let q_zero = is_zero(&qc) && is_zero(&q_step) && drift_zero;
+        let random_walk_zero = random_walk.iter().all(|d| *d == 0.0);
+        let q_zero = is_zero(&qc) && is_zero(&q_step) && random_walk_zero;
         let (disc, dcache, b_lin, has_offset) = match &model.dynamics {
             Dynamics::Linear {
                 time: LinearTime::Continuous,
@@ -293,9 +295,9 @@ impl Predictor {
             current: 0,
             qc,
             q_step,
-            drift,
+            random_walk,
             q_zero,
-            drift_zero,
+            random_walk_zero,
             ode_g: Self::dopri(n + n * n, &integration),
             rk_g: Rk4::new(g_dim),
             y_g: vec![0.0; g_dim],
@@ -357,11 +359,11 @@ impl Predictor {
         }
     }
 
-    /// Per-step discrete noise `q + diag(drift)·dt` into `out`.
+    /// Per-step discrete noise `q + diag(random_walk)·dt` into `out`.
     fn step_noise(&self, dt: f64, out: &mut DMatrix<f64>) {
         out.copy_from(&self.q_step);
         for i in 0..self.n {
-            out[(i, i)] += self.drift[i] * dt;
+            out[(i, i)] += self.random_walk[i] * dt;
         }
     }
 
@@ -413,12 +415,16 @@ impl Predictor {
                 ..
             } => {
                 let k = Self::grid_steps(dt, *grid);
-                // Without parameter drift the per-step noise is the model's own `q`.
+                // Without parameter random walk the per-step noise is the model's own `q`.
                 let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
-                if !self.drift_zero {
+                if !self.random_walk_zero {
                     self.step_noise(*grid, &mut q);
                 }
-                let q_used = if self.drift_zero { &self.q_step } else { &q };
+                let q_used = if self.random_walk_zero {
+                    &self.q_step
+                } else {
+                    &q
+                };
                 if let Some(p) = phi.as_deref_mut() {
                     p.fill_with_identity();
                 }
@@ -445,10 +451,14 @@ impl Predictor {
                     mean[k] = self.pe.fx[k];
                 }
                 let mut q = std::mem::replace(&mut self.tmp2, DMatrix::zeros(0, 0));
-                if !self.drift_zero {
+                if !self.random_walk_zero {
                     self.step_noise(dt, &mut q);
                 }
-                let q_used = if self.drift_zero { &self.q_step } else { &q };
+                let q_used = if self.random_walk_zero {
+                    &self.q_step
+                } else {
+                    &q
+                };
                 self.g.as_mut_slice().copy_from_slice(&self.pe.f_full);
                 congruence_plus(&self.g, cov, q_used, &mut self.tmp);
                 if let Some(p) = phi.as_deref_mut() {

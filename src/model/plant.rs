@@ -79,7 +79,7 @@ pub enum ProcessNoise {
         /// Covariance added per step, `n × n` (zero rows/columns for parameters).
         q: DMatrix<f64>,
         /// Random-walk density per state (zero for model states).
-        drift: DVector<f64>,
+        random_walk: DVector<f64>,
     },
 }
 

@@ -326,17 +326,17 @@ pub(super) fn process_noise(
             _ => {}
         }
     }
-    let mut drift = DVector::zeros(n);
+    let mut random_walk = DVector::zeros(n);
     for (k, p) in estimated.iter().enumerate() {
-        drift[n_model + k] = p.random_walk;
+        random_walk[n_model + k] = p.random_walk;
     }
     Some(if continuous {
         for i in n_model..n {
-            q[(i, i)] = drift[i];
+            q[(i, i)] = random_walk[i];
         }
         ProcessNoise::Density(q)
     } else {
-        ProcessNoise::PerStep { q, drift }
+        ProcessNoise::PerStep { q, random_walk }
     })
 }
 
@@ -375,10 +375,10 @@ mod tests {
         };
         assert_eq!(*time, LinearTime::Discrete { dt: 0.5 });
         assert_eq!((matrix[(0, 1)], matrix[(2, 2)]), (0.5, 1.0));
-        let ProcessNoise::PerStep { q, drift } = &m.noise else {
+        let ProcessNoise::PerStep { q, random_walk } = &m.noise else {
             panic!()
         };
-        assert_eq!((q[(1, 1)], q[(2, 2)], drift[2]), (1e-3, 0.0, 1e-6));
+        assert_eq!((q[(1, 1)], q[(2, 2)], random_walk[2]), (1e-3, 0.0, 1e-6));
     }
 
     #[test]
