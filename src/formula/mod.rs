@@ -56,3 +56,9 @@ pub use error::FormulaError;
 pub use eval::{BatchWorkspace, Workspace};
 pub use parser::MAX_DEPTH_CEILING;
 pub use program::{FormulaLimits, Program, Source};
+
+/// Whether `name` is a function of the language (`sin`, `atan2`, `clamp`, ...), so a model
+/// may not give a state, input or parameter that name.
+pub fn is_function_name(name: &str) -> bool {
+    instr::FUNCTIONS.iter().any(|f| f.name == name)
+}

@@ -12,11 +12,10 @@ use nalgebra::DMatrix;
 use serde::Deserialize;
 use serde_json::{Map, Value};
 
-/// Names a state, input or parameter may not take: formula functions, constants, `t`, `dt`.
-const RESERVED: &[&str] = &[
-    "t", "dt", "pi", "e", "sin", "cos", "tan", "asin", "acos", "atan", "atan2", "sinh", "cosh",
-    "tanh", "exp", "ln", "log10", "sqrt", "abs", "sign", "min", "max", "pow", "hypot", "clamp",
-];
+/// Names a state, input or parameter may not take besides the formula functions: the
+/// constants, `t` and `dt`. The functions come from [`crate::formula::is_function_name`], so
+/// the two lists cannot drift apart.
+const RESERVED: &[&str] = &["t", "dt", "pi", "e"];
 
 /// Whether `s` can be a name in formulas: a letter or `_`, then letters, digits, `_`.
 pub(super) fn is_identifier(s: &str) -> bool {
@@ -42,7 +41,7 @@ pub(super) fn check_new_name(
                 name: name_s(),
             },
         );
-    } else if RESERVED.contains(&name) {
+    } else if RESERVED.contains(&name) || crate::formula::is_function_name(name) {
         errs.push(
             ptr,
             SpecErrorKind::ReservedName {
