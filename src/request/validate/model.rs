@@ -223,6 +223,24 @@ mod tests {
     }
 
     #[test]
+    fn names_the_formulas_give_a_meaning_are_refused() {
+        // Every function of the formula language, the constants and the time names; a
+        // state called `atan2` or `dt` would be shadowed or shadow one in every formula.
+        for name in ["atan2", "clamp", "log10", "dt", "pi"] {
+            let mut m = trolley();
+            m["states"] = json!(["pos", name]);
+            let got = faults(check(&m));
+            assert!(
+                got.iter().any(|(p, d)| p == "/model/states/1"
+                    && d == &format!(
+                        "state name '{name}' is reserved (a function, a constant, t or dt)"
+                    )),
+                "{name}: {got:?}"
+            );
+        }
+    }
+
+    #[test]
     fn a_valid_model_becomes_the_checked_model() {
         let m = check(&trolley()).unwrap();
         assert_eq!(m.states, ["pos", "vel", "drag"]);
