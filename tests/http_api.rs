@@ -126,6 +126,15 @@ async fn metrics_count_requests_by_route_and_status_per_app() {
         "{text}"
     );
     assert!(text.contains("tacit_http_request_duration_seconds_bucket"));
+    // HTTP series are labelled by the HTTP method; `filter` labels only the filter series
+    // (API-v2 renames: the v2 rename applies to filter series alone).
+    assert!(
+        text.contains(
+            r#"tacit_http_request_duration_seconds_count{route="/healthz",method="GET"} 3"#
+        ),
+        "{text}"
+    );
+    assert!(!text.contains(r#"filter="GET""#), "{text}");
     // The second app in this process saw none of it.
     let text_b = b
         .client

@@ -95,7 +95,7 @@ impl Metrics {
                         metrics::counter!("tacit_http_requests_total",
                             "route" => r.clone(), "method" => m.clone(), "status" => status.to_string()),
                         metrics::histogram!("tacit_http_request_duration_seconds",
-                            "route" => r, "filter" => m),
+                            "route" => r, "method" => m),
                     )
                 });
                 series.push(RequestSeries {
