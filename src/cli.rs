@@ -284,15 +284,29 @@ pub fn server_config(a: &ServeArgs) -> Result<ServerConfig, CliError> {
 }
 
 fn init_logging(format: LogFormat) {
+    use std::io::IsTerminal;
     use tracing_subscriber::EnvFilter;
     let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
+    let colour = format == LogFormat::Text
+        && colour_wanted(
+            std::io::stderr().is_terminal(),
+            std::env::var_os("NO_COLOR").as_deref(),
+        );
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(colour)
         .with_writer(std::io::stderr);
     let _ = match format {
         LogFormat::Text => builder.try_init(),
         LogFormat::Json => builder.json().try_init(),
     };
+}
+
+/// Colour codes only for a person at a terminal: a file or a log collector would keep
+/// them as noise. `NO_COLOR` set to anything but the empty string turns colour off
+/// (the no-color.org convention).
+fn colour_wanted(stderr_is_terminal: bool, no_color: Option<&std::ffi::OsStr>) -> bool {
+    stderr_is_terminal && no_color.is_none_or(|v| v.is_empty())
 }
 
 fn serve(a: ServeArgs) -> Result<(), CliError> {
@@ -583,6 +597,17 @@ mod tests {
         };
         let msg = old.to_limits().unwrap_err();
         assert!(msg.contains("renamed --max-lines"), "{msg}");
+    }
+
+    #[test]
+    fn colour_only_on_a_terminal_and_never_under_no_color() {
+        use std::ffi::OsStr;
+        // no-color.org: "when present and not an empty string" NO_COLOR disables colour.
+        assert!(colour_wanted(true, None));
+        assert!(colour_wanted(true, Some(OsStr::new(""))));
+        assert!(!colour_wanted(true, Some(OsStr::new("1"))));
+        assert!(!colour_wanted(false, None));
+        assert!(!colour_wanted(false, Some(OsStr::new(""))));
     }
 
     #[test]

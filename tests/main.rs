@@ -10,5 +10,6 @@ mod estimation;
 mod http_api;
 mod http_core;
 mod http_errors;
+mod http_logs;
 mod no_alloc;
 mod openapi;

@@ -61,7 +61,7 @@ impl Drop for CancelOnDrop {
 
 /// What a job hands back on success: a JSON body (whole or in pieces) and its counters.
 pub trait Answer: Send + 'static {
-    /// The work counters, for metrics.
+    /// The work counters, for metrics and the request's log line.
     fn stats(&self) -> &RunStats;
     /// The `200 application/json` response.
     fn into_json_response(self) -> Response;
@@ -143,8 +143,12 @@ where
     drop(guard);
     match joined {
         Ok(Ok(done)) => {
-            state.metrics().record_run(done.stats());
-            done.into_json_response()
+            let stats = *done.stats();
+            state.metrics().record_run(&stats);
+            let mut res = done.into_json_response();
+            // For the request's log line (`middleware::access`).
+            res.extensions_mut().insert(stats);
+            res
         }
         Ok(Err(problem)) => problem_response(&public(problem)),
         Err(what) => {

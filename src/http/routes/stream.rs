@@ -15,6 +15,7 @@
 use super::route::{mount, Route};
 use crate::http::extract::require_media_type;
 use crate::http::jobs::{panic_message, CancelOnDrop};
+use crate::http::middleware::StreamStats;
 use crate::http::ndjson::{LineError, LineSplitter};
 use crate::http::problem::{internal, overloaded, problem_response, public};
 use crate::http::state::AppState;
@@ -146,15 +147,19 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
     tokio::spawn(read_lines(body, splitter, leftover, ended, in_tx, guard));
     let span = tracing::Span::current();
     let st = state.clone();
+    // Filled in by the worker at the end, read by the request's log line.
+    let stats = StreamStats::default();
+    let seen = stats.clone();
     tokio::task::spawn_blocking(move || {
         let _enter = span.enter();
-        work(session, in_rx, out_tx, cancel, slot, &st);
+        work(session, in_rx, out_tx, cancel, slot, &st, &seen);
     });
 
     let out = futures_util::stream::unfold(out_rx, |mut rx| async move {
         rx.recv().await.map(|b| (Ok::<_, Infallible>(b), rx))
     });
     let mut res = Body::from_stream(out).into_response();
+    res.extensions_mut().insert(stats);
     res.headers_mut().insert(
         header::CONTENT_TYPE,
         HeaderValue::from_static("application/x-ndjson"),
@@ -218,11 +223,12 @@ fn work(
     cancel: Arc<AtomicBool>,
     slot: OwnedSemaphorePermit,
     state: &AppState,
+    stats: &StreamStats,
 ) {
     let _slot = slot;
     let mut out = Vec::with_capacity(FLUSH_BYTES * 2);
     let result = std::panic::catch_unwind(AssertUnwindSafe(|| {
-        run_session(session, rx, &tx, &cancel, &mut out, state)
+        run_session(session, rx, &tx, &cancel, &mut out, state, stats)
     }));
     match result {
         Ok(Flow::Done) | Ok(Flow::Gone) => {}
@@ -250,6 +256,7 @@ fn run_session(
     cancel: &AtomicBool,
     out: &mut Vec<u8>,
     state: &AppState,
+    stats: &StreamStats,
 ) -> Flow {
     loop {
         let msg = match rx.try_recv() {
@@ -286,7 +293,10 @@ fn run_session(
             Input::End => {
                 let mark = out.len();
                 match session.finish(out) {
-                    Ok(stats) => state.metrics().record_run(&stats),
+                    Ok(run) => {
+                        state.metrics().record_run(&run);
+                        stats.set(run);
+                    }
                     Err(p) => {
                         out.truncate(mark);
                         error_line(&p, out);
