@@ -29,7 +29,8 @@ pub struct NisSummary {
     pub lower_95: Option<f64>,
     /// Upper two-sided 95 % bound of the mean NIS.
     pub upper_95: Option<f64>,
-    /// `consistent`, `overconfident` (NIS too large) or `underconfident` (too small).
+    /// `consistent`, `overconfident` (NIS too large), `underconfident` (too small), or
+    /// `no_data` when no reading updated the filter.
     pub verdict: &'static str,
 }
 
@@ -41,7 +42,9 @@ impl NisTally {
         self.dof += dim as u64;
     }
 
-    /// The summary; with no updates the verdict is `consistent` and the figures null.
+    /// The summary; with no updates there is nothing to judge: the verdict is `no_data` and
+    /// the figures null (saying `consistent` there would vouch for a filter no reading
+    /// has tested).
     pub fn summary(&self) -> NisSummary {
         if self.count == 0 {
             return NisSummary {
@@ -49,7 +52,7 @@ impl NisTally {
                 dof: 0.0,
                 lower_95: None,
                 upper_95: None,
-                verdict: "consistent",
+                verdict: "no_data",
             };
         }
         let k = self.count as f64;
@@ -71,5 +74,30 @@ impl NisTally {
             upper_95: Some(upper),
             verdict,
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn zero_updates_give_the_verdict_no_data() {
+        let s = NisTally::default().summary();
+        assert_eq!(s.verdict, "no_data");
+        assert_eq!((s.mean, s.lower_95, s.upper_95), (None, None, None));
+    }
+
+    #[test]
+    fn one_update_at_its_expected_value_is_consistent() {
+        // One scalar update with NIS 1 (the mean of chi-square with 1 dof) lies inside the
+        // two-sided 95 % interval [0.000982, 5.024] (NIST/SEMATECH e-Handbook §1.3.6.7.4
+        // tabulates 0.001 and 5.024; the lower bound's further digits are from memory).
+        let mut t = NisTally::default();
+        t.add(1.0, 1);
+        let s = t.summary();
+        assert_eq!(s.verdict, "consistent");
+        assert!((s.lower_95.unwrap() - 0.000982).abs() < 1e-6);
+        assert!((s.upper_95.unwrap() - 5.024).abs() < 1e-3);
     }
 }

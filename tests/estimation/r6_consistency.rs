@@ -219,3 +219,38 @@ fn share_of_consistent_readings_beyond_the_gate_is_one_minus_p() {
         "share beyond the gate {share}"
     );
 }
+
+/// Issue 10: a run in which no reading updated the filter (every line empty, or every
+/// reading refused by the gate) used to say `consistent`. There is nothing to judge, so
+/// the verdict is `no_data` and the figures null (common practice: a consistency test
+/// needs at least one innovation).
+#[test]
+fn a_run_without_updates_says_no_data() {
+    let trolley = json!({
+        "states": ["position", "velocity"],
+        "dynamics": {"rates": {"position": "velocity"}},
+        "process_noise": {"density": {"velocity": 4e-4}},
+        "sensors": {"encoder": {"measures": "position", "std": 0.002}}
+    });
+    let prior = json!({"t": 0.0, "mean": {"position": 2.0, "velocity": 0.5},
+                       "std": {"position": 0.01, "velocity": 0.1}});
+    for (label, measurements, filter) in [
+        (
+            "empty lines",
+            json!([{"t": 0.5}, {"t": 1.0}]),
+            json!({"method": "ekf"}),
+        ),
+        (
+            "every reading refused",
+            json!([{"t": 0.5, "values": {"encoder": 40.0}}, {"t": 1.0, "values": {"encoder": -40.0}}]),
+            json!({"method": "ukf", "gate": {"probability": 0.99}}),
+        ),
+    ] {
+        let a = ok(&json!({"model": trolley, "filter": filter, "prior": prior,
+                           "measurements": measurements}));
+        let nis = &a["summary"]["nis"];
+        assert_eq!(nis["verdict"], "no_data", "{label}: {a}");
+        assert!(nis["mean"].is_null(), "{label}: {nis}");
+        assert_eq!(a["summary"]["updates"], 0, "{label}: {a}");
+    }
+}
