@@ -15,7 +15,7 @@ fn config_with(f: impl FnOnce(&mut ServerConfig)) -> ServerConfig {
 #[tokio::test]
 async fn every_problem_type_resolves_to_a_page_on_the_service() {
     // RFC 9457 §3.1.1: a relative `type` resolves against the request's URI; the service
-    // serves a page there for each kind (API-v2.md).
+    // serves a page there for each kind (openapi/openapi.yaml, the v2 contract).
     let s = start_default().await;
     let a = post(&s, "/v1/check", "application/json", "{\"model\": 1}").await;
     assert_problem(&a, 422);
