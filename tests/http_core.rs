@@ -99,7 +99,8 @@ async fn estimate_answers_one_estimate_per_line_with_posterior_and_summary() {
         }
     }
     assert_eq!(est[0]["innovations"]["encoder"]["accepted"], true);
-    // The v2 contract (openapi/openapi.yaml) renames: the pre-update innovation and sqrt(S) carry their own names.
+    // The v2 contract (openapi/openapi.yaml) renames: the pre-update innovation and
+    // sqrt(S) carry their own names.
     let keys: Vec<&str> = est[1]["innovations"]["pair"]
         .as_object()
         .unwrap()
@@ -437,7 +438,8 @@ async fn simulate_takes_its_schedule_as_sampling_and_refuses_the_v1_name() {
         .map(|m| m["values"].get("encoder").is_some())
         .collect();
     assert_eq!(read, [true, false, true, false, true, false]);
-    // The v2 contract (openapi/openapi.yaml) renames `readings` to `sampling`; the old name is refused, naming the new.
+    // The v2 contract (openapi/openapi.yaml) renames `readings` to `sampling`; the old
+    // name is refused, naming the new.
     body["readings"] = body["sampling"].take();
     body.as_object_mut().unwrap().remove("sampling");
     let a = post_json(&s, "/v1/simulate", &body).await;
@@ -462,7 +464,8 @@ async fn check_reports_observability_by_sensor() {
     });
     let a = post_json(&s, "/v1/check", &json!({"model": model})).await;
     assert_eq!(a.status, 200, "{}", a.text);
-    // The v2 contract (openapi/openapi.yaml): the length of the stacked measurement vector is `measurement_size`.
+    // The v2 contract (openapi/openapi.yaml): the length of the stacked measurement
+    // vector is `measurement_size`.
     assert_eq!(
         a.body["dimensions"],
         json!({"states": 2, "inputs": 0, "measurement_size": 2})

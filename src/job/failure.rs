@@ -34,8 +34,8 @@ mod tests {
 
     #[test]
     fn request_faults_are_422s_at_the_field_and_step_failures_are_not() {
-        // The contract (openapi/openapi.yaml): times going backwards are a 422 with a JSON Pointer (RFC 6901) to the
-        // field; RFC 9457 carries the pointer in `errors`.
+        // The contract (openapi/openapi.yaml): times going backwards are a 422 with a
+        // JSON Pointer (RFC 6901) to the field; RFC 9457 carries the pointer in `errors`.
         let p = Problem::from(RunError::TimeDecreasing {
             pointer: "/measurements/3".into(),
             at: "2.5".into(),

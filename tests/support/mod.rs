@@ -145,7 +145,8 @@ pub(crate) fn assert_problem(a: &Answer, status: u16) {
     assert_eq!(a.status, status, "status of {}", a.text);
     assert_eq!(a.content_type, "application/problem+json", "{}", a.text);
     assert_eq!(a.body["status"], status, "{}", a.text);
-    // The v2 contract (openapi/openapi.yaml): a relative reference the service serves as a page (RFC 9457 §3.1.1).
+    // The v2 contract (openapi/openapi.yaml): a relative reference the service serves as
+    // a page (RFC 9457 §3.1.1).
     assert!(
         a.body["type"]
             .as_str()
