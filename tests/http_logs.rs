@@ -111,26 +111,32 @@ fn lines(n: usize) -> Vec<Value> {
         .collect()
 }
 
-/// Post `body` and return the request id the service answered with.
-fn post(s: &Served, path: &str, media: &str, body: String) -> String {
+/// Send `req` on a runtime of its own, check the 200, read the whole answer (a stream's
+/// line is written when its body ends) and return the request id the service gave it.
+fn send(req: impl FnOnce(reqwest::Client) -> reqwest::RequestBuilder) -> String {
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
         .unwrap();
     rt.block_on(async {
-        let res = reqwest::Client::new()
-            .post(format!("{}{path}", s.base))
-            .header("content-type", media)
+        let res = req(reqwest::Client::new())
             .timeout(WAIT)
-            .body(body)
             .send()
             .await
             .unwrap();
         assert_eq!(res.status(), 200);
         let id = res.headers()["x-request-id"].to_str().unwrap().to_string();
-        // Read the whole answer: a stream's line is written when its body ends.
         res.bytes().await.unwrap();
         id
+    })
+}
+
+/// Post `body` and return the request id the service answered with.
+fn post(s: &Served, path: &str, media: &str, body: String) -> String {
+    send(|c| {
+        c.post(format!("{}{path}", s.base))
+            .header("content-type", media)
+            .body(body)
     })
 }
 
@@ -141,19 +147,7 @@ fn estimate(s: &Served, n: usize) -> String {
 }
 
 fn get(s: &Served, path: &str) {
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .unwrap();
-    rt.block_on(async {
-        let res = reqwest::Client::new()
-            .get(format!("{}{path}", s.base))
-            .timeout(WAIT)
-            .send()
-            .await
-            .unwrap();
-        assert_eq!(res.status(), 200);
-    });
+    send(|c| c.get(format!("{}{path}", s.base)));
 }
 
 #[test]
