@@ -5,13 +5,14 @@
 //! act from this time on, zero-order hold); update jointly with every sensor present,
 //! gating each reading on its own NIS; count what happened.
 
+use crate::diagnostics::warnings::{WarningKind, Warnings};
 use crate::diagnostics::{chi2, nis::NisTally};
 use crate::filter::ekf::Ekf;
 use crate::filter::enkf::Enkf;
 use crate::filter::ukf::Ukf;
 use crate::filter::{Estimator, FilterError};
 use crate::model::Reading;
-use crate::model::{Dynamics, FilterConfig, LinearTime, Method, Model, Prior};
+use crate::model::{Dynamics, FilterConfig, LinearTime, Method, Model, Prior, ProcessNoise};
 use crate::model::{Instant, TimeMode};
 use nalgebra::{DMatrix, DVector};
 use std::sync::Arc;
@@ -51,6 +52,8 @@ pub struct Run {
     keep_cross: bool,
     /// Counters.
     pub counts: Counts,
+    /// What the run noticed (`summary.warnings`).
+    pub warnings: Warnings,
 }
 
 /// Why a run could not start or go on, with everything its message needs. The job layer
@@ -122,6 +125,17 @@ impl std::fmt::Display for RunError {
 
 impl std::error::Error for RunError {}
 
+/// Whether any model state (estimated parameters aside: a constant parameter is the usual
+/// case) has process noise.
+fn has_process_noise(model: &Model) -> bool {
+    let nm = model.n_model;
+    let q = match &model.noise {
+        ProcessNoise::Density(q) => q,
+        ProcessNoise::PerStep { q, .. } => q,
+    };
+    (0..nm).any(|i| (0..nm).any(|j| q[(i, j)] != 0.0))
+}
+
 /// Time of a failing step in messages.
 fn fmt_time(t: &Instant, mode: TimeMode) -> String {
     match mode {
@@ -170,6 +184,12 @@ impl Run {
                 .map(|s| chi2::quantile(p, s.dim as f64))
                 .collect()
         });
+        let mut warnings = Warnings::default();
+        if !has_process_noise(&model) {
+            warnings.note(WarningKind::NoProcessNoise, None, None, prior.t, || {
+                "the model has no process noise on its states, so the filter trusts the dynamics without limit and its spread can only shrink; add process_noise unless the dynamics are exact".into()
+            });
+        }
         Ok(Self {
             model,
             cfg,
@@ -181,7 +201,21 @@ impl Run {
             thresholds,
             keep_cross,
             counts: Counts::default(),
+            warnings,
         })
+    }
+
+    /// The run's warnings as the summary reports them: those noticed on the way, plus
+    /// `no_updates` when no reading updated the filter.
+    pub fn final_warnings(&self) -> Warnings {
+        let mut w = self.warnings.clone();
+        if self.counts.updates == 0 {
+            let (steps, rejected) = (self.counts.steps, self.counts.rejected);
+            w.note(WarningKind::NoUpdates, None, None, self.t, || {
+                format!("no reading updated the filter ({steps} lines, {rejected} readings refused): the estimates are predictions from the prior alone")
+            });
+        }
+        w
     }
 
     /// The filter.

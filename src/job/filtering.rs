@@ -135,7 +135,7 @@ fn run_batch_overlapping(
         run.inputs(),
     );
     tail.push(b',');
-    writer.summary(&mut tail, &run.counts);
+    writer.summary(&mut tail, &run.counts, &run.final_warnings());
     tail.push(b'}');
     parts.push(tail);
     Ok(Pieces {

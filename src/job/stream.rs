@@ -102,7 +102,8 @@ impl Stream {
             self.run.inputs(),
         );
         out.push(b',');
-        self.writer.summary(out, &self.run.counts);
+        self.writer
+            .summary(out, &self.run.counts, &self.run.final_warnings());
         out.extend_from_slice(b"}\n");
         stats(&self.run)
     }

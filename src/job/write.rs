@@ -3,6 +3,7 @@
 //! as a prior is read to the same bits), and nothing is built as a tree first.
 
 use crate::diagnostics::nis::NisSummary;
+use crate::diagnostics::warnings::{Warning, Warnings};
 use crate::filter::observe::ObsSpace;
 use crate::filter::run::Counts;
 use crate::model::{CovarianceOutput, Model, OutputConfig};
@@ -310,7 +311,7 @@ impl Writer {
     }
 
     /// `"summary":{...}`.
-    pub fn summary(&self, buf: &mut Vec<u8>, counts: &Counts) {
+    pub fn summary(&self, buf: &mut Vec<u8>, counts: &Counts, warnings: &Warnings) {
         #[derive(serde::Serialize)]
         struct Summary {
             steps: u64,
@@ -326,6 +327,37 @@ impl Writer {
             nis: counts.nis.summary(),
         };
         buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
+        // The warnings go inside the object just written: drop its closing brace.
+        buf.pop();
+        buf.extend_from_slice(b",\"warnings\":[");
+        for (i, w) in warnings.list().iter().enumerate() {
+            if i > 0 {
+                buf.push(b',');
+            }
+            self.warning(buf, w);
+        }
+        buf.extend_from_slice(b"]}");
+    }
+
+    /// One entry of `summary.warnings`: `{kind, sensor?, state?, at_t, count, detail}`.
+    fn warning(&self, buf: &mut Vec<u8>, w: &Warning) {
+        buf.extend_from_slice(b"{\"kind\":");
+        buf.extend_from_slice(&serde_json::to_vec(&w.kind).unwrap_or_default());
+        if let Some(s) = w.sensor {
+            buf.extend_from_slice(b",\"sensor\":");
+            buf.extend_from_slice(&self.sensor_keys[s][..self.sensor_keys[s].len() - 1]);
+        }
+        if let Some(s) = w.state {
+            buf.extend_from_slice(b",\"state\":");
+            buf.extend_from_slice(&self.state_keys[s][..self.state_keys[s].len() - 1]);
+        }
+        buf.extend_from_slice(b",\"at_t\":");
+        self.time(buf, &w.at);
+        buf.extend_from_slice(b",\"count\":");
+        buf.extend_from_slice(itoa::Buffer::new().format(w.count).as_bytes());
+        buf.extend_from_slice(b",\"detail\":");
+        buf.extend_from_slice(&serde_json::to_vec(&w.detail).unwrap_or_default());
+        buf.push(b'}');
     }
 }
 
