@@ -8,6 +8,7 @@
 
 use crate::model::Instant;
 use serde::Serialize;
+use std::borrow::Cow;
 
 /// The kinds of warning, as the answer names them.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -47,9 +48,13 @@ pub struct Warning {
     pub at: Instant,
     /// How many times it happened (for `refused_in_a_row`, the longest run).
     pub count: u64,
-    /// One sentence for a person.
-    pub detail: String,
+    /// One sentence for a person (fixed text where it can be, so that recording a
+    /// warning in the filter loop need not allocate).
+    pub detail: Cow<'static, str>,
 }
+
+/// A warning's detail: fixed text, or text made for the occasion.
+pub type Detail = Cow<'static, str>;
 
 /// The warnings of one run, at most one per (kind, sensor, state).
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -58,6 +63,13 @@ pub struct Warnings {
 }
 
 impl Warnings {
+    /// Room for `n` warnings before the list grows.
+    pub fn with_capacity(n: usize) -> Self {
+        Self {
+            list: Vec::with_capacity(n),
+        }
+    }
+
     /// Record one occurrence. The first of its (kind, sensor, state) is kept with `at`
     /// and the `detail` (only then built); a later one adds one to its count.
     pub fn note(
@@ -66,7 +78,7 @@ impl Warnings {
         sensor: Option<usize>,
         state: Option<usize>,
         at: Instant,
-        detail: impl FnOnce() -> String,
+        detail: impl FnOnce() -> Detail,
     ) {
         match self.find(kind, sensor, state) {
             Some(w) => w.count += 1,
@@ -89,7 +101,7 @@ impl Warnings {
         sensor: Option<usize>,
         at: Instant,
         count: u64,
-        detail: impl FnOnce() -> String,
+        detail: impl FnOnce() -> &'static str,
     ) {
         match self.find(kind, sensor, None) {
             Some(w) => w.count = w.count.max(count),
@@ -99,7 +111,7 @@ impl Warnings {
                 state: None,
                 at,
                 count,
-                detail: detail(),
+                detail: Cow::Borrowed(detail()),
             }),
         }
     }
@@ -144,7 +156,7 @@ mod tests {
                 None,
                 None,
                 Instant::seconds(k as f64),
-                || format!("first at {k}"),
+                || format!("first at {k}").into(),
             );
         }
         w.note(
@@ -171,7 +183,7 @@ mod tests {
                 Some(0),
                 Instant::seconds(t),
                 n,
-                || "refused".into(),
+                || "refused",
             );
         }
         assert_eq!(w.list().len(), 1);

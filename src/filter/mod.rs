@@ -125,6 +125,17 @@ pub trait Estimator: Send {
         self.core_mut().pred.set_deadline(deadline);
     }
 
+    /// Put the states `states` back to the spread `variances[i]` (indexed by state), with
+    /// their correlations to every other state dropped (`filter.reacquire`).
+    fn reset_spread(&mut self, states: &[usize], variances: &[f64]) {
+        let cov = &mut self.core_mut().cov;
+        for &i in states {
+            cov.row_mut(i).fill(0.0);
+            cov.column_mut(i).fill(0.0);
+            cov[(i, i)] = variances[i];
+        }
+    }
+
     /// Note that one more measurement line was processed (random streams derive from it).
     fn advance_step(&mut self) {}
 

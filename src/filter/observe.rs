@@ -70,6 +70,8 @@ pub struct ObsSpace {
     pub kt: Vec<f64>,
     /// NIS of all accepted rows jointly.
     pub joint_nis: f64,
+    /// ln det S over the accepted rows (set with `joint_nis`).
+    pub log_det_s: f64,
     tmp: Vec<f64>,
     block: Vec<f64>,
     block_l: Vec<f64>,
@@ -109,6 +111,7 @@ impl ObsSpace {
             l_acc: vec![0.0; mm * mm],
             kt: vec![0.0; mm * n],
             joint_nis: 0.0,
+            log_det_s: 0.0,
             tmp: vec![0.0; mm.max(n)],
             block: vec![0.0; bm * bm],
             block_l: vec![0.0; bm * bm],

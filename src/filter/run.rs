@@ -1,18 +1,24 @@
 //! The run loop shared by every endpoint that filters: one step per measurement line.
 //!
-//! For each line: refuse a time going backwards; predict from the previous time with the
-//! inputs held since then (no prediction for an equal time); apply the line's inputs (they
-//! act from this time on, zero-order hold); update jointly with every sensor present,
-//! gating each reading on its own NIS; count what happened.
+//! For each line: refuse a time going backwards (or skip the line, `filter.late`) and a gap
+//! longer than `filter.max_gap`; predict from the previous time with the inputs held since
+//! then (no prediction for an equal time); apply the line's inputs (they act from this time
+//! on, zero-order hold); update jointly with every sensor present, gating each reading on
+//! its own NIS and taking back a sensor refused `filter.reacquire.after` times in a row;
+//! count what happened (NIS over accepted and over all readings, the log-likelihood,
+//! refusal streaks) and note what a person should know (`summary.warnings`).
 
+use crate::diagnostics::chi2;
+use crate::diagnostics::nis::{NisSummary, NisTally, Refusals};
 use crate::diagnostics::warnings::{WarningKind, Warnings};
-use crate::diagnostics::{chi2, nis::NisTally};
 use crate::filter::ekf::Ekf;
 use crate::filter::enkf::Enkf;
 use crate::filter::ukf::Ukf;
 use crate::filter::{Estimator, FilterError};
 use crate::model::Reading;
-use crate::model::{Dynamics, FilterConfig, LinearTime, Method, Model, Prior, ProcessNoise};
+use crate::model::{
+    Dynamics, FilterConfig, LateLines, LinearTime, Method, Model, Prior, ProcessNoise, Running,
+};
 use crate::model::{Instant, TimeMode};
 use nalgebra::{DMatrix, DVector};
 use std::sync::Arc;
@@ -26,9 +32,27 @@ pub struct Counts {
     pub updates: u64,
     /// Readings refused by the gate.
     pub rejected: u64,
+    /// Sensor readings judged (accepted or refused).
+    pub judged: u64,
+    /// Lines skipped because their time went backwards (`filter.late: "skip"`).
+    pub skipped: u64,
     /// NIS of the accepted readings.
     pub nis: NisTally,
+    /// NIS of every judged reading, refused ones included (each refused sensor reading
+    /// with its own NIS, the accepted ones with their joint NIS).
+    pub all_nis: NisTally,
+    /// Σ ln N(ν; 0, S) over the updates: −½ Σ (νᵀS⁻¹ν + ln det S + m ln 2π), the
+    /// prediction-error decomposition of the readings' likelihood (Schweppe 1965, IEEE
+    /// Trans. Information Theory 11(1)).
+    pub log_likelihood: f64,
 }
+
+/// A sensor refused this many times in a row gets a `refused_in_a_row` warning (a
+/// consistent filter behind a 0.99 gate does so with probability 1e-20).
+const STREAK_WARNING: u64 = 10;
+
+/// ln 2π, for the Gaussian density's normalising term.
+const LN_2PI: f64 = 1.837_877_066_409_345_5;
 
 /// What one step did (for the smoother).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -37,6 +61,8 @@ pub struct StepDone {
     pub predicted: bool,
     /// Whether any reading updated the state.
     pub updated: bool,
+    /// Whether the line was skipped for coming late; it has no estimate.
+    pub skipped: bool,
 }
 
 /// A filter run in progress.
@@ -50,6 +76,20 @@ pub struct Run {
     inputs: DVector<f64>,
     thresholds: Option<Vec<f64>>,
     keep_cross: bool,
+    /// Per sensor: refusals in a row so far, and the time of the first of them.
+    streaks: Vec<(u64, Instant)>,
+    /// Per sensor: whether it was read at the current time already (duplicate times).
+    read_now: Vec<bool>,
+    /// Per sensor: the states its formula reads (what `filter.reacquire` resets).
+    measured: Vec<Vec<usize>>,
+    /// The request's prior variances (what `filter.reacquire` resets to).
+    prior_var: Vec<f64>,
+    /// The gate thresholds of the current line, with a reacquired sensor's opened.
+    gate_now: Vec<f64>,
+    /// The chain's tallies: `prior.running`, with this run's added one by one in the same
+    /// order as one long run would add them (so a chain of requests gives the same sums
+    /// bit for bit).
+    running: Running,
     /// Counters.
     pub counts: Counts,
     /// What the run noticed (`summary.warnings`).
@@ -75,6 +115,21 @@ pub enum RunError {
         at: String,
         /// The time already reached.
         current: String,
+        /// How far back the line is, seconds.
+        back: f64,
+    },
+    /// A line comes longer after the one before than `filter.max_gap` allows.
+    GapTooLong {
+        /// JSON Pointer of the line (its `/t` is at fault), relative to the caller's base.
+        pointer: String,
+        /// The line's time, as the request writes times.
+        at: String,
+        /// The time already reached.
+        current: String,
+        /// The gap, seconds.
+        gap: f64,
+        /// `filter.max_gap`.
+        max_gap: f64,
     },
     /// A line's time is not a whole number of steps of a discrete model after the prior.
     OffGrid {
@@ -101,9 +156,22 @@ impl std::fmt::Display for RunError {
         match self {
             RunError::Unscented(why) => f.write_str(why),
             RunError::Ensemble(e) => write!(f, "cannot draw the ensemble: {e}"),
-            RunError::TimeDecreasing { at, current, .. } => {
-                write!(f, "times must not decrease: {at} comes after {current}")
-            }
+            RunError::TimeDecreasing {
+                at, current, back, ..
+            } => write!(
+                f,
+                "times must not decrease: this line's time {at} is {back} s before {current}, the last time the run reached; send lines in time order, or set filter.late to \"skip\" to skip late lines with a warning"
+            ),
+            RunError::GapTooLong {
+                at,
+                current,
+                gap,
+                max_gap,
+                ..
+            } => write!(
+                f,
+                "this line's time {at} is {gap} s after {current}, the last time the run reached, more than filter.max_gap = {max_gap} s allows; check the clock that stamped it"
+            ),
             RunError::OffGrid { at, dt, .. } => write!(
                 f,
                 "time {at} is not on the model's grid prior.t + k·{dt} (the discrete model steps by dt)"
@@ -152,6 +220,7 @@ impl Run {
         prior: Prior,
         keep_cross: bool,
     ) -> Result<Self, RunError> {
+        let prior_var: Vec<f64> = (0..model.n()).map(|i| prior.cov[(i, i)]).collect();
         let est: Box<dyn Estimator> = match cfg.method {
             Method::Ekf => Box::new(Ekf::new(&model, cfg.integration, prior.mean, prior.cov)),
             Method::Ukf => Box::new(
@@ -177,6 +246,16 @@ impl Run {
                 .map_err(RunError::Ensemble)?,
             ),
         };
+        let n = model.n();
+        let measured = model
+            .sensors
+            .iter()
+            .map(|s| {
+                (0..n)
+                    .filter(|&i| (0..s.dim).any(|o| s.program.depends_on(o, i)))
+                    .collect()
+            })
+            .collect();
         let thresholds = cfg.gate.map(|p| {
             model
                 .sensors
@@ -184,12 +263,15 @@ impl Run {
                 .map(|s| chi2::quantile(p, s.dim as f64))
                 .collect()
         });
-        let mut warnings = Warnings::default();
+        // Room for every kind on a few sensors and states: recording one in the loop then
+        // never allocates.
+        let mut warnings = Warnings::with_capacity(32);
         if !has_process_noise(&model) {
             warnings.note(WarningKind::NoProcessNoise, None, None, prior.t, || {
                 "the model has no process noise on its states, so the filter trusts the dynamics without limit and its spread can only shrink; add process_noise unless the dynamics are exact".into()
             });
         }
+        let sensors = model.sensors.len();
         Ok(Self {
             model,
             cfg,
@@ -198,8 +280,14 @@ impl Run {
             t: prior.t,
             origin: prior.t,
             inputs: prior.inputs,
+            gate_now: thresholds.clone().unwrap_or_default(),
             thresholds,
             keep_cross,
+            streaks: vec![(0, prior.t); sensors],
+            read_now: vec![false; sensors],
+            measured,
+            prior_var,
+            running: prior.running,
             counts: Counts::default(),
             warnings,
         })
@@ -212,7 +300,7 @@ impl Run {
         if self.counts.updates == 0 {
             let (steps, rejected) = (self.counts.steps, self.counts.rejected);
             w.note(WarningKind::NoUpdates, None, None, self.t, || {
-                format!("no reading updated the filter ({steps} lines, {rejected} readings refused): the estimates are predictions from the prior alone")
+                format!("no reading updated the filter ({steps} lines, {rejected} readings refused): the estimates are predictions from the prior alone").into()
             });
         }
         w
@@ -296,14 +384,21 @@ impl Run {
         capture: Option<&mut Option<(DVector<f64>, DMatrix<f64>)>>,
     ) -> Result<StepDone, RunError> {
         if self.t.is_after(&r.t, self.mode) {
-            return Err(RunError::TimeDecreasing {
-                pointer: pointer.to_string(),
-                at: fmt_time(&r.t, self.mode),
-                current: fmt_time(&self.t, self.mode),
-            });
+            return self.late_line(r, pointer);
         }
         self.check_grid(&r.t, pointer)?;
         let dt = self.t.until(&r.t, self.mode);
+        if let Some(max_gap) = self.cfg.max_gap {
+            if dt > max_gap {
+                return Err(RunError::GapTooLong {
+                    pointer: pointer.to_string(),
+                    at: fmt_time(&r.t, self.mode),
+                    current: fmt_time(&self.t, self.mode),
+                    gap: dt,
+                    max_gap,
+                });
+            }
+        }
         let predicted = dt > 0.0;
         if predicted {
             self.est
@@ -315,6 +410,7 @@ impl Run {
                     self.keep_cross,
                 )
                 .map_err(|e| self.failure(e, &r.t))?;
+            self.read_now.fill(false);
         }
         if let (Some(c), true) = (capture, predicted) {
             self.est.settle();
@@ -326,27 +422,170 @@ impl Run {
         }
         let mut updated = false;
         if !r.sensors.is_empty() {
+            self.note_duplicates(r);
+            let gate = if self.reacquire(r) {
+                Some(self.gate_now.as_slice())
+            } else {
+                self.thresholds.as_deref()
+            };
             updated = self
                 .est
-                .update(
-                    &self.model,
-                    r,
-                    self.inputs.as_slice(),
-                    r.t.secs,
-                    self.thresholds.as_deref(),
-                )
+                .update(&self.model, r, self.inputs.as_slice(), r.t.secs, gate)
                 .map_err(|e| self.failure(e, &r.t))?;
-            let obs = self.est.obs();
-            self.counts.rejected += obs.checks.iter().filter(|c| !c.accepted).count() as u64;
-            if updated {
-                self.counts.updates += 1;
-                self.counts.nis.add(obs.joint_nis, obs.ma);
-            }
+            self.tally(updated, &r.t);
         }
         self.est.settle();
         self.est.advance_step();
         self.counts.steps += 1;
-        Ok(StepDone { predicted, updated })
+        Ok(StepDone {
+            predicted,
+            updated,
+            skipped: false,
+        })
+    }
+
+    /// A line whose time is before the run's: skipped with a warning under
+    /// `filter.late: "skip"`, else the request's error.
+    fn late_line(&mut self, r: &Reading, pointer: &str) -> Result<StepDone, RunError> {
+        let (at, current) = (fmt_time(&r.t, self.mode), fmt_time(&self.t, self.mode));
+        let back = r.t.until(&self.t, self.mode);
+        if self.cfg.late == LateLines::Reject {
+            return Err(RunError::TimeDecreasing {
+                pointer: pointer.to_string(),
+                at,
+                current,
+                back,
+            });
+        }
+        self.counts.skipped += 1;
+        self.warnings
+            .note(WarningKind::LateLineSkipped, None, None, r.t, || {
+                format!("a line at {at} came {back} s after the run had reached {current} and was skipped (filter.late = \"skip\"); count says how many were").into()
+            });
+        Ok(StepDone {
+            predicted: false,
+            updated: false,
+            skipped: true,
+        })
+    }
+
+    /// Warn when a sensor is read twice at one time: both readings are applied, as two
+    /// independent readings, which a repeated export line is not.
+    fn note_duplicates(&mut self, r: &Reading) {
+        for &(s, _) in &r.sensors {
+            if std::mem::replace(&mut self.read_now[s], true) {
+                let name = &self.model.sensors[s].name;
+                let at = fmt_time(&r.t, self.mode);
+                self.warnings
+                    .note(WarningKind::DuplicateTime, Some(s), None, r.t, || {
+                        format!("sensor '{name}' was read twice at {at}; both readings were applied as independent ones (a line repeated by an export would count twice)").into()
+                    });
+            }
+        }
+    }
+
+    /// Whether this line's gate is `gate_now` rather than the plain thresholds. A sensor
+    /// refused `filter.reacquire.after` times in a row is taken back: its threshold is
+    /// opened for this line and the states it reads go back to the request's prior spread
+    /// (correlations with them dropped), with a `reacquired` warning.
+    fn reacquire(&mut self, r: &Reading) -> bool {
+        let (Some(after), Some(base)) = (self.cfg.reacquire, self.thresholds.as_deref()) else {
+            return false;
+        };
+        self.gate_now.copy_from_slice(base);
+        for &(s, _) in &r.sensors {
+            if self.streaks[s].0 < after {
+                continue;
+            }
+            self.gate_now[s] = f64::INFINITY;
+            self.est.reset_spread(&self.measured[s], &self.prior_var);
+            let (name, at, k) = (
+                &self.model.sensors[s].name,
+                fmt_time(&r.t, self.mode),
+                self.streaks[s].0,
+            );
+            self.warnings
+                .note(WarningKind::Reacquired, Some(s), None, r.t, || {
+                    format!("sensor '{name}' was taken back at {at} after {k} refusals in a row; the states it reads were reset to their prior spread").into()
+                });
+        }
+        true
+    }
+
+    /// Count the line's readings: judged, refused, NIS over accepted and over all, the
+    /// log-likelihood, and each sensor's refusal streak.
+    fn tally(&mut self, updated: bool, at: &Instant) {
+        let obs = self.est.obs();
+        let mut refused_nis = 0.0;
+        let mut refused_dim = 0;
+        for ck in &obs.checks {
+            self.counts.judged += 1;
+            self.running.judged += 1;
+            let streak = &mut self.streaks[ck.sensor];
+            if ck.accepted {
+                streak.0 = 0;
+                continue;
+            }
+            self.counts.rejected += 1;
+            self.running.refused += 1;
+            refused_nis += ck.nis;
+            refused_dim += ck.dim;
+            if streak.0 == 0 {
+                streak.1 = *at;
+            }
+            streak.0 += 1;
+            if streak.0 >= STREAK_WARNING {
+                self.warnings.streak(
+                    WarningKind::RefusedInARow,
+                    Some(ck.sensor),
+                    streak.1,
+                    streak.0,
+                    || "the gate refused this sensor's readings many times in a row (count is the longest run): the filter may have locked it out (process noise too small, a step change, or the sensor changed units); check the model, or set filter.reacquire",
+                );
+            }
+        }
+        if updated {
+            self.counts.updates += 1;
+            self.counts.nis.add(obs.joint_nis, obs.ma);
+            let ll = -0.5 * (obs.joint_nis + obs.log_det_s + obs.ma as f64 * LN_2PI);
+            self.counts.log_likelihood += ll;
+            let r = &mut self.running;
+            r.readings += 1;
+            r.nis_sum += obs.joint_nis;
+            r.dof_sum += obs.ma as u64;
+            r.log_likelihood += ll;
+        }
+        let (acc_nis, acc_dim) = if updated {
+            (obs.joint_nis, obs.ma)
+        } else {
+            (0.0, 0)
+        };
+        if acc_dim + refused_dim > 0 {
+            self.counts
+                .all_nis
+                .add(acc_nis + refused_nis, acc_dim + refused_dim);
+        }
+    }
+
+    /// The tallies of the whole chain: the prior's `running` plus this run's.
+    pub fn running(&self) -> Running {
+        self.running
+    }
+
+    /// The summary's NIS object: this request's verdict (refusals counted) and the
+    /// chain's.
+    pub fn nis_summary(&self) -> NisSummary {
+        let c = &self.counts;
+        let refusals = |judged, refused| self.cfg.gate.map(|p| Refusals { p, judged, refused });
+        let run = self.running();
+        let chain = NisTally {
+            count: run.readings,
+            sum: run.nis_sum,
+            dof: run.dof_sum,
+        };
+        let running_verdict = chain.verdict(refusals(run.judged, run.refused));
+        c.nis
+            .summary(&c.all_nis, refusals(c.judged, c.rejected), running_verdict)
     }
 
     /// A prediction-only estimate at `at` (not before the current time) that leaves the run

@@ -16,7 +16,9 @@ impl From<RunError> for Problem {
         match e {
             RunError::Unscented(_) => Problem::field("/filter/unscented", detail),
             RunError::Ensemble(_) => Problem::field("/prior", detail),
-            RunError::TimeDecreasing { pointer, .. } | RunError::OffGrid { pointer, .. } => {
+            RunError::TimeDecreasing { pointer, .. }
+            | RunError::OffGrid { pointer, .. }
+            | RunError::GapTooLong { pointer, .. } => {
                 Problem::field(format!("{pointer}/t"), detail)
             }
             RunError::Step {
@@ -40,12 +42,13 @@ mod tests {
             pointer: "/measurements/3".into(),
             at: "2.5".into(),
             current: "4".into(),
+            back: 1.5,
         });
         assert_eq!(p.status, 422);
         assert_eq!(p.errors[0].pointer, "/measurements/3/t");
         assert_eq!(
             p.errors[0].detail,
-            "times must not decrease: 2.5 comes after 4"
+            "times must not decrease: this line's time 2.5 is 1.5 s before 4, the last time the run reached; send lines in time order, or set filter.late to \"skip\" to skip late lines with a warning"
         );
         let p = Problem::from(RunError::Ensemble(FilterError::NotPositive(
             "prior covariance",

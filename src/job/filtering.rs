@@ -124,18 +124,9 @@ fn run_batch_overlapping(
         tail.push(b']');
     }
     tail.push(b',');
-    let est = run.estimator();
-    writer.posterior(
-        &mut tail,
-        &run.time(),
-        est.mean(),
-        est.covariance(),
-        est.members(),
-        est.step(),
-        run.inputs(),
-    );
+    writer.posterior(&mut tail, &run);
     tail.push(b',');
-    writer.summary(&mut tail, &run.counts, &run.final_warnings());
+    writer.summary(&mut tail, &run);
     tail.push(b'}');
     parts.push(tail);
     Ok(Pieces {

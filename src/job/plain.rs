@@ -62,8 +62,13 @@ impl Lines<'_> {
             self.guard.check(i)?;
             let reading = source.next(i)?;
             preds.write(run, self.writer, Some(&reading.t))?;
-            run.step(reading, "")
+            let done = run
+                .step(reading, "")
                 .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
+            if done.skipped {
+                // A late line skipped under `filter.late: "skip"` has no estimate.
+                continue;
+            }
             let est = run.estimator();
             block.push(
                 self.writer,

@@ -27,8 +27,12 @@ impl Lines<'_> {
                 .map_err(|e| line_problem(e.under(&line_pointer(i))))?;
             preds.write(run, self.writer, Some(&reading.t))?;
             let mut predicted = None;
-            run.step_capturing(&reading, "", Some(&mut predicted))
+            let done = run
+                .step_capturing(&reading, "", Some(&mut predicted))
                 .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
+            if done.skipped {
+                continue;
+            }
             let est = run.estimator();
             let predicted = predicted.map(|(m, p)| (m, p, est.cross().clone()));
             stored.push(Stored {

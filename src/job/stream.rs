@@ -70,12 +70,16 @@ impl Stream {
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;
-        self.run.step(&self.reading, "").map_err(|e| {
+        let done = self.run.step(&self.reading, "").map_err(|e| {
             let mut p = Problem::from(e);
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;
         self.lines += 1;
+        if done.skipped {
+            // A late line skipped under `filter.late: "skip"` has no estimate line.
+            return Ok(());
+        }
         let est = self.run.estimator();
         self.writer.estimate(
             out,
@@ -91,19 +95,9 @@ impl Stream {
     /// The last line `{posterior, summary}`.
     pub(super) fn finish(self, out: &mut Vec<u8>) -> RunStats {
         out.push(b'{');
-        let est = self.run.estimator();
-        self.writer.posterior(
-            out,
-            &self.run.time(),
-            est.mean(),
-            est.covariance(),
-            est.members(),
-            est.step(),
-            self.run.inputs(),
-        );
+        self.writer.posterior(out, &self.run);
         out.push(b',');
-        self.writer
-            .summary(out, &self.run.counts, &self.run.final_warnings());
+        self.writer.summary(out, &self.run);
         out.extend_from_slice(b"}\n");
         stats(&self.run)
     }

@@ -3,9 +3,9 @@
 //! as a prior is read to the same bits), and nothing is built as a tree first.
 
 use crate::diagnostics::nis::NisSummary;
-use crate::diagnostics::warnings::{Warning, Warnings};
+use crate::diagnostics::warnings::Warning;
 use crate::filter::observe::ObsSpace;
-use crate::filter::run::Counts;
+use crate::filter::run::Run;
 use crate::model::{CovarianceOutput, Model, OutputConfig};
 use crate::model::{Instant, TimeMode};
 use nalgebra::{DMatrix, DVector};
@@ -279,52 +279,68 @@ impl Writer {
         buf.push(b']');
     }
 
-    /// `"posterior":{...}`: full covariance always, so it can be sent back exactly.
-    #[allow(clippy::too_many_arguments)]
-    pub fn posterior(
-        &self,
-        buf: &mut Vec<u8>,
-        t: &Instant,
-        mean: &DVector<f64>,
-        cov: &DMatrix<f64>,
-        members: Option<&DMatrix<f64>>,
-        step: u64,
-        inputs: &DVector<f64>,
-    ) {
+    /// `"posterior":{...}` of `run`: full covariance always, so it can be sent back
+    /// exactly, and the chain's `running` tallies.
+    pub fn posterior(&self, buf: &mut Vec<u8>, run: &Run) {
+        let est = run.estimator();
         buf.extend_from_slice(b"\"posterior\":{\"t\":");
-        self.time(buf, t);
+        self.time(buf, &run.time());
         buf.extend_from_slice(b",\"mean\":");
-        self.vector(buf, &self.state_keys, mean.iter().copied());
+        self.vector(buf, &self.state_keys, est.mean().iter().copied());
         buf.extend_from_slice(b",\"covariance\":");
+        let cov = est.covariance();
         self.square(buf, cov.as_slice(), cov.nrows());
         if !self.input_keys.is_empty() {
             buf.extend_from_slice(b",\"inputs\":");
-            self.vector(buf, &self.input_keys, inputs.iter().copied());
+            self.vector(buf, &self.input_keys, run.inputs().iter().copied());
         }
-        if let Some(x) = members {
+        if let Some(x) = est.members() {
             buf.extend_from_slice(b",\"members\":");
             self.matrix(buf, x);
             buf.extend_from_slice(b",\"step\":");
-            buf.extend_from_slice(itoa::Buffer::new().format(step).as_bytes());
+            buf.extend_from_slice(itoa::Buffer::new().format(est.step()).as_bytes());
         }
-        buf.push(b'}');
+        let r = run.running();
+        buf.extend_from_slice(b",\"running\":{\"readings\":");
+        buf.extend_from_slice(itoa::Buffer::new().format(r.readings).as_bytes());
+        buf.extend_from_slice(b",\"nis_sum\":");
+        num(buf, r.nis_sum);
+        buf.extend_from_slice(b",\"dof_sum\":");
+        buf.extend_from_slice(itoa::Buffer::new().format(r.dof_sum).as_bytes());
+        buf.extend_from_slice(b",\"log_likelihood\":");
+        num(buf, r.log_likelihood);
+        buf.extend_from_slice(b",\"judged\":");
+        buf.extend_from_slice(itoa::Buffer::new().format(r.judged).as_bytes());
+        buf.extend_from_slice(b",\"refused\":");
+        buf.extend_from_slice(itoa::Buffer::new().format(r.refused).as_bytes());
+        buf.extend_from_slice(b"}}");
     }
 
     /// `"summary":{...}`.
-    pub fn summary(&self, buf: &mut Vec<u8>, counts: &Counts, warnings: &Warnings) {
+    pub fn summary(&self, buf: &mut Vec<u8>, run: &Run) {
         #[derive(serde::Serialize)]
         struct Summary {
             steps: u64,
             updates: u64,
             rejected: u64,
+            #[serde(skip_serializing_if = "is_zero")]
+            skipped: u64,
+            log_likelihood: f64,
             nis: NisSummary,
         }
+        fn is_zero(x: &u64) -> bool {
+            *x == 0
+        }
+        let counts = &run.counts;
+        let warnings = run.final_warnings();
         buf.extend_from_slice(b"\"summary\":");
         let s = Summary {
             steps: counts.steps,
             updates: counts.updates,
             rejected: counts.rejected,
-            nis: counts.nis.summary(),
+            skipped: counts.skipped,
+            log_likelihood: counts.log_likelihood,
+            nis: run.nis_summary(),
         };
         buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
         // The warnings go inside the object just written: drop its closing brace.

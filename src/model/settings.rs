@@ -85,6 +85,22 @@ pub struct FilterConfig {
     pub integration: Integration,
     /// Gate probability (`None` when every reading is used).
     pub gate: Option<f64>,
+    /// After this many consecutive refusals of one sensor its next reading is taken and
+    /// the states it measures go back to their prior spread (`None`: never).
+    pub reacquire: Option<u64>,
+    /// What a line whose time goes backwards does.
+    pub late: LateLines,
+    /// Longest gap between lines, in seconds (`None`: no limit).
+    pub max_gap: Option<f64>,
+}
+
+/// What a line whose time goes backwards does (`filter.late`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LateLines {
+    /// The request fails with a 422 at the line (the default).
+    Reject,
+    /// The line is skipped with a `late_line_skipped` warning and the run goes on.
+    Skip,
 }
 
 /// The starting point of a run: a Gaussian (and for the ensemble, optionally its members).
@@ -104,6 +120,27 @@ pub struct Prior {
     pub step: u64,
     /// Inputs held at the prior's time.
     pub inputs: DVector<f64>,
+    /// Tallies of the requests before this one in a chain (`prior.running`; zero when
+    /// absent).
+    pub running: Running,
+}
+
+/// What a chain of requests has seen so far (`posterior.running`), so a verdict can cover
+/// the whole history rather than one request.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Running {
+    /// Updates whose NIS is in `nis_sum`.
+    pub readings: u64,
+    /// Sum of their NIS values.
+    pub nis_sum: f64,
+    /// Sum of their degrees of freedom.
+    pub dof_sum: u64,
+    /// Sum of their log-likelihood terms.
+    pub log_likelihood: f64,
+    /// Sensor readings the gate judged.
+    pub judged: u64,
+    /// Of those, refused.
+    pub refused: u64,
 }
 
 /// How much covariance each estimate carries.

@@ -184,6 +184,10 @@ pub enum SpecErrorKind {
     },
     /// A density given for a discrete-time model.
     DensityForDiscrete,
+    /// `filter.reacquire` without a gate to refuse readings.
+    ReacquireWithoutGate,
+    /// `filter.reacquire.after` of zero.
+    ReacquireAfterZero,
     /// A per-step covariance given for a continuous-time model.
     CovarianceForContinuous,
     /// A spread given both as std and as covariance.
@@ -349,6 +353,12 @@ impl fmt::Display for SpecErrorKind {
                 f,
                 "give one of density, density_matrix or covariance, not {}",
                 given.join(" and ")
+            ),
+            K::ReacquireWithoutGate => f.write_str(
+                "reacquire takes back a sensor the gate refused, so it needs filter.gate",
+            ),
+            K::ReacquireAfterZero => f.write_str(
+                "after must be at least 1: the number of refusals in a row before a reading is taken back",
             ),
             K::DensityForDiscrete => f.write_str(
                 "a discrete-time model takes process_noise.covariance (per step), not a density",

@@ -220,10 +220,13 @@ fn share_of_consistent_readings_beyond_the_gate_is_one_minus_p() {
     );
 }
 
-/// Issue 10: a run in which no reading updated the filter (every line empty, or every
-/// reading refused by the gate) used to say `consistent`. There is nothing to judge, so
-/// the verdict is `no_data` and the figures null (common practice: a consistency test
-/// needs at least one innovation).
+/// Issue 10: a run in which no reading updated the filter used to say `consistent`.
+/// With every line empty there is nothing to judge: the verdict is `no_data`, the figures
+/// null (common practice: a consistency test needs at least one innovation) and a
+/// `no_updates` warning says why. With every reading refused by the gate the refusals
+/// are the evidence: two refusals out of two behind a 0.99 gate happen with probability
+/// 0.01² = 1e-4 for a consistent filter (binomial, common practice), so the verdict is
+/// `overconfident`, not `no_data`.
 #[test]
 fn a_run_without_updates_says_no_data() {
     let trolley = json!({
@@ -234,23 +237,34 @@ fn a_run_without_updates_says_no_data() {
     });
     let prior = json!({"t": 0.0, "mean": {"position": 2.0, "velocity": 0.5},
                        "std": {"position": 0.01, "velocity": 0.1}});
-    for (label, measurements, filter) in [
+    for (label, measurements, filter, verdict) in [
         (
             "empty lines",
             json!([{"t": 0.5}, {"t": 1.0}]),
             json!({"method": "ekf"}),
+            "no_data",
         ),
         (
             "every reading refused",
             json!([{"t": 0.5, "values": {"encoder": 40.0}}, {"t": 1.0, "values": {"encoder": -40.0}}]),
             json!({"method": "ukf", "gate": {"probability": 0.99}}),
+            "overconfident",
         ),
     ] {
         let a = ok(&json!({"model": trolley, "filter": filter, "prior": prior,
                            "measurements": measurements}));
         let nis = &a["summary"]["nis"];
-        assert_eq!(nis["verdict"], "no_data", "{label}: {a}");
+        assert_eq!(nis["verdict"], verdict, "{label}: {a}");
+        assert_eq!(nis["running_verdict"], verdict, "{label}: {a}");
         assert!(nis["mean"].is_null(), "{label}: {nis}");
         assert_eq!(a["summary"]["updates"], 0, "{label}: {a}");
+        assert_eq!(a["summary"]["log_likelihood"], 0.0, "{label}: {a}");
+        let kinds: Vec<&str> = a["summary"]["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|w| w["kind"].as_str().unwrap())
+            .collect();
+        assert_eq!(kinds, ["no_updates"], "{label}: {a}");
     }
 }

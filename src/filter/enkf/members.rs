@@ -289,6 +289,27 @@ impl Estimator for Enkf {
         Some(&self.ensemble)
     }
 
+    /// The members' deviations in each state of `states` scaled so that its spread is
+    /// `variances[i]` (a collapsed state, all members equal, is left alone: there is no
+    /// direction to scale). Correlations with other states keep their sign and scale with
+    /// the spread; redrawing members would need random draws outside the step's stream.
+    fn reset_spread(&mut self, states: &[usize], variances: &[f64]) {
+        let nn = self.ensemble.nrows();
+        for &i in states {
+            let col = self.ensemble.column(i);
+            let mean = col.iter().sum::<f64>() / nn as f64;
+            let var = col.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / (nn as f64 - 1.0);
+            if var > 0.0 && variances[i] > 0.0 {
+                let f = (variances[i] / var).sqrt();
+                for x in self.ensemble.column_mut(i).iter_mut() {
+                    *x = mean + (*x - mean) * f;
+                }
+            }
+        }
+        self.refresh_mean();
+        self.cov_stale = true;
+    }
+
     fn advance_step(&mut self) {
         self.step += 1;
     }

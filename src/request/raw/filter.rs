@@ -24,6 +24,16 @@ pub struct RawFilter<'a> {
     /// Innovation gate.
     #[serde(default)]
     pub gate: Option<Field<RawGate>>,
+    /// Taking a locked-out sensor back.
+    #[serde(default)]
+    pub reacquire: Option<Field<RawReacquire>>,
+    /// `reject` or `skip`: what a line whose time goes backwards does.
+    #[serde(default)]
+    #[serde(borrow)]
+    pub late: Option<Field<&'a str>>,
+    /// Longest gap between lines, seconds.
+    #[serde(default)]
+    pub max_gap: Option<Field<f64>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
@@ -31,8 +41,16 @@ pub struct RawFilter<'a> {
 
 impl RawFilter<'_> {
     /// The section's fields, in the order messages list them.
-    pub const KNOWN: &'static [&'static str] =
-        &["method", "unscented", "ensemble", "integration", "gate"];
+    pub const KNOWN: &'static [&'static str] = &[
+        "method",
+        "unscented",
+        "ensemble",
+        "integration",
+        "gate",
+        "reacquire",
+        "late",
+        "max_gap",
+    ];
 }
 
 /// `filter.unscented`.
@@ -124,10 +142,27 @@ impl RawGate {
     pub const KNOWN: &'static [&'static str] = &["probability"];
 }
 
+/// `filter.reacquire`.
+#[derive(Debug, Deserialize)]
+pub struct RawReacquire {
+    /// Consecutive refusals of one sensor after which its next reading is taken.
+    #[serde(default)]
+    pub after: Option<Field<u64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawReacquire {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["after"];
+}
+
 an_object!(
     RawFilter<'_>,
     RawUnscented,
     RawEnsemble<'_>,
     RawIntegration,
-    RawGate
+    RawGate,
+    RawReacquire
 );

@@ -21,10 +21,10 @@ mod prior;
 mod tests;
 
 pub use field::{kind_of, section, Entries, Expected, Field, Matrix};
-pub use filter::{RawEnsemble, RawFilter, RawGate, RawIntegration, RawUnscented};
+pub use filter::{RawEnsemble, RawFilter, RawGate, RawIntegration, RawReacquire, RawUnscented};
 pub use model::{
     FormulaText, Measures, RawDynamics, RawEstimated, RawLinear, RawModel, RawParameter,
     RawProcessNoise, RawSensor, Spread,
 };
 pub use output::RawOutput;
-pub use prior::{RawPrior, RawTime};
+pub use prior::{RawPrior, RawRunning, RawTime};

@@ -45,9 +45,50 @@ pub struct RawPrior<'a> {
     #[serde(default)]
     #[serde(borrow)]
     pub inputs: Option<Field<Entries<'a, f64>>>,
+    /// Tallies of the chain so far (a posterior's `running`).
+    #[serde(default)]
+    pub running: Option<Field<RawRunning>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
+}
+
+/// `prior.running`: what a chain of requests has tallied (a posterior's own).
+#[derive(Debug, Deserialize)]
+pub struct RawRunning {
+    /// Updates counted.
+    #[serde(default)]
+    pub readings: Option<Field<u64>>,
+    /// Sum of their NIS.
+    #[serde(default)]
+    pub nis_sum: Option<Field<f64>>,
+    /// Sum of their degrees of freedom.
+    #[serde(default)]
+    pub dof_sum: Option<Field<u64>>,
+    /// Sum of their log-likelihood terms.
+    #[serde(default)]
+    pub log_likelihood: Option<Field<f64>>,
+    /// Readings judged by the gate.
+    #[serde(default)]
+    pub judged: Option<Field<u64>>,
+    /// Of those, refused.
+    #[serde(default)]
+    pub refused: Option<Field<u64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawRunning {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &[
+        "readings",
+        "nis_sum",
+        "dof_sum",
+        "log_likelihood",
+        "judged",
+        "refused",
+    ];
 }
 
 impl RawPrior<'_> {
@@ -60,10 +101,11 @@ impl RawPrior<'_> {
         "members",
         "step",
         "inputs",
+        "running",
     ];
 }
 
-an_object!(RawPrior<'_>);
+an_object!(RawPrior<'_>, RawRunning);
 
 by_json_type!(RawTime<'a> {
     number: |n| RawTime::Seconds(n.as_f64().unwrap_or(f64::NAN)),

@@ -4,10 +4,14 @@ use super::common::{
     non_negative, number, optional, positive, required, typed, unknown_fields, whole,
 };
 use crate::config::Limits;
-use crate::model::{Ensemble, EnsembleUpdate, FilterConfig, Integration, Method, Unscented};
+use crate::model::{
+    Ensemble, EnsembleUpdate, FilterConfig, Integration, LateLines, Method, Unscented,
+};
 use crate::problem::FieldError;
 use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::request::raw::{self, RawEnsemble, RawFilter, RawGate, RawIntegration, RawUnscented};
+use crate::request::raw::{
+    self, RawEnsemble, RawFilter, RawGate, RawIntegration, RawReacquire, RawUnscented,
+};
 use crate::request::reader::child;
 use serde_json::Value;
 
@@ -60,12 +64,39 @@ fn checked(
     });
     let gate =
         optional(&f.gate, ptr, "gate", errs).and_then(|g| gate(g, &child(ptr, "gate"), errs));
+    let reacquire = optional(&f.reacquire, ptr, "reacquire", errs)
+        .and_then(|r| reacquire(r, &child(ptr, "reacquire"), errs));
+    if reacquire.is_some() && gate.is_none() {
+        errs.push(child(ptr, "reacquire"), SpecErrorKind::ReacquireWithoutGate);
+    }
+    let late = match optional(&f.late, ptr, "late", errs).copied() {
+        Some("reject") | None => LateLines::Reject,
+        Some("skip") => LateLines::Skip,
+        Some(other) => {
+            errs.push(
+                child(ptr, "late"),
+                SpecErrorKind::NotAChoice {
+                    what: "late",
+                    choices: &["reject", "skip"],
+                    found: other.to_string(),
+                },
+            );
+            LateLines::Reject
+        }
+    };
+    let max_gap = f
+        .max_gap
+        .as_ref()
+        .and_then(|g| positive(g, &child(ptr, "max_gap"), "max_gap", errs));
     Some(FilterConfig {
         method: method?,
         unscented,
         ensemble,
         integration,
         gate,
+        reacquire,
+        late,
+        max_gap,
     })
 }
 
@@ -195,6 +226,17 @@ fn integration(i: &RawIntegration, ptr: &str, errs: &mut SpecErrors) -> Integrat
     out
 }
 
+fn reacquire(r: &RawReacquire, ptr: &str, errs: &mut SpecErrors) -> Option<u64> {
+    unknown_fields(&r.unknown, ptr, RawReacquire::KNOWN, &[], errs);
+    let ap = child(ptr, "after");
+    let k = *required(&r.after, ptr, "after", errs)?;
+    if k == 0 {
+        errs.push(&ap, SpecErrorKind::ReacquireAfterZero);
+        return None;
+    }
+    Some(k)
+}
+
 fn gate(g: &RawGate, ptr: &str, errs: &mut SpecErrors) -> Option<f64> {
     unknown_fields(&g.unknown, ptr, RawGate::KNOWN, &[], errs);
     let pp = child(ptr, "probability");
@@ -255,7 +297,7 @@ mod tests {
             "smoother": true
         })));
         let want = [
-            ("/filter/smoother", "unknown field 'smoother'; expected one of method, unscented, ensemble, integration, gate"),
+            ("/filter/smoother", "unknown field 'smoother'; expected one of method, unscented, ensemble, integration, gate, reacquire, late, max_gap"),
             ("/filter/method", "unknown method 'kalman'; methods are ekf, ukf, enkf"),
             ("/filter/unscented/alpha", "alpha must be positive, got -1"),
             ("/filter/unscented/beta", "expected a number, found a string"),

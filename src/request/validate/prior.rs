@@ -2,14 +2,14 @@
 //! an ensemble, its members), checked against the model.
 
 use super::common::{
-    check_covariance, matrix, non_negative, number, optional, present, required, time, typed,
-    unknown_fields, whole,
+    check_covariance, finite, matrix, non_negative, number, optional, present, required, time,
+    typed, unknown_fields, whole,
 };
 use crate::model::TimeMode;
-use crate::model::{FilterConfig, Method, Model, Prior};
+use crate::model::{FilterConfig, Method, Model, Prior, Running};
 use crate::problem::FieldError;
 use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::request::raw::{self, Entries, RawPrior};
+use crate::request::raw::{self, Entries, Field, RawPrior, RawRunning};
 use crate::request::reader::child;
 use nalgebra::{DMatrix, DVector};
 use serde_json::Value;
@@ -175,7 +175,11 @@ fn checked(
             _ => errs.push(&mp, SpecErrorKind::MembersWithoutEnsemble),
         }
     }
+    let running = optional(&p.running, ptr, "running", errs)
+        .map(|r| running(r, &at("running"), errs))
+        .unwrap_or_default();
     Some(Prior {
+        running,
         t: t?,
         mode: mode.unwrap_or(TimeMode::Seconds),
         mean,
@@ -184,6 +188,50 @@ fn checked(
         step,
         inputs,
     })
+}
+
+/// `prior.running`, as a posterior wrote it: every field is required (a partial tally
+/// would give a verdict over a history it does not describe), counts whole, sums finite,
+/// NIS and degrees of freedom not negative, refusals no more than the readings judged.
+fn running(r: &RawRunning, ptr: &str, errs: &mut SpecErrors) -> Running {
+    unknown_fields(&r.unknown, ptr, RawRunning::KNOWN, &[], errs);
+    let at = |k: &str| child(ptr, k);
+    let count = |f: &Option<Field<u64>>, k: &str, errs: &mut SpecErrors| {
+        required(f, ptr, k, errs).copied().unwrap_or(0)
+    };
+    let sum = |f: &Option<Field<f64>>, k: &str, errs: &mut SpecErrors| {
+        required(f, ptr, k, errs)
+            .and_then(|x| finite(*x, &at(k), errs))
+            .unwrap_or(0.0)
+    };
+    let out = Running {
+        readings: count(&r.readings, "readings", errs),
+        nis_sum: sum(&r.nis_sum, "nis_sum", errs),
+        dof_sum: count(&r.dof_sum, "dof_sum", errs),
+        log_likelihood: sum(&r.log_likelihood, "log_likelihood", errs),
+        judged: count(&r.judged, "judged", errs),
+        refused: count(&r.refused, "refused", errs),
+    };
+    if out.nis_sum < 0.0 {
+        errs.push(
+            at("nis_sum"),
+            SpecErrorKind::Negative {
+                what: "nis_sum",
+                value: out.nis_sum,
+            },
+        );
+    }
+    if out.refused > out.judged {
+        errs.push(
+            at("refused"),
+            SpecErrorKind::OutOfRange {
+                what: "refused",
+                range: "at most running.judged",
+                value: out.refused as f64,
+            },
+        );
+    }
+    out
 }
 
 /// The prior std per state as variances on the diagonal of `cov`, over the first `dim`
@@ -285,7 +333,7 @@ mod tests {
             "step": 1.5, "members": [[0, 0, 0]], "colour": "red"
         })));
         let want = [
-            ("/prior/colour", "unknown field 'colour'; expected one of t, mean, std, covariance, members, step, inputs"),
+            ("/prior/colour", "unknown field 'colour'; expected one of t, mean, std, covariance, members, step, inputs, running"),
             ("/prior/mean/pos", "expected a number, found a string"),
             ("/prior/mean/belt", "unknown name 'belt'; known names are pos, speed, slip"),
             ("/prior/mean/speed", "missing prior mean of state 'speed'"),
