@@ -80,7 +80,7 @@ pub struct Run {
     streaks: Vec<(u64, Instant)>,
     /// Per sensor: whether it was read at the current time already (duplicate times).
     read_now: Vec<bool>,
-    /// Per sensor: the states its formula reads (what `filter.reacquire` resets).
+    /// Per sensor: the states its readings inform (what `filter.reacquire` resets).
     measured: Vec<Vec<usize>>,
     /// The request's prior variances (what `filter.reacquire` resets to).
     prior_var: Vec<f64>,
@@ -204,6 +204,47 @@ fn has_process_noise(model: &Model) -> bool {
     (0..nm).any(|i| (0..nm).any(|j| q[(i, j)] != 0.0))
 }
 
+/// The states sensor `s`'s readings inform: those its formula reads, and every state that
+/// drives one of those through the dynamics, directly or not (structurally: a formula
+/// that reads it, or a non-zero entry off the diagonal of A or F). A position encoder on
+/// a cart informs position and velocity; `filter.reacquire` resets them all, since
+/// resetting only the position would leave a wrong, confident velocity to lock the
+/// sensor out again.
+fn informed_states(model: &Model, s: usize) -> Vec<usize> {
+    let (n, nm) = (model.n(), model.n_model);
+    let sensor = &model.sensors[s];
+    let mut set: Vec<bool> = (0..n)
+        .map(|i| (0..sensor.dim).any(|o| sensor.program.depends_on(o, i)))
+        .collect();
+    let drives = |i: usize, j: usize| -> bool {
+        if i == j || i >= nm {
+            return false;
+        }
+        match &model.dynamics {
+            Dynamics::Rates(p) | Dynamics::Next(p) => p.depends_on(i, j),
+            Dynamics::Linear { matrix, .. } => matrix[(i, j)] != 0.0,
+        }
+    };
+    loop {
+        let mut grew = false;
+        for i in 0..n {
+            if !set[i] {
+                continue;
+            }
+            for j in 0..n {
+                if !set[j] && drives(i, j) {
+                    set[j] = true;
+                    grew = true;
+                }
+            }
+        }
+        if !grew {
+            break;
+        }
+    }
+    (0..n).filter(|&i| set[i]).collect()
+}
+
 /// Time of a failing step in messages.
 fn fmt_time(t: &Instant, mode: TimeMode) -> String {
     match mode {
@@ -247,14 +288,8 @@ impl Run {
             ),
         };
         let n = model.n();
-        let measured = model
-            .sensors
-            .iter()
-            .map(|s| {
-                (0..n)
-                    .filter(|&i| (0..s.dim).any(|o| s.program.depends_on(o, i)))
-                    .collect()
-            })
+        let measured = (0..model.sensors.len())
+            .map(|s| informed_states(&model, s))
             .collect();
         let thresholds = cfg.gate.map(|p| {
             model
@@ -486,8 +521,9 @@ impl Run {
 
     /// Whether this line's gate is `gate_now` rather than the plain thresholds. A sensor
     /// refused `filter.reacquire.after` times in a row is taken back: its threshold is
-    /// opened for this line and the states it reads go back to the request's prior spread
-    /// (correlations with them dropped), with a `reacquired` warning.
+    /// opened for this line and the states its readings inform ([`informed_states`]) go
+    /// back to the request's prior spread (correlations with them dropped), with a
+    /// `reacquired` warning.
     fn reacquire(&mut self, r: &Reading) -> bool {
         let (Some(after), Some(base)) = (self.cfg.reacquire, self.thresholds.as_deref()) else {
             return false;
@@ -506,7 +542,7 @@ impl Run {
             );
             self.warnings
                 .note(WarningKind::Reacquired, Some(s), None, r.t, || {
-                    format!("sensor '{name}' was taken back at {at} after {k} refusals in a row; the states it reads were reset to their prior spread").into()
+                    format!("sensor '{name}' was taken back at {at} after {k} refusals in a row; the states its readings inform were reset to their prior spread").into()
                 });
         }
         true

@@ -15,3 +15,4 @@ mod r7_r8_ensemble;
 mod r9_parameter;
 mod resume;
 mod support;
+mod trust;
