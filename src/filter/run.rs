@@ -287,7 +287,6 @@ impl Run {
                 .map_err(RunError::Ensemble)?,
             ),
         };
-        let n = model.n();
         let measured = (0..model.sensors.len())
             .map(|s| informed_states(&model, s))
             .collect();
