@@ -3,15 +3,19 @@
 //!
 //! The truth starts from a draw of the prior and moves like one ensemble member: the
 //! deterministic flow over each gap plus a draw of the interval's process noise
-//! N(0, Q(Δ)). Each sensor reads h(x) + L_R ε on its own schedule (`every` k-th time), with
-//! optional dropout and gross outliers (`scale` times the noise) for exercising the gate.
+//! N(0, Q(Δ)). Inputs follow their own schedule and are held between changes (zero-order
+//! hold): every gap is split at each input change inside it, so a change acts from its own
+//! time whatever the sampling times. Each sensor reads h(x) + L_R ε on its own schedule (`every`
+//! k-th time), with optional dropout and gross outliers (`scale` times the noise) for
+//! exercising the gate; each sample says which of its readings were made outliers and
+//! which were dropped, so a test can tell injected faults from ordinary noise.
 //!
 //! Nothing here knows about requests or JSON: [`run`] hands each time's truth and readings
 //! to a [`Sink`]; `POST /v1/simulate` ([`crate::job`]) parses the request and writes them.
 
 use crate::filter::predict::Predictor;
 use crate::linalg::cholesky_psd;
-use crate::model::Instant;
+use crate::model::{Instant, TimeMode};
 use crate::model::{Integration, Model, Prior};
 use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
@@ -48,11 +52,14 @@ impl Default for Schedule {
 pub struct Plan<'a> {
     /// The model that moves the truth and makes the readings.
     pub model: &'a Model,
-    /// The truth's first state is drawn from this belief, at its time.
+    /// The truth's first state is drawn from this belief, at its time; its inputs are the
+    /// ones in force until the first change.
     pub prior: &'a Prior,
-    /// The times of the truth and readings, not decreasing, none before the prior's.
+    /// The sampling times of the readings, not decreasing, none before the prior's.
     pub times: &'a [Instant],
-    /// Input changes `(time, [(input index, value)])`, in time order.
+    /// Input changes `(time, [(input index, value)])`, their times strictly increasing and
+    /// none before the prior's. Each acts from its own time; changes after the last
+    /// sampling time have no effect.
     pub inputs: &'a [(Instant, Vec<(usize, f64)>)],
     /// One schedule per sensor, in model order.
     pub schedules: &'a [Schedule],
@@ -63,15 +70,20 @@ pub struct Plan<'a> {
 /// The truth and readings at one time.
 #[derive(Debug)]
 pub struct Sample<'a> {
-    /// Index into the plan's times.
-    pub index: usize,
+    /// Index into the plan's sampling times, or `None` for an input change that falls
+    /// between them (such a sample has no readings, only the change).
+    pub index: Option<usize>,
     /// The time.
     pub t: &'a Instant,
     /// The true state, in model order.
     pub state: &'a [f64],
     /// The readings taken, in sensor order: sensor index and its values.
     pub readings: &'a [(usize, Vec<f64>)],
-    /// Inputs that changed at this time `(input index, value)`, each once.
+    /// Sensors (indices, in sensor order) whose reading here was made a gross outlier.
+    pub outliers: &'a [usize],
+    /// Sensors (indices, in sensor order) that were due here but left out (dropout).
+    pub dropped: &'a [usize],
+    /// Inputs that changed at this time `(input index, value)`.
     pub changed: &'a [(usize, f64)],
 }
 
@@ -89,10 +101,10 @@ pub enum SimulateError {
     Cancelled,
     /// The prior covariance has no square root.
     PriorNotPsd,
-    /// Propagating the truth failed at time `index`.
+    /// Propagating the truth to time `at` failed.
     Propagation {
-        /// Index into the plan's times.
-        index: usize,
+        /// The end of the interval that failed.
+        at: Instant,
         /// What went wrong.
         reason: String,
     },
@@ -104,14 +116,81 @@ pub enum SimulateError {
     NonFiniteReading {
         /// The sensor's name.
         sensor: String,
-        /// Index into the plan's times.
-        index: usize,
+        /// The sampling time.
+        at: Instant,
     },
 }
 
-/// Simulate `plan`, handing each time's sample to `sink`. `cancel` is polled every 256
-/// times. Every draw comes from one ChaCha20 stream seeded with `plan.seed`, in a fixed
-/// order, so the same plan gives the same samples on every platform.
+/// The true state and what moves it from one time to the next.
+struct Truth<'m> {
+    model: &'m Model,
+    pred: Predictor,
+    mode: TimeMode,
+    /// The state, as the single row of a point matrix (what the predictor moves).
+    x: DMatrix<f64>,
+    /// The time of `x`.
+    t: Instant,
+    /// Process noise covariance of the last interval and its lower Cholesky factor.
+    q: DMatrix<f64>,
+    l: Vec<f64>,
+    /// Standard normal draws of one noise vector.
+    z: Vec<f64>,
+}
+
+impl Truth<'_> {
+    /// Move the state from its time to `to` with the inputs `u` held over the whole
+    /// interval: the deterministic flow, then one draw of the interval's process noise
+    /// N(0, Q(Δ)) as L z with Q(Δ) = L Lᵀ (common practice). Callers split a gap at every
+    /// input change, so `u` is truly constant here. For a time-invariant continuous model
+    /// the noise of the pieces adds up to the noise of the whole gap (independent
+    /// increments); a discrete map adds its per-step noise on each piece, as estimate does
+    /// for the line a change gets.
+    fn advance(
+        &mut self,
+        to: &Instant,
+        u: &[f64],
+        rng: &mut ChaCha20Rng,
+    ) -> Result<(), SimulateError> {
+        let n = self.model.n();
+        let dt = self.t.until(to, self.mode);
+        if dt > 0.0 {
+            let noisy = self
+                .pred
+                .predict_points(
+                    self.model,
+                    &mut self.x,
+                    &[1.0],
+                    u,
+                    self.t.secs,
+                    dt,
+                    &mut self.q,
+                )
+                .map_err(|e| SimulateError::Propagation {
+                    at: *to,
+                    reason: e.to_string(),
+                })?;
+            if noisy {
+                cholesky_psd(self.q.as_slice(), &mut self.l, n)
+                    .map_err(|_| SimulateError::ProcessNoiseNotPsd)?;
+                for z in self.z.iter_mut() {
+                    *z = rng.sample(StandardNormal);
+                }
+                let (l, z) = (&self.l, &self.z);
+                for i in 0..n {
+                    self.x[(0, i)] += (0..=i).map(|c| l[i + c * n] * z[c]).sum::<f64>();
+                }
+            }
+        }
+        self.t = *to;
+        Ok(())
+    }
+}
+
+/// Simulate `plan`, handing each time's sample to `sink`: one per sampling time, plus one
+/// per input change that falls strictly between sampling times (or between the prior's
+/// time and the first), in time order. `cancel` is polled every 256 sampling times.
+/// Every draw comes from one ChaCha20 stream seeded with `plan.seed`, in a fixed order,
+/// so the same plan gives the same samples on every platform.
 pub fn run(
     plan: &Plan<'_>,
     cancel: &AtomicBool,
@@ -141,10 +220,17 @@ pub fn run(
         atol: 1e-12,
         fixed_step: None,
     };
-    let mut pred = Predictor::new(model, integration, 1);
-    let mut q = DMatrix::zeros(n, n);
+    let mut truth = Truth {
+        model,
+        pred: Predictor::new(model, integration, 1),
+        mode,
+        x,
+        t: prior.t,
+        q: DMatrix::zeros(n, n),
+        l,
+        z,
+    };
     let mut u = prior.inputs.clone();
-    let mut t = prior.t;
     let mut next_input = 0;
     let mut vars = vec![0.0; model.slot_count()];
     let mut ws: Vec<_> = model
@@ -155,42 +241,51 @@ pub fn run(
     let mut zbuf = vec![0.0; model.sensors.iter().map(|s| s.dim).max().unwrap_or(1)];
     let mut lr = vec![0.0; zbuf.len() * zbuf.len()];
     let mut readings: Vec<(usize, Vec<f64>)> = Vec::with_capacity(model.sensors.len());
+    let mut outliers: Vec<usize> = Vec::with_capacity(model.sensors.len());
+    let mut dropped: Vec<usize> = Vec::with_capacity(model.sensors.len());
+    let mut changed: Vec<(usize, f64)> = Vec::with_capacity(nu);
     for (k, tk) in times.iter().enumerate() {
         if k % 256 == 0 && cancel.load(Ordering::Relaxed) {
             return Err(SimulateError::Cancelled);
         }
-        let dt = t.until(tk, mode);
-        if dt > 0.0 {
-            let noisy = pred
-                .predict_points(model, &mut x, &[1.0], u.as_slice(), t.secs, dt, &mut q)
-                .map_err(|e| SimulateError::Propagation {
-                    index: k,
-                    reason: e.to_string(),
-                })?;
-            if noisy {
-                cholesky_psd(q.as_slice(), &mut l, n)
-                    .map_err(|_| SimulateError::ProcessNoiseNotPsd)?;
-                let z: Vec<f64> = (0..n).map(|_| rng.sample(StandardNormal)).collect();
-                for i in 0..n {
-                    x[(0, i)] += (0..=i).map(|c| l[i + c * n] * z[c]).sum::<f64>();
-                }
+        // Changes strictly before this sampling time: move the truth to each change's own
+        // time, switch the inputs there and report that time as a sample of its own, so
+        // the measurements carry the change at the time it acted.
+        while let Some((tc, vals)) = inputs.get(next_input).filter(|c| tk.is_after(&c.0, mode)) {
+            truth.advance(tc, u.as_slice(), &mut rng)?;
+            changed.clear();
+            for &(i, v) in vals {
+                u[i] = v;
+                changed.push((i, v));
             }
+            next_input += 1;
+            sink.sample(&Sample {
+                index: None,
+                t: tc,
+                state: truth.x.as_slice(),
+                readings: &[],
+                outliers: &[],
+                dropped: &[],
+                changed: &changed,
+            });
         }
-        t = *tk;
-        // Input changes due by now take effect at this time (and are reported with it).
-        let mut changed: Vec<(usize, f64)> = Vec::new();
-        while next_input < inputs.len() && !inputs[next_input].0.is_after(tk, mode) {
-            for &(i, v) in &inputs[next_input].1 {
+        truth.advance(tk, u.as_slice(), &mut rng)?;
+        // A change at exactly this time acts from now: the readings below already see it.
+        changed.clear();
+        while let Some((_, vals)) = inputs.get(next_input).filter(|c| !c.0.is_after(tk, mode)) {
+            for &(i, v) in vals {
                 u[i] = v;
                 changed.retain(|c| c.0 != i);
                 changed.push((i, v));
             }
             next_input += 1;
         }
-        vars[..n].copy_from_slice(x.row(0).transpose().as_slice());
+        vars[..n].copy_from_slice(truth.x.as_slice());
         vars[n..n + nu].copy_from_slice(u.as_slice());
         vars[n + nu] = tk.secs;
         readings.clear();
+        outliers.clear();
+        dropped.clear();
         for (si, s) in model.sensors.iter().enumerate() {
             let sc = sched[si];
             if k as u64 % sc.every != 0 {
@@ -202,6 +297,7 @@ pub fn run(
             let outlier = rng.gen::<f64>() < sc.outlier_probability;
             let eps: Vec<f64> = (0..s.dim).map(|_| rng.sample(StandardNormal)).collect();
             if drop {
+                dropped.push(si);
                 continue;
             }
             let slots = s.program.slots();
@@ -217,18 +313,23 @@ pub fn run(
                 if !v.is_finite() {
                     return Err(SimulateError::NonFiniteReading {
                         sensor: s.name.clone(),
-                        index: k,
+                        at: *tk,
                     });
                 }
                 values.push(v);
             }
+            if outlier {
+                outliers.push(si);
+            }
             readings.push((si, values));
         }
         sink.sample(&Sample {
-            index: k,
+            index: Some(k),
             t: tk,
-            state: x.as_slice(),
+            state: truth.x.as_slice(),
             readings: &readings,
+            outliers: &outliers,
+            dropped: &dropped,
             changed: &changed,
         });
     }

@@ -1,15 +1,24 @@
 //! `POST /v1/simulate`: parse `{model, prior, times, inputs?, sampling?, seed?}`, run
 //! [`crate::simulate`] and write its truth and readings as JSON, the readings in exactly
 //! the form the estimate endpoint accepts.
+//!
+//! `inputs` is a schedule of changes with their own times; every fault in it is refused
+//! with a pointer to the entry's field. The answer has one line per sampling time plus one
+//! per input change between sampling times (its measurement line carries only the change,
+//! so estimate switches the inputs when the truth did), and each truth line marks the
+//! readings made outliers (`injected`) and left out (`dropped`): the marks stay off the
+//! measurement lines, which estimate refuses unknown fields on.
 
 use crate::config::Limits;
 use crate::job::write::{num, Writer};
 use crate::job::{Done, RunStats};
-use crate::model::Model;
+use crate::model::{Dynamics, LinearTime, Model, Prior};
 use crate::model::{Instant, TimeMode};
 use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope;
-use crate::request::reader::{array, index, number, positive, whole, Errors, Obj};
+use crate::request::reader::{
+    self, array, index, names_list, number, positive, whole, Errors, Obj,
+};
 use crate::request::validate;
 use crate::simulate::{self, Plan, Sample, Schedule, SimulateError, Sink};
 use serde_json::Value;
@@ -144,10 +153,22 @@ fn times(
     }
 }
 
-/// Input change points `[{"t", "inputs": {...}}]`, each as in a measurement line.
+/// A time as messages show it: seconds, or the RFC 3339 form.
+fn show(t: &Instant, mode: TimeMode) -> String {
+    match mode {
+        TimeMode::Seconds => t.secs.to_string(),
+        TimeMode::Stamp => t.to_rfc3339(),
+    }
+}
+
+/// The input schedule `[{"t", "inputs": {name: value}}]`: each entry is a change that acts
+/// from its own time and holds until the next (zero-order hold). Times strictly increase
+/// (inputs that change together share one entry) and none comes before the prior, whose
+/// `inputs` hold until the first change; every problem names its field.
 fn input_schedule(
     v: Option<Value>,
     model: &Model,
+    prior: &Prior,
     mode: &mut Option<TimeMode>,
     errs: &mut Errors,
 ) -> Vec<(Instant, Vec<(usize, f64)>)> {
@@ -155,7 +176,8 @@ fn input_schedule(
     let Some(items) = array(&v, "/inputs", errs) else {
         return Vec::new();
     };
-    let mut out = Vec::with_capacity(items.len());
+    let m = prior.mode;
+    let mut out: Vec<(Instant, Vec<(usize, f64)>)> = Vec::with_capacity(items.len());
     for (i, it) in items.iter().enumerate() {
         let p = index("/inputs", i);
         let Some(o) = Obj::new(it, &p, errs) else {
@@ -165,19 +187,59 @@ fn input_schedule(
         let t = o
             .required("t", errs)
             .and_then(|t| validate::time_value(t, &o.at("t"), mode, errs));
+        if let Some(t) = &t {
+            if prior.t.is_after(t, m) {
+                errs.push(
+                    &o.at("t"),
+                    format!(
+                        "an input change at {} comes before the prior's time {}; the prior's \
+                         'inputs' hold the values in force at the start",
+                        show(t, m),
+                        show(&prior.t, m)
+                    ),
+                );
+            } else if let Some((last, _)) = out.last().filter(|(last, _)| !t.is_after(last, m)) {
+                errs.push(
+                    &o.at("t"),
+                    format!(
+                        "input change times must increase: {} is not after {} (the entry \
+                         before); inputs that change together go in one entry",
+                        show(t, m),
+                        show(last, m)
+                    ),
+                );
+            } else if let Some(dt) = grid_step(model) {
+                let k = prior.t.until(t, m) / dt;
+                if (k - k.round()).abs() > 1e-6 {
+                    errs.push(
+                        &o.at("t"),
+                        format!(
+                            "{} is not on the model's grid prior.t + k·{dt}: a discrete \
+                             model holds its inputs over whole steps",
+                            show(t, m)
+                        ),
+                    );
+                }
+            }
+        }
         let mut vals = Vec::new();
         if let Some(vo) = o
             .required("inputs", errs)
             .and_then(|x| Obj::new(x, &o.at("inputs"), errs))
         {
             for (k, x) in vo.map {
-                match model.input_index(k) {
-                    Some(ix) => {
-                        if let Some(x) = number(x, &vo.at(k), errs) {
-                            vals.push((ix, x));
-                        }
-                    }
-                    None => errs.push(&vo.at(k), format!("unknown input '{k}'")),
+                let Some(ix) = model.input_index(k) else {
+                    errs.push(
+                        &vo.at(k),
+                        format!(
+                            "unknown input '{k}'; inputs are {}",
+                            names_list(&model.inputs)
+                        ),
+                    );
+                    continue;
+                };
+                if let Some(x) = number(x, &vo.at(k), errs) {
+                    vals.push((ix, x));
                 }
             }
         }
@@ -186,6 +248,17 @@ fn input_schedule(
         }
     }
     out
+}
+
+/// The step of a discrete linear model, whose inputs can only change on its grid.
+fn grid_step(model: &Model) -> Option<f64> {
+    match &model.dynamics {
+        Dynamics::Linear {
+            time: LinearTime::Discrete { dt },
+            ..
+        } => Some(*dt),
+        _ => None,
+    }
 }
 
 /// `POST /v1/simulate`.
@@ -207,12 +280,12 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
     let mut errs = Errors::default();
     let mut mode = Some(prior.mode);
     let times = times(&times_v, &mut mode, limits, &mut errs);
-    let inputs = input_schedule(
-        envelope::optional_section(env.inputs)?,
-        &model,
-        &mut mode,
-        &mut errs,
-    );
+    let inputs_v = env
+        .inputs
+        .map(|r| reader::parse_section(r.get(), "/inputs"))
+        .transpose()
+        .map_err(|e| Problem::invalid(vec![e]))?;
+    let inputs = input_schedule(inputs_v, &model, &prior, &mut mode, &mut errs);
     let seed = match envelope::optional_section(env.seed)? {
         Some(s) => whole(&s, "/seed", &mut errs).unwrap_or(0),
         None => 0,
@@ -236,6 +309,7 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         writer: Writer::new(&model, mode, Default::default()),
         truth: Vec::with_capacity(times.len() * 32 * (n + 1)),
         meas: Vec::with_capacity(times.len() * 48),
+        lines: 0,
     };
     let plan = Plan {
         model: &model,
@@ -245,11 +319,12 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         schedules: &sched,
         seed,
     };
-    simulate::run(&plan, cancel, &mut out).map_err(problem)?;
+    simulate::run(&plan, cancel, &mut out).map_err(|e| problem(e, mode))?;
     let Json {
         writer,
         truth,
         meas,
+        lines,
         ..
     } = out;
     let mut buf = Vec::with_capacity(truth.len() + meas.len() + 128);
@@ -266,19 +341,27 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         body: buf,
         stats: RunStats {
             filter: "",
-            steps: times.len() as u64,
+            steps: lines,
             updates: 0,
             rejected: 0,
         },
     })
 }
 
-/// The truth and measurement lists of the answer, written as the samples arrive.
+/// The truth and measurement lists of the answer, written as the samples arrive: line i
+/// of one is line i of the other, at the same time.
 struct Json<'a> {
     model: &'a Model,
     writer: Writer,
     truth: Vec<u8>,
     meas: Vec<u8>,
+    /// Lines written so far.
+    lines: u64,
+}
+
+/// `"name"` as a JSON string.
+fn quoted(buf: &mut Vec<u8>, name: &str) {
+    buf.extend_from_slice(&serde_json::to_vec(name).unwrap_or_default());
 }
 
 impl Sink for Json<'_> {
@@ -288,11 +371,13 @@ impl Sink for Json<'_> {
             writer,
             truth,
             meas,
+            lines,
         } = self;
-        if s.index > 0 {
+        if *lines > 0 {
             truth.push(b',');
             meas.push(b',');
         }
+        *lines += 1;
         truth.extend_from_slice(b"{\"t\":");
         writer.time(truth, s.t);
         truth.extend_from_slice(b",\"state\":{");
@@ -300,44 +385,70 @@ impl Sink for Json<'_> {
             if i > 0 {
                 truth.push(b',');
             }
-            truth.extend_from_slice(&serde_json::to_vec(&model.states[i]).unwrap_or_default());
+            quoted(truth, &model.states[i]);
             truth.push(b':');
             num(truth, *x);
         }
-        truth.extend_from_slice(b"}}");
+        truth.push(b'}');
+        // The marks live on the truth line, not the measurement line, so the measurements
+        // stay exactly what estimate accepts.
+        if !s.outliers.is_empty() {
+            truth.extend_from_slice(b",\"injected\":{");
+            for (j, si) in s.outliers.iter().enumerate() {
+                if j > 0 {
+                    truth.push(b',');
+                }
+                quoted(truth, &model.sensors[*si].name);
+                truth.extend_from_slice(b":\"outlier\"");
+            }
+            truth.push(b'}');
+        }
+        if !s.dropped.is_empty() {
+            truth.extend_from_slice(b",\"dropped\":[");
+            for (j, si) in s.dropped.iter().enumerate() {
+                if j > 0 {
+                    truth.push(b',');
+                }
+                quoted(truth, &model.sensors[*si].name);
+            }
+            truth.push(b']');
+        }
+        truth.push(b'}');
         meas.extend_from_slice(b"{\"t\":");
         writer.time(meas, s.t);
-        meas.extend_from_slice(b",\"values\":{");
-        for (j, (si, values)) in s.readings.iter().enumerate() {
-            if j > 0 {
-                meas.push(b',');
-            }
-            meas.extend_from_slice(
-                &serde_json::to_vec(&model.sensors[*si].name).unwrap_or_default(),
-            );
-            meas.push(b':');
-            let vector = values.len() > 1;
-            if vector {
-                meas.push(b'[');
-            }
-            for (a, v) in values.iter().enumerate() {
-                if a > 0 {
+        // A sampling time always carries `values` (empty when every reading was dropped or
+        // none was due); an input change between sampling times carries only its inputs.
+        if s.index.is_some() {
+            meas.extend_from_slice(b",\"values\":{");
+            for (j, (si, values)) in s.readings.iter().enumerate() {
+                if j > 0 {
                     meas.push(b',');
                 }
-                num(meas, *v);
+                quoted(meas, &model.sensors[*si].name);
+                meas.push(b':');
+                let vector = values.len() > 1;
+                if vector {
+                    meas.push(b'[');
+                }
+                for (a, v) in values.iter().enumerate() {
+                    if a > 0 {
+                        meas.push(b',');
+                    }
+                    num(meas, *v);
+                }
+                if vector {
+                    meas.push(b']');
+                }
             }
-            if vector {
-                meas.push(b']');
-            }
+            meas.push(b'}');
         }
-        meas.push(b'}');
         if !s.changed.is_empty() {
             meas.extend_from_slice(b",\"inputs\":{");
             for (j, (i, v)) in s.changed.iter().enumerate() {
                 if j > 0 {
                     meas.push(b',');
                 }
-                meas.extend_from_slice(&serde_json::to_vec(&model.inputs[*i]).unwrap_or_default());
+                quoted(meas, &model.inputs[*i]);
                 meas.push(b':');
                 num(meas, *v);
             }
@@ -348,7 +459,7 @@ impl Sink for Json<'_> {
 }
 
 /// The problem each way of stopping is answered with.
-fn problem(e: SimulateError) -> Problem {
+fn problem(e: SimulateError, mode: TimeMode) -> Problem {
     match e {
         SimulateError::Cancelled => {
             Problem::new(ProblemKind::DeadlineExceeded, "the request was cancelled")
@@ -357,9 +468,12 @@ fn problem(e: SimulateError) -> Problem {
             "/prior",
             "the prior covariance is not positive semi-definite",
         ),
-        SimulateError::Propagation { index, reason } => Problem::new(
+        SimulateError::Propagation { at, reason } => Problem::new(
             ProblemKind::NumericalFailure,
-            format!("simulation stopped at time index {index}: {reason}"),
+            format!(
+                "simulation stopped moving the truth to {}: {reason}",
+                show(&at, mode)
+            ),
         ),
         SimulateError::ProcessNoiseNotPsd => Problem::new(
             ProblemKind::NumericalFailure,
@@ -368,9 +482,12 @@ fn problem(e: SimulateError) -> Problem {
         SimulateError::SensorNoiseNotPsd => {
             Problem::new(ProblemKind::Internal, "sensor noise not PSD")
         }
-        SimulateError::NonFiniteReading { sensor, index } => Problem::new(
+        SimulateError::NonFiniteReading { sensor, at } => Problem::new(
             ProblemKind::NumericalFailure,
-            format!("sensor '{sensor}' gave a non-finite reading at time index {index}"),
+            format!(
+                "sensor '{sensor}' gave a non-finite reading at {}",
+                show(&at, mode)
+            ),
         ),
     }
 }

@@ -191,3 +191,42 @@ pub fn names_list<S: AsRef<str>>(names: &[S]) -> String {
         .collect::<Vec<_>>()
         .join(", ")
 }
+
+/// Parse a request section's text (already checked to be JSON syntax) into a tree, or
+/// name the field that cannot be held in one: a number beyond the range of a double
+/// (`1e400`) passes the syntax check but has no finite value. `base` is the section's
+/// pointer.
+pub fn parse_section(text: &str, base: &str) -> Result<Value, FieldError> {
+    let mut de = serde_json::Deserializer::from_str(text);
+    serde_path_to_error::deserialize::<_, Value>(&mut de).map_err(|e| {
+        use serde_path_to_error::Segment;
+        let mut pointer = base.to_string();
+        for seg in e.path().iter() {
+            match seg {
+                Segment::Seq { index: i } => pointer = index(&pointer, *i),
+                Segment::Map { key } => pointer = child(&pointer, key),
+                Segment::Enum { .. } | Segment::Unknown => {}
+            }
+        }
+        let detail = if e.inner().to_string().contains("out of range") {
+            "number is out of range: a value must be a finite number".to_string()
+        } else {
+            e.inner().to_string()
+        };
+        FieldError::new(pointer, detail)
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_number_beyond_a_double_is_named_by_its_pointer() {
+        let e = parse_section(r#"[{"t": 1, "inputs": {"pump": 1e400}}]"#, "/inputs")
+            .expect_err("1e400 has no finite value");
+        assert_eq!(e.pointer, "/inputs/0/inputs/pump");
+        let ok = parse_section(r#"[{"t": 1, "inputs": {"pump": 2.5}}]"#, "/inputs").unwrap();
+        assert_eq!(ok[0]["inputs"]["pump"], 2.5);
+    }
+}
