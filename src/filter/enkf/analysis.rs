@@ -142,9 +142,6 @@ impl Enkf {
         if !any {
             return Ok(false);
         }
-        if need_c {
-            self.core.obs.gain()?;
-        }
         let ma = self.core.obs.ma;
         let r = &self.core.obs.r_acc[..ma * ma];
         // The accepted rows of a diagonal R.
@@ -167,11 +164,18 @@ impl Enkf {
                 .map_err(|_| FilterError::NotPositive("reading noise"))?;
         }
         match self.cfg.update {
-            EnsembleUpdate::Perturbed => self.perturbed_update(),
+            EnsembleUpdate::Perturbed => {
+                self.perturbed_gain()?;
+                self.perturbed_update();
+            }
             EnsembleUpdate::Deterministic => {
                 self.transform_update()?;
                 let nis = self.transform_nis();
                 self.core.obs.set_joint_nis(nis, only_check);
+                // S = L_R M L_Rᵀ: ln det S = 2 Σ ln (L_R)_aa + ln det M.
+                let lr = &self.ws.noise_factor[..ma * ma];
+                let log_det_r: f64 = (0..ma).map(|a| 2.0 * lr[a + a * ma].ln()).sum();
+                self.core.obs.log_det_s = log_det_r + self.ws.log_det_m;
             }
         }
         self.refresh_mean();

@@ -67,6 +67,11 @@ pub(super) struct Workspace {
     pub state_anomalies: Vec<f64>,
     /// Predicted-reading anomalies per member, `y_rk − ȳ_r` at `[r + k m]` (`m × N`).
     pub reading_anomalies: Vec<f64>,
+    /// The perturbed update's array `[L_R, Y'/√(N−1); 0, X'/√(N−1)]`, rotated to
+    /// `[S^{1/2}, 0; K̄, ·]` (`(m + n) × (m + N)`, leading dimension `m + n`).
+    pub gain_array: Vec<f64>,
+    /// ln det M of the last transform, M = I + ỸỸᵀ/(N−1) (so ln det S = ln det R + this).
+    pub log_det_m: f64,
     /// Running sums, one per output of an innermost loop (`max(n, m, N)`).
     pub sums: Vec<f64>,
 }
@@ -102,6 +107,8 @@ impl Workspace {
             member_anomalies: vec![0.0; nn * n],
             state_anomalies: vec![0.0; n * nn],
             reading_anomalies: vec![0.0; m * nn],
+            gain_array: vec![0.0; (m + n) * (m + nn)],
+            log_det_m: 0.0,
             sums: vec![0.0; n.max(m).max(nn)],
         }
     }
