@@ -169,6 +169,8 @@ impl Enkf {
                 self.perturbed_update();
             }
             EnsembleUpdate::Deterministic => {
+                // The forecast anomalies, kept for `keep_spread`'s array should it be needed.
+                self.fill_anomalies();
                 self.transform_update()?;
                 let nis = self.transform_nis();
                 self.core.obs.set_joint_nis(nis, only_check);
@@ -182,6 +184,7 @@ impl Enkf {
         if !all_finite(self.ensemble.as_slice()) {
             return Err(FilterError::NonFinite("analysis members"));
         }
+        self.keep_spread(self.cfg.update == EnsembleUpdate::Perturbed)?;
         Ok(true)
     }
 }

@@ -34,18 +34,24 @@ fn solve_lower_strided(t: &[f64], ld: usize, m: usize, v: &mut [f64]) {
 }
 
 impl Enkf {
-    /// Build and rotate the gain array over the accepted rows (module doc); sets the joint
-    /// NIS νᵀS⁻¹ν = |S^{-1/2} ν|² and ln det S = 2 Σ ln (S^{1/2})_aa. Needs the state
-    /// anomalies (`fill_anomalies`), the reading anomalies and `L_R` (`noise_factor`).
-    pub(super) fn perturbed_gain(&mut self) -> Result<(), FilterError> {
+    /// Leading dimension of the gain array (`m + n + 1` over all sensors' rows).
+    pub(super) fn gain_ld(&self) -> usize {
+        self.ws.whitened.nrows() + self.ensemble.ncols() + 1
+    }
+
+    /// Build the gain array `[L_R, Y'/√(N−1); 0, X'/√(N−1); 0, 1ᵀ]` over the accepted rows
+    /// from the forecast anomalies (`fill_anomalies`), the reading anomalies and `L_R`
+    /// (`noise_factor`), and rotate its first rows to `[S^{1/2}, 0]`. The last row carries
+    /// `Θᵀ [0; 1]` along (for [`Enkf::rebuild_spread`]); it changes nothing above it.
+    pub(super) fn rotate_gain_array(&mut self) -> Result<(), FilterError> {
         let (nn, n, ma, m) = (
             self.ensemble.nrows(),
             self.ensemble.ncols(),
             self.core.obs.ma,
             self.core.obs.m,
         );
-        let ld = self.ws.whitened.nrows() + n;
-        let (rows, cols) = (ma + n, ma + nn);
+        let ld = self.gain_ld();
+        let (rows, cols) = (ma + n + 1, ma + nn);
         let sc = 1.0 / (nn as f64 - 1.0).sqrt();
         let a = &mut self.ws.gain_array;
         for j in 0..cols {
@@ -64,11 +70,20 @@ impl Enkf {
             for i in 0..n {
                 col[ma + i] = self.ws.state_anomalies[i + k * n] * sc;
             }
+            col[ma + n] = 1.0;
         }
         triangularize_rows(a, ld, ma, rows, cols).map_err(|e| match e {
             ArrayError::NonFinite => FilterError::NonFinite("predicted reading"),
             _ => FilterError::NotPositive("innovation covariance"),
-        })?;
+        })
+    }
+
+    /// [`Enkf::rotate_gain_array`], then the joint NIS νᵀS⁻¹ν = |S^{-1/2} ν|² and
+    /// ln det S = 2 Σ ln (S^{1/2})_aa.
+    pub(super) fn perturbed_gain(&mut self) -> Result<(), FilterError> {
+        self.rotate_gain_array()?;
+        let (ma, ld) = (self.core.obs.ma, self.gain_ld());
+        let a = &self.ws.gain_array;
         let w = &mut self.ws.innovation[..ma];
         w.copy_from_slice(&self.core.obs.nu_acc[..ma]);
         solve_lower_strided(a, ld, ma, w);
@@ -85,7 +100,7 @@ impl Enkf {
             self.ensemble.ncols(),
             self.core.obs.ma,
         );
-        let ld = self.ws.whitened.nrows() + n;
+        let ld = self.gain_ld();
         let a = &self.ws.gain_array;
         let mut rng = stream(self.cfg.seed, self.step, Purpose::Perturbation);
         let zs = &self.pobs.zs;
