@@ -252,8 +252,8 @@ impl Estimator for Ekf {
                 }
             }
         }
-        if !self.h[..m * n].iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("sensor Jacobian"));
+        if let Some(i) = self.h[..m * n].iter().position(|x| !x.is_finite()) {
+            return Err(self.core.obs.row_error(i % m, "Jacobian"));
         }
         let by_rows = self.core.obs.r_diagonal && !self.always_stacked;
         let only_check = by_rows && self.core.obs.joint_is_only_check(gate);
@@ -322,6 +322,7 @@ mod tests {
     use super::*;
     use crate::filter::test_fixtures::{integration, prior, three_states, two_sensors};
     use crate::model::Instant;
+    use serde_json::json;
 
     #[test]
     fn row_at_a_time_update_equals_the_stacked_update() {
@@ -400,5 +401,29 @@ mod tests {
                 assert!((got - want).abs() < 1e-12, "ln det S {got} vs {want}");
             }
         }
+    }
+
+    #[test]
+    fn a_non_finite_jacobian_names_its_sensor() {
+        // √a at a < 0 has no derivative: the error carries the index of the sensor whose
+        // Jacobian failed (the second one here), for the job layer to name it.
+        let model = three_states(json!({"s1": {"measures": "a + c", "std": 0.3},
+                                        "level": {"measures": "sqrt(a)", "std": 0.2}}));
+        let (_, cov) = prior();
+        let mean = DVector::from_vec(vec![-1.0, 0.5, -0.2]);
+        let mut f = Ekf::new(&model, integration(), mean, cov);
+        let reading = Reading {
+            t: Instant::seconds(0.0),
+            sensors: vec![(0, 0), (1, 1)],
+            z: vec![0.6, 0.4],
+            ..Default::default()
+        };
+        assert_eq!(
+            f.update(&model, &reading, &[], 0.0, None),
+            Err(FilterError::SensorNonFinite {
+                sensor: 1,
+                what: "Jacobian"
+            })
+        );
     }
 }

@@ -164,8 +164,8 @@ impl ObsSpace {
             self.s[i] += self.r[i];
         }
         self.innovations()?;
-        if !self.s[..m * m].iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("predicted reading"));
+        if let Some(i) = self.s[..m * m].iter().position(|x| !x.is_finite()) {
+            return Err(self.row_error(i % m, "predicted reading's covariance"));
         }
         self.judge(thresholds)?;
         self.compact();
@@ -185,7 +185,7 @@ impl ObsSpace {
             for a in 0..m {
                 let v = self.s[a + a * m] + self.r[a + a * m];
                 if !v.is_finite() {
-                    return Err(FilterError::NonFinite("predicted reading"));
+                    return Err(self.row_error(a, "predicted reading's covariance"));
                 }
                 self.s[a + a * m] = v;
             }
@@ -196,7 +196,10 @@ impl ObsSpace {
                     for a in ck.row..ck.row + ck.dim {
                         let v = self.s[a + b * m] + self.r[a + b * m];
                         if !v.is_finite() {
-                            return Err(FilterError::NonFinite("predicted reading"));
+                            return Err(FilterError::SensorNonFinite {
+                                sensor: ck.sensor,
+                                what: "predicted reading's covariance",
+                            });
                         }
                         self.s[a + b * m] = v;
                     }
@@ -234,10 +237,25 @@ impl ObsSpace {
         for i in 0..m {
             self.nu[i] = self.z[i] - self.zhat[i];
         }
-        if !self.nu[..m].iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("predicted reading"));
+        if let Some(r) = self.nu[..m].iter().position(|x| !x.is_finite()) {
+            return Err(self.row_error(r, "predicted reading"));
         }
         Ok(())
+    }
+
+    /// The error for a non-finite `what` on stacked row `row`, naming its sensor.
+    pub fn row_error(&self, row: usize, what: &'static str) -> FilterError {
+        match self
+            .checks
+            .iter()
+            .find(|c| (c.row..c.row + c.dim).contains(&row))
+        {
+            Some(ck) => FilterError::SensorNonFinite {
+                sensor: ck.sensor,
+                what,
+            },
+            None => FilterError::NonFinite(what),
+        }
     }
 
     /// Each sensor's NIS from its diagonal block of S (R included), and whether it passes
