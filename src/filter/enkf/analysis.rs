@@ -10,8 +10,10 @@
 //!
 //! (Evensen 2003, Ocean Dynamics 53, §4, from memory). Multiplicative inflation
 //! `x_j ← x̄ + ρ (x_j − x̄)` widens the forecast first (Anderson & Anderson 1999, MWR 127).
-//! Only the perturbed update needs all of `S` and `C`; the transform needs each sensor's
-//! block of `S` for its own NIS.
+//! The perturbed update forms all of `S` (and `C`, kept in the shared buffers) for the
+//! gate, and takes its gain from the square-root array of `perturbed.rs`; the transform
+//! needs each sensor's block of `S` for its own NIS. After either, `spread.rs` makes sure
+//! the members kept a positive definite spread.
 
 use super::members::Enkf;
 use crate::filter::FilterError;

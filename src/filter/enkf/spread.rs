@@ -13,10 +13,13 @@
 //! Golub & Van Loan, *Matrix Computations*, 4th ed., §5.1.2, from memory), the anomalies
 //! `√(N−1) X̃ H` sum to zero and have covariance `X̃ X̃ᵀ`.
 //!
-//! Only when the analysis members' covariance fails its Cholesky factorisation are the
+//! Only when the analysis members' covariance fails its Cholesky factorisation while the
+//! forecast members' passed it (so the update, not the forecast, lost the spread) are the
 //! members rebuilt as `x̄⁺ + √(N−1) X̃ H`; otherwise they are left exactly as the update
-//! made them. The rebuilt members are a square root of the right covariance but no longer
-//! each the update of its own forecast member.
+//! made them. An ensemble with no more members than states (`N − 1 < n`), or a forecast
+//! without spread in some direction (a state the prior holds fixed), is singular by
+//! construction and left alone. The rebuilt members are a square root of the right
+//! covariance but no longer each the update of its own forecast member.
 
 use super::members::Enkf;
 use crate::filter::FilterError;
@@ -43,22 +46,34 @@ impl Enkf {
         cholesky(p, &mut self.ws.check_factor, n).is_ok()
     }
 
+    /// Whether the forecast anomalies (`state_anomalies`, filled before the analysis) have
+    /// a positive definite covariance.
+    fn forecast_is_definite(&mut self) -> bool {
+        let (nn, n) = (self.ensemble.nrows(), self.ensemble.ncols());
+        let a = &self.ws.state_anomalies;
+        let p = &mut self.ws.check_cov;
+        for j in 0..n {
+            for i in 0..=j {
+                let s: f64 = (0..nn).map(|k| a[i + k * n] * a[j + k * n]).sum();
+                p[i + j * n] = s / (nn as f64 - 1.0);
+                p[j + i * n] = p[i + j * n];
+            }
+        }
+        cholesky(p, &mut self.ws.check_factor, n).is_ok()
+    }
+
     /// After an analysis: if the members lost their spread (module doc), rebuild them from
     /// the rotated array (`rotated`: whether [`Enkf::rotate_gain_array`] already ran on this
-    /// line's forecast). Fails when even the rebuilt members are not positive definite
-    /// (fewer members than states, or a forecast without spread in some direction).
+    /// line's forecast). Fails when even the rebuilt members are not positive definite.
     pub(super) fn keep_spread(&mut self, rotated: bool) -> Result<(), FilterError> {
-        if self.spread_is_definite() {
+        let (nn, n) = (self.ensemble.nrows(), self.ensemble.ncols());
+        if nn <= n || self.spread_is_definite() || !self.forecast_is_definite() {
             return Ok(());
         }
         if !rotated {
             self.rotate_gain_array()?;
         }
-        let (nn, n, ma) = (
-            self.ensemble.nrows(),
-            self.ensemble.ncols(),
-            self.core.obs.ma,
-        );
+        let ma = self.core.obs.ma;
         let ld = self.gain_ld();
         let a = &self.ws.gain_array;
         let v = &mut self.ws.reflector;
