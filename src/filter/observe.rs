@@ -1,11 +1,14 @@
 //! What every filter's update shares: stacking the sensors present on a line, per-sensor
-//! gating on NIS, compaction to the accepted rows, and the Kalman gain.
+//! gating on NIS, and compaction to the accepted rows that the filters' square-root array
+//! updates read ([`crate::linalg::array_update`]).
 //!
 //! Given the predicted reading ẑ, its covariance S = Cov(z) (with R) and the cross
 //! covariance C = Cov(x, z), the update is K = C S⁻¹, x⁺ = x + K (z − ẑ) (Kalman 1960;
 //! in this cross-covariance form it covers the extended, unscented and ensemble filters,
-//! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6). Each sensor reading j
-//! is judged by NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4).
+//! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6); each filter makes it
+//! in array form from its own factor. Each sensor reading j is judged by
+//! NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4); the update
+//! sets the joint NIS and ln det S of the accepted rows (`joint_nis`, `log_det_s`).
 
 use crate::filter::predict::load_points;
 use crate::filter::FilterError;
