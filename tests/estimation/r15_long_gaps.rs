@@ -240,6 +240,30 @@ proptest! {
 }
 
 #[test]
+fn ensemble_members_keep_their_spread_when_a_reading_is_finer_than_rounding() {
+    // The case the property test found (kept in proptest-regressions as well): a 3-state
+    // chain after 3.7e11 s, where the forecast spread of s0 is ~1e24 times the reading's
+    // std. The perturbed members' updates rounded to one value along s0 and the posterior
+    // was singular; the members are now rebuilt from the square-root array (R15: the
+    // posterior stays symmetric positive definite and resumable).
+    let c = Small {
+        n: 3,
+        q: 5.888249528498749e-8,
+        prior_std: vec![1.0, 1.0, 0.007851350949139716],
+        std_linear: 1.0,
+        std_probe: 1.0,
+        gap: 369720384975.3156,
+    };
+    for (name, filter) in &filters()[2..] {
+        let what = format!("R15 rebuild {name}");
+        let body = small_body(&c, filter);
+        let answer = estimate(&body).unwrap_or_else(|p| panic!("{what}: {p}"));
+        assert_spd(&to_matrix(&answer["posterior"]["covariance"]), &what);
+        assert_resumes(&body, &answer, c.gap * 1.5, &what);
+    }
+}
+
+#[test]
 #[ignore = "prints the R15 figures for a report; run with --ignored --nocapture"]
 fn r15_figures() {
     for (name, filter) in &filters()[..2] {
