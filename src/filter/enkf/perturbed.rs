@@ -42,7 +42,7 @@ impl Enkf {
     /// Build the gain array `[L_R, Y'/√(N−1); 0, X'/√(N−1); 0, 1ᵀ]` over the accepted rows
     /// from the forecast anomalies (`fill_anomalies`), the reading anomalies and `L_R`
     /// (`noise_factor`), and rotate its first rows to `[S^{1/2}, 0]`. The last row carries
-    /// `Θᵀ [0; 1]` along (for [`Enkf::rebuild_spread`]); it changes nothing above it.
+    /// `Θᵀ [0; 1]` along (for [`Enkf::keep_spread`]); it changes nothing above it.
     pub(super) fn rotate_gain_array(&mut self) -> Result<(), FilterError> {
         let (nn, n, ma, m) = (
             self.ensemble.nrows(),
