@@ -3,19 +3,24 @@
 //! Prediction: see [`crate::filter::predict`] (exact Jacobians of the dynamics).
 //! Update over the stacked sensors present on a line, with H = ∂h/∂x exact at the predicted
 //! mean (Jazwinski 1970, §8.3; Bar-Shalom et al. 2001, §10.3):
-//!   S = H P Hᵀ + R,  K = P Hᵀ S⁻¹,  x⁺ = x + K (z − h(x)),
-//!   P⁺ = (I − K H) P (I − K H)ᵀ + K R Kᵀ  (Joseph form, Bucy & Joseph 1968),
-//! which stays symmetric positive semi-definite under rounding, then symmetrised.
+//!   S = H P Hᵀ + R,  K = P Hᵀ S⁻¹,  x⁺ = x + K (z − h(x)),  P⁺ = P − K S Kᵀ,
+//! computed in square-root array form ([`crate::linalg::array_update`]; Kailath, Sayed &
+//! Hassibi 2000, *Linear Estimation*, ch. 12; Kaminski, Bryson & Schmidt 1971, IEEE TAC
+//! 16(6)): with P = L Lᵀ, orthogonal rotations take [R^{1/2}, H L; 0, L] to
+//! [S^{1/2}, 0; K̄, L⁺], so K = K̄ S^{-1/2} and P⁺ = L⁺ L⁺ᵀ, symmetric and positive
+//! semi-definite by construction. Unlike P − K S Kᵀ or the Joseph form it subtracts
+//! nothing, so the posterior stays right when H P Hᵀ dwarfs R (a reading after a long gap,
+//! where the subtraction cancels every digit; REFERENCES R15).
 //! When the accepted readings' noise is uncorrelated (R diagonal, the usual case of
-//! independent gauges) the same update is made one row at a time (sequential processing,
-//! e.g. Simon 2006, *Optimal State Estimation*, §6.1, from memory), which needs no
-//! factorisation and only rank-one corrections; see `Ekf::sequential_update`.
+//! independent gauges) the rows go one at a time (sequential processing, e.g. Simon 2006,
+//! *Optimal State Estimation*, §6.1, from memory), each a scalar array update of n Givens
+//! rotations, O(n²) per row; see `Ekf::sequential_update`. Otherwise the block form.
 //! Fails (typed error, no NaN) when S is not positive definite or a value is non-finite.
 
 use crate::filter::shared::FilterCore;
 use crate::filter::{Estimator, FilterError};
 use crate::formula::Workspace;
-use crate::linalg::{gemm_nn, gemm_nt, mul_ab, mul_abt};
+use crate::linalg::{gemm_nn, gemm_nt, mul_abt, noise_factor, ArrayError, ArrayUpdate};
 use crate::model::Reading;
 use crate::model::{Integration, Model};
 use nalgebra::{DMatrix, DVector};
@@ -32,17 +37,16 @@ pub struct Ekf {
     h: Vec<f64>,
     prev_cov: DMatrix<f64>,
     phi: DMatrix<f64>,
-    a: DMatrix<f64>,
-    t1: DMatrix<f64>,
-    kr: Vec<f64>,
-    /// The gain `K`, `n × ma`, column-major.
-    k: Vec<f64>,
+    /// The factor of P and the buffers of the array update.
+    arr: ArrayUpdate,
     /// The rows of `H` of the accepted readings, `ma × n`.
     h_acc: Vec<f64>,
-    /// One row of `H`, its `P hᵀ`, and the mean's change so far, for the row-at-a-time
-    /// update.
+    /// `H_acc L`, `ma × n` (the block form's pre-array entry).
+    hl: Vec<f64>,
+    /// `R^{1/2}` of the accepted readings, `ma × ma`.
+    lr: Vec<f64>,
+    /// One row of `H`, and the mean's change so far, for the row-at-a-time update.
     hrow: Vec<f64>,
-    ph: Vec<f64>,
     dx: Vec<f64>,
     /// Take the stacked update even when the rows could go one at a time (tests compare
     /// the two).
@@ -73,13 +77,11 @@ impl Ekf {
             h: vec![0.0; mm * n],
             prev_cov: DMatrix::zeros(n, n),
             phi: DMatrix::zeros(n, n),
-            a: DMatrix::zeros(n, n),
-            t1: DMatrix::zeros(n, n),
-            kr: vec![0.0; n * mm],
-            k: vec![0.0; n * mm],
+            arr: ArrayUpdate::new(n, mm),
             h_acc: vec![0.0; mm * n],
+            hl: vec![0.0; mm * n],
+            lr: vec![0.0; mm * mm],
             hrow: vec![0.0; n],
-            ph: vec![0.0; n],
             dx: vec![0.0; n],
             always_stacked: false,
         }
@@ -87,103 +89,90 @@ impl Ekf {
 
     /// The update one accepted row a at a time, for uncorrelated reading noise, with the
     /// rows of H taken at the predicted mean (so the result is the stacked EKF update's,
-    /// up to rounding). For row h with noise r, against the current mean and covariance:
-    ///   c = P hᵀ,  s = h c + r,  k = c / s,  ν = (z − ẑ)ₐ − h Δx,  x ← x + k ν,
-    ///   P ← (I − k h) P (I − k h)ᵀ + r k kᵀ = P − k cᵀ − c kᵀ + s k kᵀ
-    /// (the Joseph form expanded for a rank-one I − k h), where Δx is the change of the
-    /// mean made by the earlier rows. The joint NIS νᵀS⁻¹ν of the stacked form is Σ ν²/s
-    /// over the rows (the rows' innovations are the stacked innovation whitened by the
-    /// Cholesky factor of S). Returns that NIS.
-    fn sequential_update(&mut self) -> Result<f64, FilterError> {
+    /// up to rounding). With P = L Lᵀ factored once, for row h with noise r:
+    ///   [√r, h L; 0, L] Θ = [√s, 0; k̄, L⁺],  ν = (z − ẑ)ₐ − h Δx,  x ← x + k̄ ν / √s,
+    ///   L ← L⁺
+    /// (the scalar array update, module doc), where Δx is the change of the mean made by
+    /// the earlier rows; P⁺ = L Lᵀ at the end. The joint NIS νᵀS⁻¹ν of the stacked form
+    /// is Σ ν²/s over the rows and ln det S is Σ ln s (the rows' innovations are the
+    /// stacked innovation whitened by the Cholesky factor of S, whose squared diagonal is
+    /// the rows' s). Returns (NIS, ln det S).
+    fn sequential_update(&mut self) -> Result<(f64, f64), FilterError> {
         let (n, m, ma) = (self.core.mean.len(), self.core.obs.m, self.core.obs.ma);
+        self.arr
+            .factor(self.core.cov.as_slice())
+            .map_err(|e| array_error(e, "predicted covariance"))?;
         self.dx.fill(0.0);
-        let mut nis = 0.0;
+        let (mut nis, mut log_det) = (0.0, 0.0);
         for a in 0..ma {
             let row = self.core.obs.keep[a];
             for j in 0..n {
                 self.hrow[j] = self.h[row + j * m];
             }
-            let bufs = RowBuffers {
-                p: self.core.cov.as_mut_slice(),
-                mean: self.core.mean.as_mut_slice(),
-                h: &self.hrow,
-                c: &mut self.ph,
-                k: &mut self.k,
-                dx: &mut self.dx,
-            };
-            let (nu, r) = (self.core.obs.nu_acc[a], self.core.obs.r_acc[a + a * ma]);
-            // The size fixed at compile time for small models, so the loops unroll.
-            nis += match n {
-                1 => row_update::<1>(bufs, nu, r),
-                2 => row_update::<2>(bufs, nu, r),
-                3 => row_update::<3>(bufs, nu, r),
-                4 => row_update::<4>(bufs, nu, r),
-                5 => row_update::<5>(bufs, nu, r),
-                6 => row_update::<6>(bufs, nu, r),
-                _ => row_update::<0>(bufs, nu, r),
-            }?;
+            let (nu0, r) = (self.core.obs.nu_acc[a], self.core.obs.r_acc[a + a * ma]);
+            let out = self
+                .arr
+                .row(&self.hrow, r)
+                .map_err(|e| array_error(e, "innovation covariance"))?;
+            let hdx: f64 = self.hrow.iter().zip(&self.dx).map(|(h, d)| h * d).sum();
+            let e = (nu0 - hdx) / out.s.sqrt();
+            let mean = self.core.mean.as_mut_slice();
+            for ((x, d), &k) in mean.iter_mut().zip(self.dx.iter_mut()).zip(self.arr.kbar()) {
+                let step = k * e;
+                *x += step;
+                *d += step;
+            }
+            nis += e * e;
+            log_det += out.s.ln();
         }
+        self.arr.covariance(self.core.cov.as_mut_slice());
         self.core.finish_update()?;
-        Ok(nis)
+        Ok((nis, log_det))
+    }
+
+    /// The block array update over the accepted rows (correlated reading noise, or
+    /// `always_stacked`): [R^{1/2}, H L; 0, L] Θ = [S^{1/2}, 0; K̄, L⁺],
+    /// x⁺ = x + K̄ S^{-1/2} ν, P⁺ = L⁺ L⁺ᵀ. Returns (NIS, ln det S).
+    fn block_update(&mut self) -> Result<(f64, f64), FilterError> {
+        let (n, m, ma) = (self.core.mean.len(), self.core.obs.m, self.core.obs.ma);
+        for j in 0..n {
+            for (a, &row) in self.core.obs.keep.iter().enumerate() {
+                self.h_acc[a + j * ma] = self.h[row + j * m];
+            }
+        }
+        self.arr
+            .factor(self.core.cov.as_slice())
+            .map_err(|e| array_error(e, "predicted covariance"))?;
+        noise_factor(&self.core.obs.r_acc[..ma * ma], &mut self.lr, ma)
+            .map_err(|_| FilterError::NotPositive("reading noise"))?;
+        self.arr
+            .mul_rows_factor(&self.h_acc[..ma * n], ma, &mut self.hl[..ma * n]);
+        let (nis, log_det) = self
+            .arr
+            .block(
+                &self.lr[..ma * ma],
+                &self.hl[..ma * n],
+                &self.core.obs.nu_acc[..ma],
+                ma,
+                &mut self.dx,
+            )
+            .map_err(|e| array_error(e, "innovation covariance"))?;
+        for (x, d) in self.core.mean.iter_mut().zip(&self.dx) {
+            *x += d;
+        }
+        self.arr.covariance(self.core.cov.as_mut_slice());
+        self.core.finish_update()?;
+        Ok((nis, log_det))
     }
 }
 
-/// What one row's update reads and changes (see [`Ekf::sequential_update`]).
-struct RowBuffers<'a> {
-    p: &'a mut [f64],
-    mean: &'a mut [f64],
-    h: &'a [f64],
-    c: &'a mut [f64],
-    /// The row's gain c / s.
-    k: &'a mut [f64],
-    dx: &'a mut [f64],
-}
-
-/// One row of [`Ekf::sequential_update`] with innovation `nu0` (against the predicted
-/// mean) and noise variance `r`; returns the row's ν²/s. `N > 0` fixes the state count at
-/// compile time; `N = 0` takes it from the buffers.
-#[inline(always)]
-fn row_update<const N: usize>(b: RowBuffers, nu0: f64, r: f64) -> Result<f64, FilterError> {
-    let n = if N > 0 { N } else { b.mean.len() };
-    let (p, mean, h, c, k, dx) = (
-        &mut b.p[..n * n],
-        &mut b.mean[..n],
-        &b.h[..n],
-        &mut b.c[..n],
-        &mut b.k[..n],
-        &mut b.dx[..n],
-    );
-    // c = P hᵀ, column by column (P is symmetric, so this is also h P).
-    c.fill(0.0);
-    for (j, &hj) in h.iter().enumerate() {
-        for (ci, &pij) in c.iter_mut().zip(&p[j * n..(j + 1) * n]) {
-            *ci += pij * hj;
-        }
+/// The filter's error for an array-update failure while forming `what`.
+fn array_error(e: ArrayError, what: &'static str) -> FilterError {
+    match e {
+        ArrayError::NonFinite => FilterError::NonFinite(what),
+        ArrayError::Indefinite(_) => FilterError::NotPositive("predicted covariance"),
+        ArrayError::NoisePositive => FilterError::NotPositive(what),
     }
-    let hc: f64 = h.iter().zip(c.iter()).map(|(h, c)| h * c).sum();
-    let s = hc + r;
-    if !(s > 0.0) || !s.is_finite() {
-        return Err(FilterError::NotPositive("innovation covariance"));
-    }
-    let hdx: f64 = h.iter().zip(dx.iter()).map(|(h, d)| h * d).sum();
-    let nu = nu0 - hdx;
-    let f = nu / s;
-    for i in 0..n {
-        let step = c[i] * f;
-        mean[i] += step;
-        dx[i] += step;
-    }
-    // P − k cᵀ − c kᵀ + s k kᵀ with k = c / s (formed once, not once per entry).
-    for (ki, &ci) in k.iter_mut().zip(c.iter()) {
-        *ki = ci / s;
-    }
-    for j in 0..n {
-        let (kj, cj) = (k[j], c[j]);
-        for i in 0..n {
-            p[i + j * n] += -k[i] * cj - c[i] * kj + s * k[i] * kj;
-        }
-    }
-    Ok(nu * f)
 }
 
 impl Estimator for Ekf {
@@ -263,8 +252,8 @@ impl Estimator for Ekf {
                 }
             }
         }
-        if !self.h[..m * n].iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("sensor Jacobian"));
+        if let Some(i) = self.h[..m * n].iter().position(|x| !x.is_finite()) {
+            return Err(self.core.obs.row_error(i % m, "Jacobian"));
         }
         let by_rows = self.core.obs.r_diagonal && !self.always_stacked;
         let only_check = by_rows && self.core.obs.joint_is_only_check(gate);
@@ -301,53 +290,17 @@ impl Estimator for Ekf {
             if !self.core.obs.gate_blocks(gate)? {
                 return Ok(false);
             }
-            let nis = self.sequential_update()?;
+            let (nis, log_det) = self.sequential_update()?;
             self.core.obs.set_joint_nis(nis, only_check);
+            self.core.obs.log_det_s = log_det;
             return Ok(true);
         }
         if !self.core.obs.gate(gate)? {
             return Ok(false);
         }
-        self.core.obs.gain()?;
-        self.core.obs.apply_gain(self.core.mean.as_mut_slice());
-        // Joseph form: A = I − K H_acc, P ← A P Aᵀ + K R Kᵀ.
-        let ma = self.core.obs.ma;
-        let kt = &self.core.obs.kt;
-        for i in 0..n {
-            for a in 0..ma {
-                self.k[i + a * n] = kt[a + i * ma];
-            }
-        }
-        for j in 0..n {
-            for (a, &row) in self.core.obs.keep.iter().enumerate() {
-                self.h_acc[a + j * ma] = self.h[row + j * m];
-            }
-        }
-        let a = self.a.as_mut_slice();
-        gemm_nn(&self.k, &self.h_acc, a, (n, ma, n), false);
-        for v in a.iter_mut() {
-            *v = -*v;
-        }
-        for i in 0..n {
-            a[i + i * n] += 1.0;
-        }
-        mul_ab(&self.a, &self.core.cov, &mut self.t1);
-        mul_abt(&self.t1, &self.a, &mut self.core.cov);
-        gemm_nn(
-            &self.k,
-            &self.core.obs.r_acc,
-            &mut self.kr,
-            (n, ma, ma),
-            false,
-        );
-        gemm_nt(
-            &self.kr,
-            &self.k,
-            self.core.cov.as_mut_slice(),
-            (n, ma, n),
-            true,
-        );
-        self.core.finish_update()?;
+        let (nis, log_det) = self.block_update()?;
+        self.core.obs.joint_nis = nis;
+        self.core.obs.log_det_s = log_det;
         Ok(true)
     }
 
@@ -369,6 +322,7 @@ mod tests {
     use super::*;
     use crate::filter::test_fixtures::{integration, prior, three_states, two_sensors};
     use crate::model::Instant;
+    use serde_json::json;
 
     #[test]
     fn row_at_a_time_update_equals_the_stacked_update() {
@@ -423,6 +377,53 @@ mod tests {
                 assert!(close(a, b), "S diagonal {a} vs {b}");
             }
             assert_eq!(rows.core.obs.ma, if gate.is_some() { 2 } else { m });
+            // ln det S against nalgebra's determinant of S = H P Hᵀ + R over the accepted
+            // rows, H = ∂h/∂x at the mean (1, 0.5, −0.2) written out by hand.
+            let h_all =
+                DMatrix::from_row_slice(3, 3, &[1.0, 0.0, 1.0, 0.0, 1.0, 0.0, 1.0, 0.0, 0.0]);
+            let r_all = [0.09, 0.25, 0.04];
+            let rows_used: Vec<usize> = match (reading.sensors.len(), gate.is_some()) {
+                (2, false) => vec![0, 1, 2],
+                _ => vec![1, 2],
+            };
+            let h = DMatrix::from_fn(rows_used.len(), 3, |a, j| h_all[(rows_used[a], j)]);
+            let r = DMatrix::from_fn(rows_used.len(), rows_used.len(), |a, b| {
+                if a == b {
+                    r_all[rows_used[a]]
+                } else {
+                    0.0
+                }
+            });
+            let s = &h * &base.core.cov * h.transpose() + r;
+            let want = s.determinant().ln();
+            for f in [&rows, &stacked] {
+                let got = f.core.obs.log_det_s;
+                assert!((got - want).abs() < 1e-12, "ln det S {got} vs {want}");
+            }
         }
+    }
+
+    #[test]
+    fn a_non_finite_jacobian_names_its_sensor() {
+        // √a at a < 0 has no derivative: the error carries the index of the sensor whose
+        // Jacobian failed (the second one here), for the job layer to name it.
+        let model = three_states(json!({"s1": {"measures": "a + c", "std": 0.3},
+                                        "level": {"measures": "sqrt(a)", "std": 0.2}}));
+        let (_, cov) = prior();
+        let mean = DVector::from_vec(vec![-1.0, 0.5, -0.2]);
+        let mut f = Ekf::new(&model, integration(), mean, cov);
+        let reading = Reading {
+            t: Instant::seconds(0.0),
+            sensors: vec![(0, 0), (1, 1)],
+            z: vec![0.6, 0.4],
+            ..Default::default()
+        };
+        assert_eq!(
+            f.update(&model, &reading, &[], 0.0, None),
+            Err(FilterError::SensorNonFinite {
+                sensor: 1,
+                what: "Jacobian"
+            })
+        );
     }
 }

@@ -27,6 +27,14 @@ use shared::FilterCore;
 pub enum FilterError {
     /// A non-finite value appeared in the named quantity.
     NonFinite(&'static str),
+    /// A non-finite value appeared in the named quantity of one sensor (its index in the
+    /// model; the job layer, which has the model, names it: `job::failure`).
+    SensorNonFinite {
+        /// Index of the sensor in the model.
+        sensor: usize,
+        /// What turned non-finite (its Jacobian, its predicted reading, …).
+        what: &'static str,
+    },
     /// The named covariance lost positive (semi-)definiteness.
     NotPositive(&'static str),
     /// The integrator gave up, for the stated reason.
@@ -39,6 +47,10 @@ impl std::fmt::Display for FilterError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
             FilterError::NonFinite(what) => write!(f, "a non-finite value appeared in the {what}"),
+            FilterError::SensorNonFinite { sensor, what } => write!(
+                f,
+                "a non-finite value appeared in the {what} of sensor number {sensor} (from 0)"
+            ),
             FilterError::NotPositive(what) => {
                 write!(f, "the {what} is no longer positive definite")
             }

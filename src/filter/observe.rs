@@ -1,15 +1,18 @@
 //! What every filter's update shares: stacking the sensors present on a line, per-sensor
-//! gating on NIS, compaction to the accepted rows, and the Kalman gain.
+//! gating on NIS, and compaction to the accepted rows that the filters' square-root array
+//! updates read ([`crate::linalg::array_update`]).
 //!
 //! Given the predicted reading ẑ, its covariance S = Cov(z) (with R) and the cross
 //! covariance C = Cov(x, z), the update is K = C S⁻¹, x⁺ = x + K (z − ẑ) (Kalman 1960;
 //! in this cross-covariance form it covers the extended, unscented and ensemble filters,
-//! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6). Each sensor reading j
-//! is judged by NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4).
+//! e.g. Särkkä 2013, *Bayesian Filtering and Smoothing*, §5.5, §5.6); each filter makes it
+//! in array form from its own factor. Each sensor reading j is judged by
+//! NIS_j = ν_j' S_jj⁻¹ ν_j against χ²_p(dim_j) (Bar-Shalom et al. 2001, §5.4); the update
+//! sets the joint NIS and ln det S of the accepted rows (`joint_nis`, `log_det_s`).
 
 use crate::filter::predict::load_points;
 use crate::filter::FilterError;
-use crate::linalg::{cholesky, cholesky_solve, mahalanobis};
+use crate::linalg::{cholesky, mahalanobis};
 use crate::model::Model;
 use crate::model::Reading;
 
@@ -31,7 +34,6 @@ pub struct SensorCheck {
 /// Preallocated buffers for one update; sized for every sensor at once.
 #[derive(Debug, Clone)]
 pub struct ObsSpace {
-    n: usize,
     /// Stacked rows on the current line.
     pub m: usize,
     /// Rows accepted by the gate.
@@ -56,21 +58,16 @@ pub struct ObsSpace {
     pub c: Vec<f64>,
     /// Accepted row indices into the stacked reading.
     pub keep: Vec<usize>,
-    /// Compacted S, ν, C and R over accepted rows.
-    pub s_acc: Vec<f64>,
-    /// Compacted innovation.
+    /// The innovation over the accepted rows.
     pub nu_acc: Vec<f64>,
-    /// Compacted cross covariance, `n × ma`.
-    pub c_acc: Vec<f64>,
-    /// Compacted reading noise.
+    /// The reading noise over the accepted rows (`ma × ma`).
     pub r_acc: Vec<f64>,
-    /// Cholesky factor of `s_acc`.
-    pub l_acc: Vec<f64>,
-    /// Gain transposed, `Kᵀ = S⁻¹ Cᵀ`, `ma × n`.
-    pub kt: Vec<f64>,
     /// NIS of all accepted rows jointly.
     pub joint_nis: f64,
-    /// ln det S over the accepted rows (set with `joint_nis`).
+    /// ln det S over the accepted rows (S with R), set beside `joint_nis` by every update
+    /// that accepts a reading (0 on a line with none). With NIS it gives the line's
+    /// Gaussian log-likelihood −½(NIS + ln det S + m ln 2π) (e.g. Särkkä 2013, *Bayesian
+    /// Filtering and Smoothing*, §12.2, from memory).
     pub log_det_s: f64,
     tmp: Vec<f64>,
     block: Vec<f64>,
@@ -84,7 +81,6 @@ impl ObsSpace {
         let mm: usize = model.sensors.iter().map(|s| s.dim).sum();
         let bm = model.sensors.iter().map(|s| s.dim).max().unwrap_or(1);
         Self {
-            n,
             m: 0,
             ma: 0,
             r_diagonal: true,
@@ -104,12 +100,8 @@ impl ObsSpace {
             r: vec![0.0; mm * mm],
             c: vec![0.0; n * mm],
             keep: Vec::with_capacity(mm),
-            s_acc: vec![0.0; mm * mm],
             nu_acc: vec![0.0; mm],
-            c_acc: vec![0.0; n * mm],
             r_acc: vec![0.0; mm * mm],
-            l_acc: vec![0.0; mm * mm],
-            kt: vec![0.0; mm * n],
             joint_nis: 0.0,
             log_det_s: 0.0,
             tmp: vec![0.0; mm.max(n)],
@@ -121,6 +113,7 @@ impl ObsSpace {
     /// Stack the sensors present on `reading` and their noise (per-reading overrides win).
     pub fn begin(&mut self, model: &Model, reading: &Reading) {
         self.checks.clear();
+        self.log_det_s = 0.0;
         let mut row = 0;
         for &(si, off) in &reading.sensors {
             let dim = model.sensors[si].dim;
@@ -174,11 +167,11 @@ impl ObsSpace {
             self.s[i] += self.r[i];
         }
         self.innovations()?;
-        if !self.s[..m * m].iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("predicted reading"));
+        if let Some(i) = self.s[..m * m].iter().position(|x| !x.is_finite()) {
+            return Err(self.row_error(i % m, "predicted reading's covariance"));
         }
         self.judge(thresholds)?;
-        self.compact(true);
+        self.compact();
         Ok(self.ma > 0)
     }
 
@@ -195,7 +188,7 @@ impl ObsSpace {
             for a in 0..m {
                 let v = self.s[a + a * m] + self.r[a + a * m];
                 if !v.is_finite() {
-                    return Err(FilterError::NonFinite("predicted reading"));
+                    return Err(self.row_error(a, "predicted reading's covariance"));
                 }
                 self.s[a + a * m] = v;
             }
@@ -206,7 +199,10 @@ impl ObsSpace {
                     for a in ck.row..ck.row + ck.dim {
                         let v = self.s[a + b * m] + self.r[a + b * m];
                         if !v.is_finite() {
-                            return Err(FilterError::NonFinite("predicted reading"));
+                            return Err(FilterError::SensorNonFinite {
+                                sensor: ck.sensor,
+                                what: "predicted reading's covariance",
+                            });
                         }
                         self.s[a + b * m] = v;
                     }
@@ -214,7 +210,7 @@ impl ObsSpace {
             }
             self.judge(thresholds)?;
         }
-        self.compact(false);
+        self.compact();
         Ok(self.ma > 0)
     }
 
@@ -244,10 +240,25 @@ impl ObsSpace {
         for i in 0..m {
             self.nu[i] = self.z[i] - self.zhat[i];
         }
-        if !self.nu[..m].iter().all(|x| x.is_finite()) {
-            return Err(FilterError::NonFinite("predicted reading"));
+        if let Some(r) = self.nu[..m].iter().position(|x| !x.is_finite()) {
+            return Err(self.row_error(r, "predicted reading"));
         }
         Ok(())
+    }
+
+    /// The error for a non-finite `what` on stacked row `row`, naming its sensor.
+    pub fn row_error(&self, row: usize, what: &'static str) -> FilterError {
+        match self
+            .checks
+            .iter()
+            .find(|c| (c.row..c.row + c.dim).contains(&row))
+        {
+            Some(ck) => FilterError::SensorNonFinite {
+                sensor: ck.sensor,
+                what,
+            },
+            None => FilterError::NonFinite(what),
+        }
     }
 
     /// Each sensor's NIS from its diagonal block of S (R included), and whether it passes
@@ -285,8 +296,8 @@ impl ObsSpace {
         Ok(())
     }
 
-    /// Gather the accepted rows of ν and R, and of S and C when `with_moments`.
-    fn compact(&mut self, with_moments: bool) {
+    /// Gather the accepted rows of ν and R (what the array updates read).
+    fn compact(&mut self) {
         let m = self.m;
         self.keep.clear();
         for ck in &self.checks {
@@ -296,99 +307,10 @@ impl ObsSpace {
         }
         let ma = self.keep.len();
         self.ma = ma;
-        let n = self.n;
         for (a, &ra) in self.keep.iter().enumerate() {
             self.nu_acc[a] = self.nu[ra];
             for (b, &rb) in self.keep.iter().enumerate() {
                 self.r_acc[a + b * ma] = self.r[ra + rb * m];
-            }
-            if with_moments {
-                for (b, &rb) in self.keep.iter().enumerate() {
-                    self.s_acc[a + b * ma] = self.s[ra + rb * m];
-                }
-                for i in 0..n {
-                    self.c_acc[i + a * n] = self.c[i + ra * n];
-                }
-            }
-        }
-    }
-
-    /// Factor S over the accepted rows (into `l_acc`) and form the joint NIS, for
-    /// [`ObsSpace::gain`].
-    fn factor(&mut self) -> Result<(), FilterError> {
-        let ma = self.ma;
-        if ma == 1 {
-            // One scalar reading: the same formula as its gate check, ν² / s.
-            let s = self.s_acc[0];
-            if !(s > 0.0) {
-                return Err(FilterError::NotPositive("innovation covariance"));
-            }
-            self.l_acc[0] = s.sqrt();
-            self.joint_nis = self.nu_acc[0] * self.nu_acc[0] / s;
-            return Ok(());
-        }
-        if self.checks.len() == 1 && self.checks[0].dim == ma {
-            // One sensor holds every accepted row: S is the block the gate has just
-            // factored, so its factor (the same numbers) is reused.
-            self.l_acc[..ma * ma].copy_from_slice(&self.block_l[..ma * ma]);
-        } else {
-            cholesky(&self.s_acc[..ma * ma], &mut self.l_acc[..ma * ma], ma)
-                .map_err(|_| FilterError::NotPositive("innovation covariance"))?;
-        }
-        self.joint_nis = mahalanobis(
-            &self.l_acc[..ma * ma],
-            ma,
-            &self.nu_acc[..ma],
-            &mut self.tmp,
-        );
-        Ok(())
-    }
-
-    /// `ObsSpace::factor`, then the gain transposed Kᵀ = S⁻¹ Cᵀ.
-    pub fn gain(&mut self) -> Result<(), FilterError> {
-        let (ma, n) = (self.ma, self.n);
-        self.factor()?;
-        if ma == 1 {
-            // K = C / s for one scalar reading.
-            let s = self.s_acc[0];
-            for i in 0..n {
-                self.kt[i] = self.c_acc[i] / s;
-            }
-            return Ok(());
-        }
-        // Kᵀ (ma × n) = S⁻¹ Cᵀ: column i of Kᵀ solves S k = row i of C.
-        for i in 0..n {
-            for a in 0..ma {
-                self.kt[a + i * ma] = self.c_acc[i + a * n];
-            }
-        }
-        cholesky_solve(&self.l_acc[..ma * ma], ma, &mut self.kt[..ma * n], n);
-        Ok(())
-    }
-
-    /// `x += K ν` for a state vector `x` of length n.
-    pub fn apply_gain(&self, x: &mut [f64]) {
-        let ma = self.ma;
-        for (i, xi) in x.iter_mut().enumerate() {
-            let mut s = 0.0;
-            for a in 0..ma {
-                s += self.kt[a + i * ma] * self.nu_acc[a];
-            }
-            *xi += s;
-        }
-    }
-
-    /// `p −= K Cᵀ` (= C S⁻¹ Cᵀ), the covariance update in cross-covariance form; the caller
-    /// symmetrises.
-    pub fn subtract_gain_cross(&self, p: &mut [f64]) {
-        let (ma, n) = (self.ma, self.n);
-        for j in 0..n {
-            for i in 0..n {
-                let mut s = 0.0;
-                for a in 0..ma {
-                    s += self.kt[a + i * ma] * self.c_acc[j + a * n];
-                }
-                p[i + j * n] -= s;
             }
         }
     }

@@ -45,8 +45,9 @@ impl FilterCore {
         }
     }
 
-    /// The end of every moment-form update: make the covariance symmetric, `(P + Pᵀ)/2`,
-    /// and refuse a non-finite mean or covariance.
+    /// The end of every update: make the covariance symmetric, `(P + Pᵀ)/2` (the array
+    /// updates' `L Lᵀ` already is, so this changes nothing there), and refuse a non-finite
+    /// mean or covariance.
     pub fn finish_update(&mut self) -> Result<(), FilterError> {
         symmetrize(&mut self.cov);
         ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")

@@ -4,11 +4,39 @@
 //! Faults in the request (a time going backwards, off the model's grid, unusable unscented
 //! settings, a prior the ensemble cannot be drawn from) are 422s pointing at the field;
 //! a step that stops on a numerical failure is `numerical-failure`; one that runs out of
-//! the compute budget is `deadline-exceeded`. The detail is the error's own message.
+//! the compute budget is `deadline-exceeded`. The detail is the error's own message, with
+//! a sensor the filter knows only by its index named as the model names it
+//! ([`step_problem`]).
 
 use crate::filter::run::RunError;
 use crate::filter::FilterError;
+use crate::model::Model;
 use crate::problem::{Problem, ProblemKind};
+
+/// [`Problem::from`] a run's error, with a failing sensor named: 'a non-finite value
+/// appeared in the Jacobian of sensor "encoder"' instead of its index in the model.
+pub(super) fn step_problem(e: RunError, model: &Model) -> Problem {
+    let renamed = match &e {
+        RunError::Step {
+            cause: cause @ FilterError::SensorNonFinite { sensor, what },
+            ..
+        } => model.sensors.get(*sensor).map(|s| {
+            (
+                cause.to_string(),
+                format!(
+                    "a non-finite value appeared in the {what} of sensor \"{}\"",
+                    s.name
+                ),
+            )
+        }),
+        _ => None,
+    };
+    let mut p = Problem::from(e);
+    if let Some((by_index, by_name)) = renamed {
+        p.detail = p.detail.replace(&by_index, &by_name);
+    }
+    p
+}
 
 impl From<RunError> for Problem {
     fn from(e: RunError) -> Self {
@@ -64,6 +92,27 @@ mod tests {
         assert_eq!(
             p.detail,
             "the filter stopped at step 7 (t = 0.25): a non-finite value appeared in the state"
+        );
+        // A sensor's failure names the sensor as the model does.
+        let model = crate::request::validate::model(
+            &serde_json::json!({"states": ["pos", "vel"],
+                "dynamics": {"rates": {"pos": "vel", "vel": "0"}},
+                "sensors": {"encoder": {"measures": "pos", "std": 0.01},
+                            "tachometer": {"measures": "vel", "std": 0.1}}}),
+            "/model",
+            &crate::config::Limits::default(),
+        )
+        .unwrap();
+        let cause = FilterError::SensorNonFinite {
+            sensor: 1,
+            what: "Jacobian",
+        };
+        let p = step_problem(step(cause), &model);
+        assert!(p.type_uri.ends_with("/numerical-failure"));
+        assert_eq!(
+            p.detail,
+            "the filter stopped at step 7 (t = 0.25): a non-finite value appeared in the \
+             Jacobian of sensor \"tachometer\""
         );
         let p = Problem::from(step(FilterError::Deadline));
         assert!(p.type_uri.ends_with("/deadline-exceeded"), "{}", p.type_uri);

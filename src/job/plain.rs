@@ -5,6 +5,7 @@
 //! pipeline ([`super::pipeline`]) runs it too, with the lines parsed and the records
 //! written elsewhere.
 
+use super::failure::step_problem;
 use super::setup::Guard;
 use crate::filter::run::Run;
 use crate::job::records::Records;
@@ -64,7 +65,7 @@ impl Lines<'_> {
             preds.write(run, self.writer, Some(&reading.t))?;
             let done = run
                 .step(reading, "")
-                .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
+                .map_err(|e| problem_under(step_problem(e, run.model()), &line_pointer(i)))?;
             if done.skipped {
                 // A late line skipped under `filter.late: "skip"` has no estimate.
                 continue;

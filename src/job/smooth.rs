@@ -2,6 +2,7 @@
 //! Rauch–Tung–Striebel pass ([`crate::filter::smoother`]) and write the smoothed
 //! estimates.
 
+use super::failure::step_problem;
 use super::plain::{line_pointer, line_problem, problem_under, Lines, Predictions};
 use crate::filter::run::Run;
 use crate::filter::smoother::{rts, Stored};
@@ -29,7 +30,7 @@ impl Lines<'_> {
             let mut predicted = None;
             let done = run
                 .step_capturing(&reading, "", Some(&mut predicted))
-                .map_err(|e| problem_under(e.into(), &line_pointer(i)))?;
+                .map_err(|e| problem_under(step_problem(e, run.model()), &line_pointer(i)))?;
             if done.skipped {
                 continue;
             }

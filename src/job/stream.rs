@@ -2,6 +2,7 @@
 //! line becomes one estimate line and the end one `{posterior, summary}` line. Memory does
 //! not grow with the number of lines.
 
+use super::failure::step_problem;
 use super::plain::{line_problem, stats};
 use super::setup::{setup, Setup};
 use crate::config::Limits;
@@ -71,7 +72,7 @@ impl Stream {
             p
         })?;
         let done = self.run.step(&self.reading, "").map_err(|e| {
-            let mut p = Problem::from(e);
+            let mut p = step_problem(e, self.run.model());
             p.detail = format!("line {line_no}: {}", p.detail);
             p
         })?;

@@ -4,6 +4,7 @@
 //!
 //! | file | holds | source |
 //! | --- | --- | --- |
+//! | [`array_update`] | square-root array form of the Kalman update, `P⁺ = L⁺ L⁺ᵀ` | Kailath, Sayed & Hassibi ch. 12 |
 //! | [`cholesky`](mod@cholesky) | `A = L Lᵀ` (definite and semi-definite), triangular solves | Golub & Van Loan §4.2 |
 //! | [`lu`] | `P A = L U` with partial pivoting, solve in place | Golub & Van Loan §3.4 |
 //! | [`products`] | `A B`, `A Bᵀ`, `+=` forms, `Φ P Φᵀ + Q`, dot product | Golub & Van Loan §1.1, §1.5 |
@@ -33,6 +34,7 @@
 //!
 //! This module sits below `filter`, `dynamics`, `model` and `request` and imports none of them.
 
+pub mod array_update;
 pub mod cholesky;
 pub mod finite;
 pub mod lu;
@@ -41,6 +43,7 @@ pub mod products;
 pub mod repair;
 pub mod symmetric_eigen;
 
+pub use array_update::{noise_factor, triangularize_rows, ArrayError, ArrayUpdate, RowOutcome};
 pub use cholesky::{
     cholesky, cholesky_psd, cholesky_solve, mahalanobis, solve_lower, solve_lower_transposed,
     NotPositive,

@@ -6,6 +6,7 @@ mod affine_sensor;
 mod errors;
 mod properties;
 mod r10_integration;
+mod r15_long_gaps;
 mod r2_alpha_beta;
 mod r3_riccati;
 mod r4_unscented_linear;

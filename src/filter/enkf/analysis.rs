@@ -10,8 +10,10 @@
 //!
 //! (Evensen 2003, Ocean Dynamics 53, §4, from memory). Multiplicative inflation
 //! `x_j ← x̄ + ρ (x_j − x̄)` widens the forecast first (Anderson & Anderson 1999, MWR 127).
-//! Only the perturbed update needs all of `S` and `C`; the transform needs each sensor's
-//! block of `S` for its own NIS.
+//! The perturbed update forms all of `S` (and `C`, kept in the shared buffers) for the
+//! gate, and takes its gain from the square-root array of `perturbed.rs`; the transform
+//! needs each sensor's block of `S` for its own NIS. After either, `spread.rs` makes sure
+//! the members kept a positive definite spread.
 
 use super::members::Enkf;
 use crate::filter::FilterError;
@@ -142,9 +144,6 @@ impl Enkf {
         if !any {
             return Ok(false);
         }
-        if need_c {
-            self.core.obs.gain()?;
-        }
         let ma = self.core.obs.ma;
         let r = &self.core.obs.r_acc[..ma * ma];
         // The accepted rows of a diagonal R.
@@ -167,17 +166,27 @@ impl Enkf {
                 .map_err(|_| FilterError::NotPositive("reading noise"))?;
         }
         match self.cfg.update {
-            EnsembleUpdate::Perturbed => self.perturbed_update(),
+            EnsembleUpdate::Perturbed => {
+                self.perturbed_gain()?;
+                self.perturbed_update();
+            }
             EnsembleUpdate::Deterministic => {
+                // The forecast anomalies, kept for `keep_spread`'s array should it be needed.
+                self.fill_anomalies();
                 self.transform_update()?;
                 let nis = self.transform_nis();
                 self.core.obs.set_joint_nis(nis, only_check);
+                // S = L_R M L_Rᵀ: ln det S = 2 Σ ln (L_R)_aa + ln det M.
+                let lr = &self.ws.noise_factor[..ma * ma];
+                let log_det_r: f64 = (0..ma).map(|a| 2.0 * lr[a + a * ma].ln()).sum();
+                self.core.obs.log_det_s = log_det_r + self.ws.log_det_m;
             }
         }
         self.refresh_mean();
         if !all_finite(self.ensemble.as_slice()) {
             return Err(FilterError::NonFinite("analysis members"));
         }
+        self.keep_spread(self.cfg.update == EnsembleUpdate::Perturbed)?;
         Ok(true)
     }
 }

@@ -12,7 +12,7 @@ use super::workspace::Workspace;
 use crate::filter::observe::PointObserver;
 use crate::filter::shared::FilterCore;
 use crate::filter::{Estimator, FilterError};
-use crate::linalg::{all_finite, cholesky_psd, gemm_nt_upper, symmetrize};
+use crate::linalg::{all_finite, cholesky, cholesky_psd, gemm_nt_upper, symmetrize};
 use crate::model::Reading;
 use crate::model::{Ensemble, Integration, Model};
 use nalgebra::{DMatrix, DVector};
@@ -205,12 +205,19 @@ impl Estimator for Enkf {
         if noisy {
             let n = self.ensemble.ncols();
             symmetrize(&mut self.ws.process_noise);
-            cholesky_psd(
+            // The definite factor first: the semi-definite one zeroes every pivot below
+            // 1e-10 of the largest variance, which after a long gap (Q's entries growing
+            // like T, T³, T⁵, …) drops all but one direction of the noise and leaves the
+            // members on a line, their covariance singular (R15). A Q that is only
+            // semi-definite (states without noise) still takes the semi-definite factor.
+            let (q, lq) = (
                 self.ws.process_noise.as_slice(),
                 &mut self.ws.process_noise_factor,
-                n,
-            )
-            .map_err(|_| FilterError::NotPositive("process noise covariance"))?;
+            );
+            if cholesky(q, lq, n).is_err() {
+                cholesky_psd(q, lq, n)
+                    .map_err(|_| FilterError::NotPositive("process noise covariance"))?;
+            }
             let purpose = if self.side {
                 Purpose::SidePrediction
             } else {

@@ -95,7 +95,7 @@ impl Enkf {
         if ma < nn && !self.always_full {
             return self.transform_low_rank();
         }
-        // A = (N−1) I + ỸᵀỸ, column j for all i ≤ j at once from Ỹ transposed.
+        // ỸᵀỸ, column j for all i ≤ j at once from Ỹ transposed.
         gemm_nt_upper(
             &self.ws.whitened_t,
             &self.ws.whitened_t,
@@ -103,21 +103,30 @@ impl Enkf {
             (nn, ma, nn),
         );
         for j in 0..nn {
-            self.ws.transform_gram[(j, j)] += nf - 1.0;
             for i in 0..j {
                 self.ws.transform_gram[(j, i)] = self.ws.transform_gram[(i, j)];
             }
         }
-        // Eigenvectors overwrite `big`.
+        // Eigenvectors overwrite `transform_gram`. The eigenvalues of A = (N−1) I + ỸᵀỸ are
+        // N−1 plus those of the Gram matrix ỸᵀỸ, which is positive semi-definite: its
+        // eigenvalues are clipped at zero before N−1 is added, so A stays positive
+        // definite however large Ỹ grows (a reading far more precise than the spread, after
+        // a long gap, where adding N−1 first would drown in the rounding of ỸᵀỸ).
         if !symmetric_eigen(
             self.ws.transform_gram.as_mut_slice(),
             &mut self.ws.eigenvalues,
             &mut self.ws.eigen_scratch,
             nn,
-        ) || self.ws.eigenvalues[..nn].iter().any(|l| !(*l > 0.0))
-        {
-            return Err(FilterError::NotPositive("ensemble transform matrix"));
+        ) {
+            return Err(FilterError::NonFinite("ensemble transform matrix"));
         }
+        let mut log_det_m = 0.0;
+        for l in self.ws.eigenvalues[..nn].iter_mut() {
+            // det M = det(I + ỸᵀỸ/(N−1)) (Sylvester's determinant identity).
+            log_det_m += (l.max(0.0) / (nf - 1.0)).ln_1p();
+            *l = l.max(0.0) + (nf - 1.0);
+        }
+        self.ws.log_det_m = log_det_m;
         // w̄ = V Λ⁻¹ Vᵀ Ỹᵀ d̃ ; W = √(N−1) V Λ^{-1/2} Vᵀ.
         let v = self.ws.transform_gram.as_slice();
         // Each sum below runs over its index in order from −0.0, with the outputs as
@@ -250,6 +259,11 @@ impl Enkf {
             }
         }
         self.ws.mean_weights.fill(0.0);
+        // ln det M = Σ ln(1 + σₖ²/(N−1)), M = I + ỸỸᵀ/(N−1) (σₖ² clipped at zero).
+        self.ws.log_det_m = self.ws.eigenvalues[..ma]
+            .iter()
+            .map(|s2| (s2.max(0.0) / (nf - 1.0)).ln_1p())
+            .sum();
         for k in 0..ma {
             let s2 = self.ws.eigenvalues[k];
             if !(s2 > 1e-14 * scale) {
@@ -394,6 +408,13 @@ mod tests {
                 (got - direct).abs() < 1e-10 * direct,
                 "{got} vs {direct} (full {full})"
             );
+            // ln det S against nalgebra's determinant of the directly formed S.
+            let want = s.determinant().ln();
+            let got = f.core.obs.log_det_s;
+            assert!(
+                (got - want).abs() < 1e-10,
+                "ln det S {got} vs {want} (full {full})"
+            );
             // Each row's predicted variance (reported with its innovation).
             for r in 0..3 {
                 let got = f.core.obs.s[r + r * 3];
@@ -426,6 +447,46 @@ mod tests {
                 (got - direct2).abs() < 1e-10 * direct2,
                 "{got} vs {direct2}"
             );
+            let want = s2.determinant().ln();
+            let got = f.core.obs.log_det_s;
+            assert!((got - want).abs() < 1e-10, "ln det S {got} vs {want}");
         }
+    }
+
+    #[test]
+    fn perturbed_update_sets_log_det_s_from_the_sample_statistics() {
+        // The perturbed update's S = Y'Y'ᵀ/(N−1) + R (Evensen 2003, from memory); its
+        // ln det must equal nalgebra's determinant of the same S formed from the members.
+        let model = three_states(two_sensors());
+        let mut cfg = etkf(5);
+        cfg.update = crate::model::EnsembleUpdate::Perturbed;
+        let ((mean, cov), integ) = (prior(), integration());
+        let mut f = Enkf::new(&model, integ, cfg, &mean, &cov, None, 0).unwrap();
+        let nn = 25;
+        let ys: Vec<DVector<f64>> = (0..nn)
+            .map(|j| {
+                let x = &f.ensemble;
+                DVector::from_vec(vec![
+                    x[(j, 0)] + x[(j, 2)],
+                    x[(j, 1)] * x[(j, 1)],
+                    x[(j, 0)],
+                ])
+            })
+            .collect();
+        let ybar = ys.iter().fold(DVector::zeros(3), |a, y| a + y) / nn as f64;
+        let mut s = DMatrix::from_diagonal(&DVector::from_vec(vec![0.09, 0.25, 0.04]));
+        for y in &ys {
+            s += (y - &ybar) * (y - &ybar).transpose() / (nn as f64 - 1.0);
+        }
+        let reading = Reading {
+            t: Instant::seconds(0.0),
+            sensors: vec![(0, 0), (1, 1)],
+            z: vec![0.6, 0.4, 1.3],
+            ..Default::default()
+        };
+        assert!(f.update(&model, &reading, &[], 0.0, None).unwrap());
+        let want = s.determinant().ln();
+        let got = f.core.obs.log_det_s;
+        assert!((got - want).abs() < 1e-10, "ln det S {got} vs {want}");
     }
 }

@@ -67,6 +67,19 @@ pub(super) struct Workspace {
     pub state_anomalies: Vec<f64>,
     /// Predicted-reading anomalies per member, `y_rk − ȳ_r` at `[r + k m]` (`m × N`).
     pub reading_anomalies: Vec<f64>,
+    /// The array `[L_R, Y'/√(N−1); 0, X'/√(N−1); 0, 1ᵀ]`, rotated to
+    /// `[S^{1/2}, 0; K̄, X̃; 0, u₂ᵀ]` (`(m + n + 1) × (m + N)`, leading dimension
+    /// `m + n + 1`): the perturbed update's gain, and the analysis anomalies of the
+    /// fallback when the members lose their spread to rounding.
+    pub gain_array: Vec<f64>,
+    /// The analysis members' covariance and its Cholesky factor, for the spread check
+    /// (`n × n` each).
+    pub check_cov: Vec<f64>,
+    pub check_factor: Vec<f64>,
+    /// The reflector `v = u₂ − 1` of the fallback (`N`).
+    pub reflector: Vec<f64>,
+    /// ln det M of the last transform, M = I + ỸỸᵀ/(N−1) (so ln det S = ln det R + this).
+    pub log_det_m: f64,
     /// Running sums, one per output of an innermost loop (`max(n, m, N)`).
     pub sums: Vec<f64>,
 }
@@ -102,6 +115,11 @@ impl Workspace {
             member_anomalies: vec![0.0; nn * n],
             state_anomalies: vec![0.0; n * nn],
             reading_anomalies: vec![0.0; m * nn],
+            gain_array: vec![0.0; (m + n + 1) * (m + nn)],
+            check_cov: vec![0.0; n * n],
+            check_factor: vec![0.0; n * n],
+            reflector: vec![0.0; nn],
+            log_det_m: 0.0,
             sums: vec![0.0; n.max(m).max(nn)],
         }
     }
