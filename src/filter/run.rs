@@ -7,6 +7,7 @@
 
 use crate::diagnostics::warnings::{WarningKind, Warnings};
 use crate::diagnostics::{chi2, nis::NisTally};
+use crate::filter::bounds::{BoundsKeeper, BoundsTally};
 use crate::filter::ekf::Ekf;
 use crate::filter::enkf::Enkf;
 use crate::filter::ukf::Ukf;
@@ -28,6 +29,8 @@ pub struct Counts {
     pub rejected: u64,
     /// NIS of the accepted readings.
     pub nis: NisTally,
+    /// What the parameters' bounds did (`summary.bounds`).
+    pub bounds: BoundsTally,
 }
 
 /// What one step did (for the smoother).
@@ -50,6 +53,7 @@ pub struct Run {
     inputs: DVector<f64>,
     thresholds: Option<Vec<f64>>,
     keep_cross: bool,
+    bounds: BoundsKeeper,
     /// Counters.
     pub counts: Counts,
     /// What the run noticed (`summary.warnings`).
@@ -184,6 +188,11 @@ impl Run {
                 .map(|s| chi2::quantile(p, s.dim as f64))
                 .collect()
         });
+        let bounds = BoundsKeeper::new(&model, cfg.method == Method::Enkf);
+        let counts = Counts {
+            bounds: bounds.tally(),
+            ..Counts::default()
+        };
         let mut warnings = Warnings::default();
         if !has_process_noise(&model) {
             warnings.note(WarningKind::NoProcessNoise, None, None, prior.t, || {
@@ -200,7 +209,8 @@ impl Run {
             inputs: prior.inputs,
             thresholds,
             keep_cross,
-            counts: Counts::default(),
+            bounds,
+            counts,
             warnings,
         })
     }
@@ -344,6 +354,16 @@ impl Run {
             }
         }
         self.est.settle();
+        self.bounds
+            .after_step(
+                self.est.as_mut(),
+                &self.model,
+                r.t,
+                updated,
+                &mut self.warnings,
+                &mut self.counts.bounds,
+            )
+            .map_err(|e| self.failure(e, &r.t))?;
         self.est.advance_step();
         self.counts.steps += 1;
         Ok(StepDone { predicted, updated })

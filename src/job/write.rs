@@ -318,6 +318,14 @@ impl Writer {
             updates: u64,
             rejected: u64,
             nis: NisSummary,
+            /// Only when some parameter has bounds: how they were kept (`filter::bounds`).
+            #[serde(skip_serializing_if = "Option::is_none")]
+            bounds: Option<BoundsSummary>,
+        }
+        #[derive(serde::Serialize)]
+        struct BoundsSummary {
+            method: crate::filter::bounds::BoundsMethod,
+            applied: u64,
         }
         buf.extend_from_slice(b"\"summary\":");
         let s = Summary {
@@ -325,6 +333,10 @@ impl Writer {
             updates: counts.updates,
             rejected: counts.rejected,
             nis: counts.nis.summary(),
+            bounds: counts.bounds.method.map(|method| BoundsSummary {
+                method,
+                applied: counts.bounds.applied,
+            }),
         };
         buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
         // The warnings go inside the object just written: drop its closing brace.

@@ -1,11 +1,13 @@
 //! Ensemble Kalman filter: the members and their forecast (`members.rs`), the analysis
 //! shared by both update forms (`analysis.rs`), the perturbed-observations update
 //! (`perturbed.rs`, Burgers et al. 1998), the ensemble transform (`transform.rs`, Bishop
-//! et al. 2001, Hunt et al. 2007), and the buffers they work in (`workspace.rs`).
+//! et al. 2001, Hunt et al. 2007), the estimated parameters' spread relaxation and bounds
+//! (`relax.rs`, Whitaker & Hamill 2012), and the buffers they work in (`workspace.rs`).
 
 mod analysis;
 mod members;
 mod perturbed;
+mod relax;
 mod transform;
 mod workspace;
 
