@@ -9,7 +9,7 @@
 //! so the readings are that truth plus seeded Gaussian noise and no integrator stands
 //! between the checks and their source.
 
-use super::support::ok;
+use super::support::{estimate, ok};
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};
@@ -247,5 +247,95 @@ fn a_state_leaving_its_bounds_is_warned_with_the_lines_outside() {
         );
         // Watched only: no summary.bounds (no parameter is bounded).
         assert!(out["summary"].get("bounds").is_none());
+    }
+}
+
+/// Bounds that cannot hold, and starting values outside them, are refused at their JSON
+/// Pointers; a posterior sent back with a state outside its (watched) bounds continues.
+#[test]
+fn bound_faults_are_refused_at_their_pointers() {
+    let lines = readings(2.0, 10.0, 5, 3);
+    let faults = |b: &Value| -> Vec<(String, String)> {
+        let p = estimate(b).expect_err("should be refused");
+        assert_eq!(p.status, 422, "{p}");
+        p.errors
+            .iter()
+            .map(|e| (e.pointer.clone(), e.detail.clone()))
+            .collect()
+    };
+    let k = json!({"initial": 1.0, "std": 1.0, "min": 3.0, "max": 1.0});
+    assert_eq!(
+        faults(&body(k, json!({"method": "ekf"}), lines.clone(), 10.0)),
+        [(
+            "/model/parameters/k/min".to_string(),
+            "min must be below max, got min 3 and max 1".to_string()
+        )]
+    );
+    let k = json!({"initial": -0.5, "std": 1.0, "min": 0.0});
+    assert_eq!(
+        faults(&body(k, json!({"method": "ekf"}), lines.clone(), 10.0)),
+        [(
+            "/model/parameters/k/initial".to_string(),
+            "initial -0.5 lies outside its bounds [0, inf]".to_string()
+        )]
+    );
+    let mut b = body(json!(2.0), json!({"method": "ekf"}), lines.clone(), 10.0);
+    b["model"]["bounds"] = json!({"pressure": {"max": 3}});
+    assert_eq!(
+        faults(&b),
+        [(
+            "/model/bounds/pressure".to_string(),
+            "'pressure' is not a model state; states are temp".to_string()
+        )]
+    );
+    // A prior (a posterior sent back) whose bounded parameter lies outside.
+    let k = json!({"initial": 1.0, "std": 1.0, "min": 0.0});
+    let mut b = body(k.clone(), json!({"method": "ekf"}), lines.clone(), 10.0);
+    b["prior"] = json!({"t": 0.0, "mean": {"temp": 20.0, "k": -1.0},
+                        "covariance": [[1.0, 0.0], [0.0, 1.0]], "inputs": {"heater": 10.0}});
+    assert_eq!(
+        faults(&b),
+        [(
+            "/prior/mean/k".to_string(),
+            "mean -1 lies outside its bounds [0, inf]".to_string()
+        )]
+    );
+    // A state outside its watched bounds in the prior is accepted, and warned about.
+    let mut b = body(k, json!({"method": "ekf"}), lines, 10.0);
+    b["model"]["bounds"] = json!({"temp": {"min": 25}});
+    let out = ok(&b);
+    let w = warnings_of(&out, "out_of_bounds");
+    assert_eq!(w.len(), 1);
+    assert_eq!(w[0]["count"], 5);
+    assert!(w[0]["detail"]
+        .as_str()
+        .unwrap()
+        .contains("below its min 25"));
+}
+
+/// The bounds keep the resume promise: four requests, each from the previous posterior,
+/// answer bit for bit what one request answers (API contract), with the bound at work.
+#[test]
+fn bounded_runs_resume_bit_for_bit() {
+    let lines = readings(0.02, 10.0, 400, 11);
+    let k = json!({"initial": 0.3, "std": 0.3, "min": 0.0});
+    for method in ["ekf", "ukf", "enkf"] {
+        let filter = json!({"method": method, "ensemble": {"members": 32, "seed": 4}});
+        let single = ok(&body(k.clone(), filter.clone(), lines.clone(), 10.0));
+        assert!(single["summary"]["bounds"]["applied"].as_u64().unwrap() > 0);
+        let mut b = body(k.clone(), filter.clone(), Vec::new(), 10.0);
+        let mut estimates = Vec::new();
+        for chunk in lines.chunks(100) {
+            b["measurements"] = json!(chunk);
+            let out = ok(&b);
+            estimates.extend(out["estimates"].as_array().unwrap().iter().cloned());
+            b["prior"] = out["posterior"].clone();
+        }
+        assert_eq!(
+            single["estimates"].as_array().unwrap(),
+            &estimates,
+            "{method}"
+        );
+        assert_eq!(single["posterior"], b["prior"], "{method}");
     }
 }
