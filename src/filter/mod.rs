@@ -3,6 +3,7 @@
 //! what every filter holds ([`shared`]), the run loop ([`run`]) and the RTS smoother
 //! ([`smoother`]); their dense kernels live in [`crate::linalg`].
 
+pub mod bounds;
 pub mod ekf;
 pub mod enkf;
 pub mod observe;

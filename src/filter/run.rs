@@ -11,6 +11,7 @@
 use crate::diagnostics::chi2;
 use crate::diagnostics::nis::{NisSummary, NisTally, Refusals};
 use crate::diagnostics::warnings::{WarningKind, Warnings};
+use crate::filter::bounds::{BoundsKeeper, BoundsTally};
 use crate::filter::ekf::Ekf;
 use crate::filter::enkf::Enkf;
 use crate::filter::ukf::Ukf;
@@ -45,6 +46,8 @@ pub struct Counts {
     /// prediction-error decomposition of the readings' likelihood (Schweppe 1965, IEEE
     /// Trans. Information Theory 11(1)).
     pub log_likelihood: f64,
+    /// What the parameters' bounds did (`summary.bounds`).
+    pub bounds: BoundsTally,
 }
 
 /// A sensor refused this many times in a row gets a `refused_in_a_row` warning (a
@@ -90,6 +93,7 @@ pub struct Run {
     /// order as one long run would add them (so a chain of requests gives the same sums
     /// bit for bit).
     running: Running,
+    bounds: BoundsKeeper,
     /// Counters.
     pub counts: Counts,
     /// What the run noticed (`summary.warnings`).
@@ -297,6 +301,11 @@ impl Run {
                 .map(|s| chi2::quantile(p, s.dim as f64))
                 .collect()
         });
+        let bounds = BoundsKeeper::new(&model, cfg.method == Method::Enkf);
+        let counts = Counts {
+            bounds: bounds.tally(),
+            ..Counts::default()
+        };
         // Room for every kind on a few sensors and states: recording one in the loop then
         // never allocates.
         let mut warnings = Warnings::with_capacity(32);
@@ -322,7 +331,8 @@ impl Run {
             measured,
             prior_var,
             running: prior.running,
-            counts: Counts::default(),
+            bounds,
+            counts,
             warnings,
         })
     }
@@ -469,6 +479,16 @@ impl Run {
             self.tally(updated, &r.t);
         }
         self.est.settle();
+        self.bounds
+            .after_step(
+                self.est.as_mut(),
+                &self.model,
+                r.t,
+                updated,
+                &mut self.warnings,
+                &mut self.counts.bounds,
+            )
+            .map_err(|e| self.failure(e, &r.t))?;
         self.est.advance_step();
         self.counts.steps += 1;
         Ok(StepDone {

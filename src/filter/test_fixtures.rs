@@ -47,5 +47,6 @@ pub(super) fn etkf(seed: u64) -> Ensemble {
         seed,
         inflation: 1.0,
         update: EnsembleUpdate::Deterministic,
+        parameter_relaxation: 0.0,
     }
 }

@@ -327,6 +327,14 @@ impl Writer {
             skipped: u64,
             log_likelihood: f64,
             nis: NisSummary,
+            /// Only when some parameter has bounds: how they were kept (`filter::bounds`).
+            #[serde(skip_serializing_if = "Option::is_none")]
+            bounds: Option<BoundsSummary>,
+        }
+        #[derive(serde::Serialize)]
+        struct BoundsSummary {
+            method: crate::filter::bounds::BoundsMethod,
+            applied: u64,
         }
         fn is_zero(x: &u64) -> bool {
             *x == 0
@@ -341,6 +349,10 @@ impl Writer {
             skipped: counts.skipped,
             log_likelihood: counts.log_likelihood,
             nis: run.nis_summary(),
+            bounds: counts.bounds.method.map(|method| BoundsSummary {
+                method,
+                applied: counts.bounds.applied,
+            }),
         };
         buf.extend_from_slice(&serde_json::to_vec(&s).unwrap_or_default());
         // The warnings go inside the object just written: drop its closing brace.

@@ -18,6 +18,36 @@ pub struct EstimatedParameter {
     pub random_walk: f64,
 }
 
+/// The interval a state should stay in: `min`/`max` of an estimated parameter (kept
+/// inside by the filter, see `crate::filter::bounds`) or of a model state (`model.bounds`,
+/// only watched: leaving it gives an `out_of_bounds` warning). A side not given is
+/// infinite.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Bounds {
+    /// Lower bound, `-inf` when none.
+    pub min: f64,
+    /// Upper bound, `+inf` when none.
+    pub max: f64,
+}
+
+impl Bounds {
+    /// No bound on either side.
+    pub const NONE: Bounds = Bounds {
+        min: f64::NEG_INFINITY,
+        max: f64::INFINITY,
+    };
+
+    /// Whether either side is finite.
+    pub fn any(&self) -> bool {
+        self.min > f64::NEG_INFINITY || self.max < f64::INFINITY
+    }
+
+    /// Whether `x` lies inside (bounds included).
+    pub fn contains(&self, x: f64) -> bool {
+        self.min <= x && x <= self.max
+    }
+}
+
 /// Whether a linear model is continuous or discrete in time.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum LinearTime {
@@ -117,6 +147,9 @@ pub struct Model {
     pub noise: ProcessNoise,
     /// Sensors in the order given.
     pub sensors: Vec<Sensor>,
+    /// Bounds per state, over all `n` states (model states from `model.bounds`, then the
+    /// parameters' `min`/`max`); [`Bounds::NONE`] where none were given.
+    pub bounds: Vec<Bounds>,
 }
 
 impl Model {
@@ -143,6 +176,11 @@ impl Model {
     /// Index of the sensor called `name`.
     pub fn sensor_index(&self, name: &str) -> Option<usize> {
         self.sensors.iter().position(|s| s.name == name)
+    }
+
+    /// Whether any estimated parameter carries a bound the filter must keep.
+    pub fn has_parameter_bounds(&self) -> bool {
+        self.bounds[self.n_model..].iter().any(Bounds::any)
     }
 
     /// Index of the input called `name`.

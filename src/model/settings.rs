@@ -57,6 +57,9 @@ pub struct Ensemble {
     pub inflation: f64,
     /// Analysis variant.
     pub update: EnsembleUpdate,
+    /// Relaxation of each estimated parameter's analysis spread towards its forecast
+    /// spread, `α` of RTPS in [0, 1] (`filter::enkf::relax`); 0 turns it off.
+    pub parameter_relaxation: f64,
 }
 
 /// Integration settings for continuous nonlinear models.

@@ -269,6 +269,24 @@ pub enum SpecErrorKind {
     },
     /// Ensemble members in the prior of a filter that has none.
     MembersWithoutEnsemble,
+    /// Bounds whose `min` is not below their `max`.
+    BoundsOrder {
+        /// The lower bound given.
+        min: f64,
+        /// The upper bound given.
+        max: f64,
+    },
+    /// A starting value outside the bounds given for it.
+    OutsideBounds {
+        /// The field's name (`initial`).
+        what: &'static str,
+        /// The value given.
+        value: f64,
+        /// Lower bound (`-inf` when none).
+        min: f64,
+        /// Upper bound (`+inf` when none).
+        max: f64,
+    },
 }
 
 /// "a, b, c" for messages listing known names.
@@ -314,6 +332,15 @@ impl fmt::Display for SpecErrorKind {
             K::UnknownName { name, known } => {
                 write!(f, "unknown name '{name}'; known names are {}", list(known))
             }
+            K::BoundsOrder { min, max } => {
+                write!(f, "min must be below max, got min {min} and max {max}")
+            }
+            K::OutsideBounds {
+                what,
+                value,
+                min,
+                max,
+            } => write!(f, "{what} {value} lies outside its bounds [{min}, {max}]"),
             K::NotAModelState { name, states } => {
                 write!(
                     f,
@@ -337,8 +364,8 @@ impl fmt::Display for SpecErrorKind {
             }
             K::ParameterShape { found } => write!(
                 f,
-                "a parameter is a number (fixed) or an object {{initial, std, random_walk}} \
-                 (estimated), found {found}"
+                "a parameter is a number (fixed) or an object {{initial, std, random_walk, \
+                 min, max}} (estimated), found {found}"
             ),
             K::DynamicsForm { given } => write!(
                 f,

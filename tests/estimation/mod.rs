@@ -3,6 +3,7 @@
 //! functions the server does, so the whole path from JSON in to JSON out is exercised.
 
 mod affine_sensor;
+mod bounds;
 mod errors;
 mod properties;
 mod r10_integration;

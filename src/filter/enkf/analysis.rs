@@ -44,6 +44,7 @@ impl Enkf {
             }
             self.refresh_mean();
         }
+        self.note_forecast_spread(model);
         self.core.obs.begin(model, reading);
         self.pobs
             .eval(model, &self.core.obs.checks, &self.ensemble, u, t);
@@ -183,6 +184,7 @@ impl Enkf {
             }
         }
         self.refresh_mean();
+        self.relax_and_bound(model);
         if !all_finite(self.ensemble.as_slice()) {
             return Err(FilterError::NonFinite("analysis members"));
         }

@@ -106,7 +106,7 @@ impl Enkf {
             side: false,
             always_full: false,
             pobs: PointObserver::new(model, nn),
-            ws: Workspace::new(nn, n, mm),
+            ws: Workspace::new(nn, n, mm, model.estimated.len()),
         };
         f.refresh_moments();
         Ok(f)

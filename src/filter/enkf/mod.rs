@@ -2,11 +2,13 @@
 //! shared by both update forms (`analysis.rs`), the perturbed-observations update
 //! (`perturbed.rs`, Burgers et al. 1998), the ensemble transform (`transform.rs`, Bishop
 //! et al. 2001, Hunt et al. 2007), the rebuild of members whose spread rounding took away
-//! (`spread.rs`), and the buffers they work in (`workspace.rs`).
+//! (`spread.rs`), the estimated parameters' spread relaxation and bounds (`relax.rs`,
+//! Whitaker & Hamill 2012), and the buffers they work in (`workspace.rs`).
 
 mod analysis;
 mod members;
 mod perturbed;
+mod relax;
 mod spread;
 mod transform;
 mod workspace;

@@ -82,11 +82,14 @@ pub(super) struct Workspace {
     pub log_det_m: f64,
     /// Running sums, one per output of an innermost loop (`max(n, m, N)`).
     pub sums: Vec<f64>,
+    /// Forecast spread (std) of each estimated parameter before the analysis, for the
+    /// relaxation in `relax.rs` (`n` − model states).
+    pub forecast_spread: Vec<f64>,
 }
 
 impl Workspace {
     /// Buffers for `members` members, `n` states and `m` reading rows over all sensors.
-    pub(super) fn new(members: usize, n: usize, m: usize) -> Self {
+    pub(super) fn new(members: usize, n: usize, m: usize, parameters: usize) -> Self {
         let nn = members;
         Self {
             member_weights: vec![1.0 / nn as f64; nn],
@@ -121,6 +124,7 @@ impl Workspace {
             reflector: vec![0.0; nn],
             log_det_m: 0.0,
             sums: vec![0.0; n.max(m).max(nn)],
+            forecast_spread: vec![0.0; parameters],
         }
     }
 }

@@ -91,6 +91,9 @@ pub struct RawEnsemble<'a> {
     #[serde(default)]
     #[serde(borrow)]
     pub update: Option<Field<&'a str>>,
+    /// Relaxation of estimated parameters' spread towards the forecast spread.
+    #[serde(default)]
+    pub parameter_relaxation: Option<Field<f64>>,
     /// Keys the object does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
@@ -98,7 +101,13 @@ pub struct RawEnsemble<'a> {
 
 impl RawEnsemble<'_> {
     /// The object's fields, in the order messages list them.
-    pub const KNOWN: &'static [&'static str] = &["members", "seed", "inflation", "update"];
+    pub const KNOWN: &'static [&'static str] = &[
+        "members",
+        "seed",
+        "inflation",
+        "update",
+        "parameter_relaxation",
+    ];
 }
 
 /// `filter.integration`.

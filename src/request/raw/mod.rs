@@ -23,7 +23,7 @@ mod tests;
 pub use field::{kind_of, section, Entries, Expected, Field, Matrix};
 pub use filter::{RawEnsemble, RawFilter, RawGate, RawIntegration, RawReacquire, RawUnscented};
 pub use model::{
-    FormulaText, Measures, RawDynamics, RawEstimated, RawLinear, RawModel, RawParameter,
+    FormulaText, Measures, RawBounds, RawDynamics, RawEstimated, RawLinear, RawModel, RawParameter,
     RawProcessNoise, RawSensor, Spread,
 };
 pub use output::RawOutput;

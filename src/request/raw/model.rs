@@ -31,6 +31,10 @@ pub struct RawModel<'a> {
     #[serde(default)]
     #[serde(borrow)]
     pub sensors: Option<Field<Entries<'a, RawSensor<'a>>>>,
+    /// Bounds of model states, by name (watched, not enforced).
+    #[serde(default)]
+    #[serde(borrow)]
+    pub bounds: Option<Field<Entries<'a, RawBounds>>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
@@ -45,6 +49,7 @@ impl RawModel<'_> {
         "dynamics",
         "process_noise",
         "sensors",
+        "bounds",
     ];
 }
 
@@ -74,6 +79,12 @@ pub struct RawEstimated {
     /// Random-walk spectral density.
     #[serde(default)]
     pub random_walk: Option<Field<f64>>,
+    /// Lowest value the parameter may take.
+    #[serde(default)]
+    pub min: Option<Field<f64>>,
+    /// Highest value the parameter may take.
+    #[serde(default)]
+    pub max: Option<Field<f64>>,
     /// Keys the object does not have (`drift`, the v1 name of `random_walk`, among them).
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
@@ -81,9 +92,28 @@ pub struct RawEstimated {
 
 impl RawEstimated {
     /// The object's fields, in the order messages list them.
-    pub const KNOWN: &'static [&'static str] = &["initial", "std", "random_walk"];
+    pub const KNOWN: &'static [&'static str] = &["initial", "std", "random_walk", "min", "max"];
     /// v1 names and the names that replaced them.
     pub const RENAMED: &'static [(&'static str, &'static str)] = &[("drift", "random_walk")];
+}
+
+/// One entry of `model.bounds`: the interval a model state should stay in.
+#[derive(Debug, Deserialize)]
+pub struct RawBounds {
+    /// Lower bound.
+    #[serde(default)]
+    pub min: Option<Field<f64>>,
+    /// Upper bound.
+    #[serde(default)]
+    pub max: Option<Field<f64>>,
+    /// Keys the object does not have.
+    #[serde(flatten)]
+    pub unknown: Map<String, Value>,
+}
+
+impl RawBounds {
+    /// The object's fields, in the order messages list them.
+    pub const KNOWN: &'static [&'static str] = &["min", "max"];
 }
 
 /// The `dynamics` object: exactly one of its three forms.
@@ -232,6 +262,7 @@ impl Expected for Spread {
 an_object!(
     RawModel<'_>,
     RawEstimated,
+    RawBounds,
     RawDynamics<'_>,
     RawLinear<'_>,
     RawProcessNoise<'_>,

@@ -107,12 +107,14 @@ const UNSCENTED: Unscented = Unscented {
     kappa: 0.0,
 };
 
-/// 64 members, seed 0, no inflation, perturbed-observation update.
+/// 64 members, seed 0, no inflation, perturbed-observation update, parameter spread
+/// relaxed 80 % of the way back to the forecast spread (`filter::enkf::relax`).
 const ENSEMBLE: Ensemble = Ensemble {
     members: 64,
     seed: 0,
     inflation: 1.0,
     update: EnsembleUpdate::Perturbed,
+    parameter_relaxation: 0.8,
 };
 
 /// Adaptive steps without a cap, rtol 1e-6, atol 1e-9.
@@ -174,6 +176,21 @@ fn ensemble(e: &RawEnsemble, ptr: &str, limits: &Limits, errs: &mut SpecErrors) 
                 SpecErrorKind::OutOfRange {
                     what: "inflation",
                     range: "in [1, 10]",
+                    value: x,
+                },
+            ),
+            None => {}
+        }
+    }
+    if let Some(r) = &e.parameter_relaxation {
+        let rp = child(ptr, "parameter_relaxation");
+        match number(r, &rp, errs) {
+            Some(x) if (0.0..=1.0).contains(&x) => out.parameter_relaxation = x,
+            Some(x) => errs.push(
+                &rp,
+                SpecErrorKind::OutOfRange {
+                    what: "parameter_relaxation",
+                    range: "in [0, 1]",
                     value: x,
                 },
             ),

@@ -2,16 +2,17 @@
 //! and sensors (each checked in its own file), into the checked [`Model`].
 
 use super::common::{
-    check_new_name, finite, non_negative, positive_value, present, required, typed, unknown_fields,
+    check_new_name, finite, non_negative, number, positive_value, present, required, typed,
+    unknown_fields,
 };
 use super::dynamics::{dynamics, process_noise};
 use super::sensors::sensors;
 use crate::config::Limits;
 use crate::formula::FormulaLimits;
-use crate::model::{EstimatedParameter, Model};
+use crate::model::{Bounds, EstimatedParameter, Model};
 use crate::problem::FieldError;
 use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
-use crate::request::raw::{self, Field, RawEstimated, RawModel, RawParameter};
+use crate::request::raw::{self, Entries, Field, RawBounds, RawEstimated, RawModel, RawParameter};
 use crate::request::reader::{child, index};
 use serde_json::Value;
 
@@ -55,13 +56,71 @@ fn name_list(
     out
 }
 
-/// An estimated parameter's prior and random-walk density; `None` after recording faults.
+/// `min`/`max` at `ptr`: each finite when given, `min` below `max`; a side not given is
+/// infinite. `None` after recording faults.
+fn bounds(
+    min: &Option<Field<f64>>,
+    max: &Option<Field<f64>>,
+    ptr: &str,
+    errs: &mut SpecErrors,
+) -> Option<Bounds> {
+    let side = |f: &Option<Field<f64>>, k: &str, none: f64, errs: &mut SpecErrors| match f {
+        Some(f) => number(f, &child(ptr, k), errs),
+        None => Some(none),
+    };
+    let lo = side(min, "min", f64::NEG_INFINITY, errs);
+    let hi = side(max, "max", f64::INFINITY, errs);
+    let (min, max) = (lo?, hi?);
+    if min >= max {
+        errs.push(child(ptr, "min"), SpecErrorKind::BoundsOrder { min, max });
+        return None;
+    }
+    Some(Bounds { min, max })
+}
+
+/// `model.bounds`: one `{min, max}` per named model state (watched, not enforced: a state
+/// that leaves its interval gives an `out_of_bounds` warning). One entry per model state.
+fn state_bounds(
+    f: &Field<Entries<RawBounds>>,
+    ptr: &str,
+    model_states: &[String],
+    errs: &mut SpecErrors,
+) -> Vec<Bounds> {
+    let mut out = vec![Bounds::NONE; model_states.len()];
+    let Some(entries) = typed(f, ptr, errs) else {
+        return out;
+    };
+    for (name, b) in &entries.0 {
+        let p = child(ptr, name);
+        let Some(i) = model_states.iter().position(|s| s == name) else {
+            errs.push(
+                &p,
+                SpecErrorKind::NotAModelState {
+                    name: name.to_string(),
+                    states: model_states.to_vec(),
+                },
+            );
+            continue;
+        };
+        let Some(b) = typed(b, &p, errs) else {
+            continue;
+        };
+        unknown_fields(&b.unknown, &p, RawBounds::KNOWN, &[], errs);
+        if let Some(b) = bounds(&b.min, &b.max, &p, errs) {
+            out[i] = b;
+        }
+    }
+    out
+}
+
+/// An estimated parameter's prior, random-walk density and bounds; `None` after recording
+/// faults. The prior mean `initial` must lie inside the bounds.
 fn estimated(
     e: &RawEstimated,
     name: &str,
     ptr: &str,
     errs: &mut SpecErrors,
-) -> Option<EstimatedParameter> {
+) -> Option<(EstimatedParameter, Bounds)> {
     unknown_fields(
         &e.unknown,
         ptr,
@@ -77,12 +136,30 @@ fn estimated(
         Some(f) => non_negative(f, &child(ptr, "random_walk"), "random_walk", errs),
         None => Some(0.0),
     };
-    Some(EstimatedParameter {
-        name: name.to_string(),
-        initial: initial?,
-        std: std?,
-        random_walk: random_walk?,
-    })
+    let b = bounds(&e.min, &e.max, ptr, errs);
+    if let (Some(x), Some(b)) = (initial, b) {
+        if !b.contains(x) {
+            errs.push(
+                child(ptr, "initial"),
+                SpecErrorKind::OutsideBounds {
+                    what: "initial",
+                    value: x,
+                    min: b.min,
+                    max: b.max,
+                },
+            );
+            return None;
+        }
+    }
+    Some((
+        EstimatedParameter {
+            name: name.to_string(),
+            initial: initial?,
+            std: std?,
+            random_walk: random_walk?,
+        },
+        b?,
+    ))
 }
 
 /// The checks of [`check_model`] once the section is known to be an object.
@@ -107,6 +184,7 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
     // Parameters: numbers are constants, objects are estimated as extra states.
     let mut constants: Vec<(String, f64)> = Vec::new();
     let mut estimated_params = Vec::new();
+    let mut parameter_bounds = Vec::new();
     let pp = at("parameters");
     if let Some(params) = m.parameters.as_ref().and_then(|f| typed(f, &pp, errs)) {
         for (name, pv) in &params.0 {
@@ -119,8 +197,9 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
                     }
                 }
                 Field::Ok(RawParameter::Estimated(e)) => {
-                    if let Some(e) = estimated(e, name, &p, errs) {
+                    if let Some((e, b)) = estimated(e, name, &p, errs) {
                         estimated_params.push(e);
+                        parameter_bounds.push(b);
                     }
                 }
                 Field::Wrong(other) => errs.push(
@@ -134,6 +213,11 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
     }
 
     let n_model = model_states.len();
+    let mut all_bounds = match &m.bounds {
+        Some(f) => state_bounds(f, &at("bounds"), &model_states, errs),
+        None => vec![Bounds::NONE; n_model],
+    };
+    all_bounds.extend(parameter_bounds);
     let mut states = model_states.clone();
     states.extend(estimated_params.iter().map(|p| p.name.clone()));
     let n = states.len();
@@ -197,6 +281,7 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
         dynamics: dynamics?,
         noise: noise?,
         sensors,
+        bounds: all_bounds,
     })
 }
 
@@ -287,7 +372,7 @@ mod tests {
                 (
                     "/model/colour".into(),
                     "unknown field 'colour'; expected one of states, inputs, parameters, \
-                     dynamics, process_noise, sensors"
+                     dynamics, process_noise, sensors, bounds"
                         .into()
                 ),
                 ("/model/states/1".into(), "name 'pos' is used twice".into()),
@@ -301,8 +386,8 @@ mod tests {
                 ),
                 (
                     "/model/parameters/mass".into(),
-                    "a parameter is a number (fixed) or an object {initial, std, random_walk} \
-                     (estimated), found a string"
+                    "a parameter is a number (fixed) or an object {initial, std, random_walk, \
+                     min, max} (estimated), found a string"
                         .into()
                 ),
                 (
@@ -367,6 +452,71 @@ mod tests {
             [(
                 "/model/states".into(),
                 "3 states (with estimated parameters) exceed the limit of 2".into()
+            )]
+        );
+    }
+
+    #[test]
+    fn bounds_are_read_for_parameters_and_model_states() {
+        let mut v = trolley();
+        v["parameters"]["drag"]["min"] = json!(0.0);
+        v["bounds"] = json!({"vel": {"max": 3.5}});
+        let m = check(&v).unwrap();
+        assert_eq!(m.bounds.len(), 3);
+        assert_eq!(m.bounds[0], Bounds::NONE);
+        assert_eq!((m.bounds[1].min, m.bounds[1].max), (f64::NEG_INFINITY, 3.5));
+        assert_eq!((m.bounds[2].min, m.bounds[2].max), (0.0, f64::INFINITY));
+        assert!(m.has_parameter_bounds());
+        // Without any, nothing is bounded.
+        let m = check(&trolley()).unwrap();
+        assert!(m.bounds.iter().all(|b| !b.any()));
+        assert!(!m.has_parameter_bounds());
+    }
+
+    #[test]
+    fn bound_faults_are_reported_at_their_pointers() {
+        let mut v = trolley();
+        // min not below max; the initial outside the bounds; a bound for a name that is not
+        // a model state; a non-number; an unknown key.
+        v["parameters"]["drag"]["min"] = json!(0.5);
+        v["bounds"] = json!({
+            "pos": {"min": 2, "max": 2},
+            "speed": {"min": 0},
+            "vel": {"min": "low", "most": 1}
+        });
+        assert_eq!(
+            faults(check(&v)),
+            [
+                (
+                    "/model/parameters/drag/initial".into(),
+                    "initial 0.4 lies outside its bounds [0.5, inf]".into()
+                ),
+                (
+                    "/model/bounds/pos/min".into(),
+                    "min must be below max, got min 2 and max 2".into()
+                ),
+                (
+                    "/model/bounds/speed".into(),
+                    "'speed' is not a model state; states are pos, vel".into()
+                ),
+                (
+                    "/model/bounds/vel/most".into(),
+                    "unknown field 'most'; expected one of min, max".into()
+                ),
+                (
+                    "/model/bounds/vel/min".into(),
+                    "expected a number, found a string".into()
+                ),
+            ]
+        );
+        let mut v = trolley();
+        v["parameters"]["drag"]["max"] = json!(0.1);
+        v["parameters"]["drag"]["min"] = json!(0.3);
+        assert_eq!(
+            faults(check(&v)),
+            [(
+                "/model/parameters/drag/min".into(),
+                "min must be below max, got min 0.3 and max 0.1".into()
             )]
         );
     }

@@ -95,6 +95,25 @@ fn checked(
             }
         }
     }
+    // A bounded parameter's mean (a posterior sent back) lies inside its bounds: the
+    // filters keep it there. The slack admits the rounding of an ensemble mean over members
+    // on a bound. Model states' bounds are only watched, so their means are not checked:
+    // a posterior whose state left its bounds must still continue.
+    for i in nm..n {
+        let (b, x) = (model.bounds[i], mean[i]);
+        let slack = 1e-12 * x.abs();
+        if named[i] && (x < b.min - slack || x > b.max + slack) {
+            errs.push(
+                child(&mp, &model.states[i]),
+                SpecErrorKind::OutsideBounds {
+                    what: "mean",
+                    value: x,
+                    min: b.min,
+                    max: b.max,
+                },
+            );
+        }
+    }
     let all_named = named.iter().all(|x| *x);
     let dim = if all_named { n } else { nm };
     if !all_named && named[nm..].iter().any(|x| *x) {
