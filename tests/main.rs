@@ -11,5 +11,6 @@ mod http_api;
 mod http_core;
 mod http_errors;
 mod http_logs;
+mod http_time;
 mod no_alloc;
 mod openapi;

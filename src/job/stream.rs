@@ -8,7 +8,7 @@ use crate::config::Limits;
 use crate::filter::run::Run;
 use crate::job::write::Writer;
 use crate::job::RunStats;
-use crate::model::Reading;
+use crate::model::{Reading, Zone};
 use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::reading::ReadingParser;
@@ -19,6 +19,8 @@ pub(super) struct Stream {
     writer: Writer,
     reading: Reading,
     lines: u64,
+    /// Where offset-less timestamps are read (the header's `time_zone`).
+    zone: Zone,
 }
 
 impl Stream {
@@ -33,6 +35,7 @@ impl Stream {
             cfg,
             prior,
             output,
+            zone,
         } = setup(&env, limits)?;
         if !output.at.is_empty() {
             return Err(Problem::field(
@@ -47,6 +50,7 @@ impl Stream {
             writer,
             reading: Reading::default(),
             lines: 0,
+            zone,
         })
     }
 
@@ -64,7 +68,7 @@ impl Stream {
             )
         })?;
         let model = self.run.model();
-        let parser = ReadingParser::new(model, self.run.mode());
+        let parser = ReadingParser::new(model, self.run.mode(), &self.zone);
         parser.parse(text, &mut self.reading).map_err(|e| {
             let mut p = line_problem(e);
             p.detail = format!("line {line_no}: {}", p.detail);

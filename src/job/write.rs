@@ -60,13 +60,14 @@ impl Writer {
         buf.extend_from_slice(&self.states_json);
     }
 
-    /// A time in the request's form.
+    /// A time in the request's form; a timestamp as it was written (its own offset, or
+    /// none for a wall-clock time read in the request's `time_zone`).
     pub fn time(&self, buf: &mut Vec<u8>, t: &Instant) {
         match self.mode {
             TimeMode::Seconds => num(buf, t.secs),
             TimeMode::Stamp => {
                 buf.push(b'"');
-                buf.extend_from_slice(t.to_rfc3339().as_bytes());
+                t.write_stamp(buf);
                 buf.push(b'"');
             }
         }
