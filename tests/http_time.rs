@@ -1,7 +1,9 @@
 //! Times as users write them, over a real HTTP server: each timestamp is answered in the
 //! offset and form it came in; offset-less historian times are read in the request's
 //! `time_zone` (IANA tz rules across daylight-saving changes) or refused with what to
-//! add. Contract: openapi/openapi.yaml.
+//! add; a stream that fails mid-way first sends its last good `{posterior, summary}` so
+//! the client resumes exactly. Contract: openapi/openapi.yaml and ../shared/API-v2.md
+//! ("Robustness options").
 
 use crate::support::{assert_pointer, assert_problem, post, post_json, start_default, Server};
 use serde_json::{json, Value};
@@ -316,4 +318,93 @@ async fn stream(s: &Server, header: &Value, lines: &[Value]) -> Vec<Value> {
         .lines()
         .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("{e}: {l}")))
         .collect()
+}
+
+/// Encoder readings of the conveyor at 0.5 m/s, one per second from t = 1, with a fixed
+/// wobble (not random: the test must be reproducible).
+fn belt_lines(n: usize) -> Vec<Value> {
+    (1..=n)
+        .map(|k| {
+            let t = k as f64;
+            json!({"t": t, "values": {"encoder": 0.5 * t + 0.03 * (1.7 * t).sin()}})
+        })
+        .collect()
+}
+
+fn header(method: &str) -> Value {
+    json!({"model": conveyor(true),
+           "filter": {"method": method, "ensemble": {"members": 16, "seed": 4}},
+           "prior": prior_at(json!(0.0))})
+}
+
+#[tokio::test]
+async fn a_stream_failing_on_a_bad_line_sends_posterior_and_summary_then_the_error() {
+    let s = start_default().await;
+    for method in ["ekf", "ukf", "enkf"] {
+        let good = belt_lines(12);
+        // Line 7 goes back in time, line 8 is not JSON: either ends the stream there.
+        for bad in [
+            json!({"t": 2.5, "values": {"encoder": 1.0}}),
+            json!("{\"t\": 7,"),
+        ] {
+            let mut lines = good[..6].to_vec();
+            lines.push(bad.clone());
+            lines.extend_from_slice(&good[6..]);
+            let body = match bad.as_str() {
+                Some(raw) => ndjson(&header(method), &lines).replace(&bad.to_string(), raw),
+                None => ndjson(&header(method), &lines),
+            };
+            let a = post(&s, "/v1/estimate/stream", "application/x-ndjson", body).await;
+            assert_eq!(a.status, 200, "{}", a.text);
+            let out: Vec<Value> = a
+                .text
+                .lines()
+                .map(|l| serde_json::from_str(l).unwrap())
+                .collect();
+            assert_eq!(
+                out.len(),
+                8,
+                "6 estimates, the last good, the error: {out:?}"
+            );
+            assert_eq!(out[6]["posterior"]["t"], 6.0, "{method} {bad}");
+            assert_eq!(out[6]["summary"]["steps"], 6);
+            assert!(out[7]["error"]["status"].as_u64().is_some(), "{:?}", out[7]);
+            // Exactly the posterior and summary of a run that stopped after line 6.
+            let six = stream(&s, &header(method), &good[..6]).await;
+            assert_eq!(out[6], six[6], "{method} {bad}");
+
+            // Resume from it with the lines after the bad one: the same estimates as an
+            // unbroken run, bit for bit (the batch resume contract).
+            let mut resumed = header(method);
+            resumed["prior"] = out[6]["posterior"].clone();
+            let rest = stream(&s, &resumed, &good[6..]).await;
+            let whole = stream(&s, &header(method), &good).await;
+            assert_eq!(rest[..6], whole[6..12], "{method} {bad}");
+            assert_eq!(rest[6]["posterior"], whole[12]["posterior"], "{method}");
+        }
+    }
+}
+
+#[tokio::test]
+async fn a_stream_failing_in_the_filter_sends_the_state_before_that_line() {
+    // Line 5 reads the gauge, sqrt(pos - 1000), below its domain: the update fails after
+    // the prediction to that line has already run. The answer must still be the belief
+    // after line 4, not a half-done step.
+    let s = start_default().await;
+    for method in ["ekf", "ukf", "enkf"] {
+        let mut h = header(method);
+        h["model"]["sensors"]["gauge"] = json!({"measures": "sqrt(pos - 1000)", "std": 0.05});
+        let good = belt_lines(8);
+        let mut lines = good[..4].to_vec();
+        lines.push(json!({"t": 5.0, "values": {"gauge": 1.0}}));
+        lines.extend_from_slice(&good[5..]);
+        let out = stream(&s, &h, &lines).await;
+        assert_eq!(out.len(), 6, "{method}: {out:?}");
+        let e = &out[5]["error"];
+        assert!(e["status"].as_u64().is_some(), "{method}: {e}");
+        assert_eq!(e["type"], "/problems/numerical-failure", "{method}: {e}");
+        let four = stream(&s, &h, &good[..4]).await;
+        assert_eq!(out[4], four[4], "{method}");
+        assert_eq!(out[4]["posterior"]["t"], 4.0);
+    }
 }
