@@ -247,3 +247,40 @@ mod array_tests {
         }
     }
 }
+
+#[cfg(test)]
+mod time_zone_tests {
+    use super::{envelope, time_zone};
+
+    fn zone_of(body: &str) -> Result<Option<String>, String> {
+        let env = envelope(body.as_bytes()).map_err(|p| p.detail)?;
+        time_zone(&env)
+            .map(|z| z.name().map(str::to_string))
+            .map_err(|p| format!("{}: {}", p.errors[0].pointer, p.errors[0].detail))
+    }
+
+    #[test]
+    fn the_time_zone_is_an_iana_name_at_the_top_level() {
+        assert_eq!(zone_of("{}"), Ok(None));
+        assert_eq!(zone_of(r#"{"time_zone": null}"#), Ok(None));
+        assert_eq!(
+            zone_of(r#"{"time_zone": "Europe/Berlin"}"#),
+            Ok(Some("Europe/Berlin".into()))
+        );
+        // JSON may escape the slash (RFC 8259 §7); the name is the same.
+        assert_eq!(
+            zone_of(r#"{"time_zone": "America\/Chicago"}"#),
+            Ok(Some("America/Chicago".into()))
+        );
+        let refused = zone_of(r#"{"time_zone": ["Europe/Berlin"]}"#).unwrap_err();
+        assert!(
+            refused.starts_with("/time_zone: time_zone is an IANA time zone name"),
+            "{refused}"
+        );
+        let unknown = zone_of(r#"{"time_zone": "Mars/Olympus"}"#).unwrap_err();
+        assert!(
+            unknown.starts_with("/time_zone: unknown time zone 'Mars/Olympus'"),
+            "{unknown}"
+        );
+    }
+}

@@ -197,13 +197,14 @@ impl<'m> ReadingParser<'m> {
 
     /// The usual line, `{"t": <number> | "<timestamp>", "values": {"<sensor>": <number> |
     /// [<numbers>] | null, ...}}` with its keys in that order and its sensors in model
-    /// order, read in one pass over the bytes (a timestamp, without escapes, is read in
-    /// the same pass, its offset with it). `None` for anything else (other keys or orders, escapes in a
-    /// name, an unknown, repeated or out-of-order sensor, a wrong count of values, a number
-    /// out of range): the serde reader then reads the line and reports what is wrong, so
-    /// errors are the same as ever. Numbers are checked against JSON's grammar and then
-    /// converted by `f64::from_str`, which rounds correctly, as serde_json does with its
-    /// `float_roundtrip` feature: both readers give the same bits (tested).
+    /// order, read in one pass over the bytes (a timestamp without escapes in the same
+    /// pass, its offset with it). `None` for anything else (other keys or orders, escapes
+    /// in a name, an unknown, repeated or out-of-order sensor, a wrong count of values, a
+    /// number out of range, a timestamp that does not read): the serde reader then reads
+    /// the line and reports what is wrong, so errors are the same as ever. Numbers are
+    /// checked against JSON's grammar and then converted by `f64::from_str`, which rounds
+    /// correctly, as serde_json does with its `float_roundtrip` feature: both readers
+    /// give the same bits (tested).
     fn parse_plain(&self, text: &str, out: &mut Reading) -> Option<()> {
         let m = self.model;
         let mut sc = Scan::new(text);
