@@ -14,3 +14,4 @@ mod http_logs;
 mod http_time;
 mod no_alloc;
 mod openapi;
+mod stream_no_alloc;
