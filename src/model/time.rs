@@ -68,7 +68,9 @@ const _: () = assert!(std::mem::size_of::<Instant>() <= 32);
 
 impl PartialEq for Instant {
     fn eq(&self, other: &Self) -> bool {
-        self.nanos == other.nanos && self.secs.to_bits() == other.secs.to_bits()
+        // As the derived comparison was before offsets were kept: the same seconds (0.0
+        // and -0.0 alike) and the same nanoseconds.
+        self.nanos == other.nanos && self.secs == other.secs
     }
 }
 
