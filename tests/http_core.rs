@@ -327,7 +327,7 @@ async fn a_bad_stream_header_is_a_plain_problem_status() {
 }
 
 #[tokio::test]
-async fn a_failure_mid_stream_is_one_last_error_line() {
+async fn a_failure_mid_stream_ends_with_the_last_good_posterior_then_the_error() {
     let s = start_default().await;
     let header = json!({"model": cv_model(), "filter": {"method": "ekf"}, "prior": prior()});
     let lines = vec![
@@ -345,9 +345,12 @@ async fn a_failure_mid_stream_is_one_last_error_line() {
         .unwrap();
     assert_eq!(res.status(), 200);
     let out = parse_lines(&res.text().await.unwrap());
-    assert_eq!(out.len(), 2, "{out:?}");
-    assert_eq!(out[1]["error"]["status"], 422);
-    assert!(out[1]["error"]["errors"][0]["pointer"]
+    // The estimate, the last good {posterior, summary} (API-v2 "Robustness options"),
+    // then the error.
+    assert_eq!(out.len(), 3, "{out:?}");
+    assert_eq!(out[1]["posterior"]["t"], 1.0);
+    assert_eq!(out[2]["error"]["status"], 422);
+    assert!(out[2]["error"]["errors"][0]["pointer"]
         .as_str()
         .unwrap()
         .ends_with("/t"));

@@ -12,5 +12,7 @@ mod http_core;
 mod http_errors;
 mod http_logs;
 mod http_simulate;
+mod http_time;
 mod no_alloc;
 mod openapi;
+mod stream_no_alloc;

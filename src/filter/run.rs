@@ -622,6 +622,14 @@ impl Run {
         }
     }
 
+    /// Put back tallies saved after an earlier line (a stream that failed part-way
+    /// answers with the summary of its last good line).
+    pub fn restore_tallies(&mut self, counts: Counts, warnings: Warnings, running: Running) {
+        self.counts = counts;
+        self.warnings = warnings;
+        self.running = running;
+    }
+
     /// The tallies of the whole chain: the prior's `running` plus this run's.
     pub fn running(&self) -> Running {
         self.running

@@ -75,13 +75,14 @@ fn run_batch_overlapping(
         cfg,
         prior,
         output,
+        zone,
     } = setup(&env, limits)?;
     let lines = measurement_list(&env, limits)?;
     let writer = Writer::new(&model, prior.mode, output.clone());
     let mut run = Run::new(model.clone(), cfg, prior, smooth)?;
     let ctx = Lines {
         lines: &lines,
-        parser: ReadingParser::new(&model, run.mode()),
+        parser: ReadingParser::new(&model, run.mode(), &zone),
         writer: &writer,
         guard: Guard::new(limits, cancel),
         shape: Shape::of(&model),

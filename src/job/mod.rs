@@ -164,6 +164,12 @@ impl StreamSession {
         self.inner.push(line, line_no, out)
     }
 
+    /// Append the `{posterior, summary}` line of the last line that went through (the
+    /// prior, when none did), for a stream that fails and ends: the client resumes from it.
+    pub fn last_good(&mut self, out: &mut Vec<u8>) {
+        self.inner.last_good(out)
+    }
+
     /// Append the last line `{posterior, summary}` to `out`.
     pub fn finish(self, out: &mut Vec<u8>) -> Result<RunStats, Problem> {
         Ok(self.inner.finish(out))

@@ -3,7 +3,7 @@
 //! the cancel flag while the lines run.
 
 use crate::config::Limits;
-use crate::model::{FilterConfig, Model, OutputConfig, Prior};
+use crate::model::{FilterConfig, Model, OutputConfig, Prior, Zone};
 use crate::problem::{FieldError, Problem, ProblemKind};
 use crate::request::envelope::{self, Envelope};
 use crate::request::validate;
@@ -21,9 +21,12 @@ pub(super) struct Setup {
     pub prior: Prior,
     /// Response options.
     pub output: OutputConfig,
+    /// Where offset-less timestamps are read (the request's `time_zone`).
+    pub zone: Zone,
 }
 
-/// Parse `model`, `filter`, `prior` and `output`, collecting every field error.
+/// Parse `model`, `filter`, `prior` and `output` (and `time_zone`, which their times
+/// are read in), collecting every field error.
 pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Problem> {
     let [model_v, filter_v, prior_v] = envelope::sections([
         (env.model, "model"),
@@ -31,6 +34,7 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
         (env.prior, "prior"),
     ])?;
     let output_v = envelope::optional_section(env.output)?;
+    let zone = envelope::time_zone(env)?;
     let mut errors: Vec<FieldError> = Vec::new();
     let model = validate::model(&model_v, "/model", limits)
         .map_err(|e| errors.extend(e))
@@ -41,10 +45,10 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
     let (Some(model), Some(cfg)) = (model, cfg) else {
         return Err(Problem::invalid(errors));
     };
-    let prior =
-        validate::prior(&prior_v, "/prior", &model, Some(&cfg)).map_err(Problem::invalid)?;
-    let output =
-        validate::output(output_v.as_ref(), "/output", prior.mode).map_err(Problem::invalid)?;
+    let prior = validate::prior_in(&prior_v, "/prior", &model, Some(&cfg), &zone)
+        .map_err(Problem::invalid)?;
+    let output = validate::output(output_v.as_ref(), "/output", prior.mode, &zone)
+        .map_err(Problem::invalid)?;
     if let Some(first) = output.at.first() {
         if prior.t.is_after(first, prior.mode) {
             return Err(Problem::field(
@@ -58,6 +62,7 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
         cfg,
         prior,
         output,
+        zone,
     })
 }
 

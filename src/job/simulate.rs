@@ -13,7 +13,7 @@ use crate::config::Limits;
 use crate::job::write::{num, Writer};
 use crate::job::{Done, RunStats};
 use crate::model::{Dynamics, LinearTime, Model, Prior};
-use crate::model::{Instant, TimeMode};
+use crate::model::{Instant, TimeMode, Zone};
 use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::reader::{
@@ -77,6 +77,7 @@ fn schedules(v: Option<Value>, model: &Model, errs: &mut Errors) -> Vec<Schedule
 fn times(
     v: &Value,
     mode: &mut Option<TimeMode>,
+    zone: &Zone,
     limits: &Limits,
     errs: &mut Errors,
 ) -> Vec<Instant> {
@@ -96,7 +97,7 @@ fn times(
             }
             let mut out: Vec<Instant> = Vec::with_capacity(items.len());
             for (i, x) in items.iter().enumerate() {
-                if let Some(t) = validate::time_value(x, &index(ptr, i), mode, errs) {
+                if let Some(t) = validate::time_value(x, &index(ptr, i), mode, zone, errs) {
                     if out
                         .last()
                         .is_some_and(|p| p.is_after(&t, mode.unwrap_or(TimeMode::Seconds)))
@@ -115,7 +116,7 @@ fn times(
             o.deny_unknown(&["start", "step", "count"], errs);
             let start = o
                 .required("start", errs)
-                .and_then(|s| validate::time_value(s, &o.at("start"), mode, errs));
+                .and_then(|s| validate::time_value(s, &o.at("start"), mode, zone, errs));
             let step = o
                 .required("step", errs)
                 .and_then(|s| positive(s, &o.at("step"), "step", errs));
@@ -142,7 +143,9 @@ fn times(
             (0..count as i128)
                 .map(|k| match mode.unwrap_or(TimeMode::Seconds) {
                     TimeMode::Seconds => Instant::seconds((start_ns + k * step_ns) as f64 / 1e9),
-                    TimeMode::Stamp => Instant::from_nanos(start_ns + k * step_ns),
+                    // Each grid time is written like the start (its offset, or the
+                    // zone's offset at that instant for a wall-clock start).
+                    TimeMode::Stamp => start.written_like(start_ns + k * step_ns, zone),
                 })
                 .collect()
         }
@@ -170,6 +173,7 @@ fn input_schedule(
     model: &Model,
     prior: &Prior,
     mode: &mut Option<TimeMode>,
+    zone: &Zone,
     errs: &mut Errors,
 ) -> Vec<(Instant, Vec<(usize, f64)>)> {
     let Some(v) = v else { return Vec::new() };
@@ -186,7 +190,7 @@ fn input_schedule(
         o.deny_unknown(&["t", "inputs"], errs);
         let t = o
             .required("t", errs)
-            .and_then(|t| validate::time_value(t, &o.at("t"), mode, errs));
+            .and_then(|t| validate::time_value(t, &o.at("t"), mode, zone, errs));
         if let Some(t) = &t {
             if prior.t.is_after(t, m) {
                 errs.push(
@@ -276,16 +280,18 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         (env.times, "times"),
     ])?;
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
-    let prior = validate::prior(&prior_v, "/prior", &model, None).map_err(Problem::invalid)?;
+    let zone = envelope::time_zone(&env)?;
+    let prior =
+        validate::prior_in(&prior_v, "/prior", &model, None, &zone).map_err(Problem::invalid)?;
     let mut errs = Errors::default();
     let mut mode = Some(prior.mode);
-    let times = times(&times_v, &mut mode, limits, &mut errs);
+    let times = times(&times_v, &mut mode, &zone, limits, &mut errs);
     let inputs_v = env
         .inputs
         .map(|r| reader::parse_section(r.get(), "/inputs"))
         .transpose()
         .map_err(|e| Problem::invalid(vec![e]))?;
-    let inputs = input_schedule(inputs_v, &model, &prior, &mut mode, &mut errs);
+    let inputs = input_schedule(inputs_v, &model, &prior, &mut mode, &zone, &mut errs);
     let seed = match envelope::optional_section(env.seed)? {
         Some(s) => whole(&s, "/seed", &mut errs).unwrap_or(0),
         None => 0,

@@ -1,18 +1,25 @@
 //! `POST /v1/estimate/stream`: the header line sets the run up, then each measurement
 //! line becomes one estimate line and the end one `{posterior, summary}` line. Memory does
 //! not grow with the number of lines.
+//!
+//! A stream that fails on a line (a bad line, a filter failure) still owes the client a
+//! place to resume from: the `{posterior, summary}` of the last line that went through,
+//! sent before the error. A failed filter step may have moved the filter part-way, so
+//! that belief is copied aside after every line (into buffers made once, no allocation).
 
 use super::failure::step_problem;
 use super::plain::{line_problem, stats};
 use super::setup::{setup, Setup};
 use crate::config::Limits;
-use crate::filter::run::Run;
+use crate::diagnostics::warnings::Warnings;
+use crate::filter::run::{Counts, Run};
 use crate::job::write::Writer;
 use crate::job::RunStats;
-use crate::model::Reading;
+use crate::model::{Instant, Reading, Running, Zone};
 use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::reading::ReadingParser;
+use nalgebra::{DMatrix, DVector};
 
 /// A stream in progress (see [`crate::job::StreamSession`]).
 pub(super) struct Stream {
@@ -20,6 +27,72 @@ pub(super) struct Stream {
     writer: Writer,
     reading: Reading,
     lines: u64,
+    /// Where offset-less timestamps are read (the header's `time_zone`).
+    zone: Zone,
+    /// The belief after the last line that went through.
+    good: LastGood,
+}
+
+/// What a `{posterior, summary}` line needs, as it stood after the last good line.
+struct LastGood {
+    t: Instant,
+    mean: DVector<f64>,
+    cov: DMatrix<f64>,
+    members: Option<DMatrix<f64>>,
+    step: u64,
+    inputs: DVector<f64>,
+    counts: Counts,
+    running: Running,
+    warnings: Warnings,
+    /// Entries and the sum of their counts in `warnings`. Warnings only ever gain entries
+    /// or counts, so while this pair is unchanged they are unchanged and are not copied.
+    seen: (usize, u64),
+}
+
+/// [`LastGood::seen`] of `w`.
+fn fingerprint(w: &Warnings) -> (usize, u64) {
+    let list = w.list();
+    (list.len(), list.iter().map(|x| x.count).sum())
+}
+
+impl LastGood {
+    fn of(run: &Run) -> Self {
+        let est = run.estimator();
+        Self {
+            t: run.time(),
+            mean: est.mean().clone(),
+            cov: est.covariance().clone(),
+            members: est.members().cloned(),
+            step: est.step(),
+            inputs: run.inputs().clone(),
+            counts: run.counts,
+            running: run.running(),
+            warnings: run.warnings.clone(),
+            seen: fingerprint(&run.warnings),
+        }
+    }
+
+    /// Copy the run's belief in place (same shapes every line: no allocation, except
+    /// when the warnings changed).
+    fn keep(&mut self, run: &Run) {
+        let est = run.estimator();
+        self.t = run.time();
+        self.mean.copy_from(est.mean());
+        self.cov.copy_from(est.covariance());
+        match (&mut self.members, est.members()) {
+            (Some(mine), Some(theirs)) if mine.shape() == theirs.shape() => mine.copy_from(theirs),
+            (mine, theirs) => *mine = theirs.cloned(),
+        }
+        self.step = est.step();
+        self.inputs.copy_from(run.inputs());
+        self.counts = run.counts;
+        self.running = run.running();
+        let seen = fingerprint(&run.warnings);
+        if seen != self.seen {
+            self.warnings = run.warnings.clone();
+            self.seen = seen;
+        }
+    }
 }
 
 impl Stream {
@@ -34,6 +107,7 @@ impl Stream {
             cfg,
             prior,
             output,
+            zone,
         } = setup(&env, limits)?;
         if !output.at.is_empty() {
             return Err(Problem::field(
@@ -44,10 +118,12 @@ impl Stream {
         let writer = Writer::new(&model, prior.mode, output);
         let run = Run::new(model, cfg, prior, false)?;
         Ok(Self {
+            good: LastGood::of(&run),
             run,
             writer,
             reading: Reading::default(),
             lines: 0,
+            zone,
         })
     }
 
@@ -65,7 +141,7 @@ impl Stream {
             )
         })?;
         let model = self.run.model();
-        let parser = ReadingParser::new(model, self.run.mode());
+        let parser = ReadingParser::new(model, self.run.mode(), &self.zone);
         parser.parse(text, &mut self.reading).map_err(|e| {
             let mut p = line_problem(e);
             p.detail = format!("line {line_no}: {}", p.detail);
@@ -77,6 +153,7 @@ impl Stream {
             p
         })?;
         self.lines += 1;
+        self.good.keep(&self.run);
         if done.skipped {
             // A late line skipped under `filter.late: "skip"` has no estimate line.
             return Ok(());
@@ -91,6 +168,31 @@ impl Stream {
         );
         out.push(b'\n');
         Ok(())
+    }
+
+    /// The `{posterior, summary}` line of the last line that went through, for a stream
+    /// that cannot go on: resuming from this posterior with the lines after that one
+    /// gives the same estimates as a run that never stopped. The summary counts those
+    /// lines; the stream ends here.
+    pub(super) fn last_good(&mut self, out: &mut Vec<u8>) {
+        let g = &self.good;
+        out.push(b'{');
+        self.writer.posterior_parts(
+            out,
+            &g.t,
+            &g.mean,
+            &g.cov,
+            g.members.as_ref(),
+            g.step,
+            &g.inputs,
+            &g.running,
+        );
+        out.push(b',');
+        // The run's own summary rules (e.g. `no_updates`) over the last good tallies.
+        self.run
+            .restore_tallies(g.counts, g.warnings.clone(), g.running);
+        self.writer.summary(out, &self.run);
+        out.extend_from_slice(b"}\n");
     }
 
     /// The last line `{posterior, summary}`.

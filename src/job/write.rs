@@ -6,7 +6,7 @@ use crate::diagnostics::nis::NisSummary;
 use crate::diagnostics::warnings::Warning;
 use crate::filter::observe::ObsSpace;
 use crate::filter::run::Run;
-use crate::model::{CovarianceOutput, Model, OutputConfig};
+use crate::model::{CovarianceOutput, Model, OutputConfig, Running};
 use crate::model::{Instant, TimeMode};
 use nalgebra::{DMatrix, DVector};
 
@@ -60,13 +60,14 @@ impl Writer {
         buf.extend_from_slice(&self.states_json);
     }
 
-    /// A time in the request's form.
+    /// A time in the request's form; a timestamp as it was written (its own offset, or
+    /// none for a wall-clock time read in the request's `time_zone`).
     pub fn time(&self, buf: &mut Vec<u8>, t: &Instant) {
         match self.mode {
             TimeMode::Seconds => num(buf, t.secs),
             TimeMode::Stamp => {
                 buf.push(b'"');
-                buf.extend_from_slice(t.to_rfc3339().as_bytes());
+                t.write_stamp(buf);
                 buf.push(b'"');
             }
         }
@@ -283,24 +284,47 @@ impl Writer {
     /// exactly, and the chain's `running` tallies.
     pub fn posterior(&self, buf: &mut Vec<u8>, run: &Run) {
         let est = run.estimator();
+        self.posterior_parts(
+            buf,
+            &run.time(),
+            est.mean(),
+            est.covariance(),
+            est.members(),
+            est.step(),
+            run.inputs(),
+            &run.running(),
+        );
+    }
+
+    /// [`Writer::posterior`] from its parts (a stream's last good state).
+    #[allow(clippy::too_many_arguments)]
+    pub fn posterior_parts(
+        &self,
+        buf: &mut Vec<u8>,
+        t: &Instant,
+        mean: &DVector<f64>,
+        cov: &DMatrix<f64>,
+        members: Option<&DMatrix<f64>>,
+        step: u64,
+        inputs: &DVector<f64>,
+        r: &Running,
+    ) {
         buf.extend_from_slice(b"\"posterior\":{\"t\":");
-        self.time(buf, &run.time());
+        self.time(buf, t);
         buf.extend_from_slice(b",\"mean\":");
-        self.vector(buf, &self.state_keys, est.mean().iter().copied());
+        self.vector(buf, &self.state_keys, mean.iter().copied());
         buf.extend_from_slice(b",\"covariance\":");
-        let cov = est.covariance();
         self.square(buf, cov.as_slice(), cov.nrows());
         if !self.input_keys.is_empty() {
             buf.extend_from_slice(b",\"inputs\":");
-            self.vector(buf, &self.input_keys, run.inputs().iter().copied());
+            self.vector(buf, &self.input_keys, inputs.iter().copied());
         }
-        if let Some(x) = est.members() {
+        if let Some(x) = members {
             buf.extend_from_slice(b",\"members\":");
             self.matrix(buf, x);
             buf.extend_from_slice(b",\"step\":");
-            buf.extend_from_slice(itoa::Buffer::new().format(est.step()).as_bytes());
+            buf.extend_from_slice(itoa::Buffer::new().format(step).as_bytes());
         }
-        let r = run.running();
         buf.extend_from_slice(b",\"running\":{\"readings\":");
         buf.extend_from_slice(itoa::Buffer::new().format(r.readings).as_bytes());
         buf.extend_from_slice(b",\"nis_sum\":");

@@ -10,4 +10,4 @@ pub mod time;
 pub use plant::*;
 pub use reading::Reading;
 pub use settings::*;
-pub use time::{Instant, TimeMode};
+pub use time::{Instant, Suffix, TimeMode, Zone};

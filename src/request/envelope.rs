@@ -1,6 +1,8 @@
 //! The request envelope: top-level sections kept as raw JSON text so each can be parsed
-//! with its own rules (the model as a tree with pointers, readings on the fast path).
+//! with its own rules (the model as a tree with pointers, readings on the fast path), and
+//! the request-level `time_zone` every section's times are read in.
 
+use crate::model::Zone;
 use crate::problem::{FieldError, Problem, ProblemKind};
 use crate::request::reading::clean_message;
 use serde::Deserialize;
@@ -41,6 +43,30 @@ pub struct Envelope<'a> {
     /// The v1 name of `sampling`, kept only to refuse it with a message naming the new one.
     #[serde(borrow, default)]
     pub readings: Option<&'a RawValue>,
+    /// The IANA time zone that timestamps without a UTC offset are read in.
+    #[serde(borrow, default)]
+    pub time_zone: Option<&'a RawValue>,
+}
+
+/// The request's `time_zone` (none when absent or `null`): an IANA name such as
+/// `"Europe/Berlin"`, looked up in the tz database compiled into the service; anything
+/// else is a 422 at `/time_zone`.
+pub fn time_zone(env: &Envelope<'_>) -> Result<Zone, Problem> {
+    let Some(raw) = env.time_zone else {
+        return Ok(Zone::none());
+    };
+    match serde_json::from_str::<Option<&str>>(raw.get()) {
+        Ok(None) => Ok(Zone::none()),
+        Ok(Some(name)) => Zone::named(name).map_err(|e| Problem::field("/time_zone", e)),
+        // A name with JSON escapes (not borrowable) or not a string at all.
+        Err(_) => match serde_json::from_str::<String>(raw.get()) {
+            Ok(name) => Zone::named(&name).map_err(|e| Problem::field("/time_zone", e)),
+            Err(_) => Err(Problem::field(
+                "/time_zone",
+                "time_zone is an IANA time zone name such as \"Europe/Berlin\"",
+            )),
+        },
+    }
 }
 
 /// Parse the envelope; a syntax error is a 400, a wrong shape a 422.
@@ -219,5 +245,42 @@ mod array_tests {
         ] {
             assert!(array_elements(text).is_none(), "{text:?} accepted");
         }
+    }
+}
+
+#[cfg(test)]
+mod time_zone_tests {
+    use super::{envelope, time_zone};
+
+    fn zone_of(body: &str) -> Result<Option<String>, String> {
+        let env = envelope(body.as_bytes()).map_err(|p| p.detail)?;
+        time_zone(&env)
+            .map(|z| z.name().map(str::to_string))
+            .map_err(|p| format!("{}: {}", p.errors[0].pointer, p.errors[0].detail))
+    }
+
+    #[test]
+    fn the_time_zone_is_an_iana_name_at_the_top_level() {
+        assert_eq!(zone_of("{}"), Ok(None));
+        assert_eq!(zone_of(r#"{"time_zone": null}"#), Ok(None));
+        assert_eq!(
+            zone_of(r#"{"time_zone": "Europe/Berlin"}"#),
+            Ok(Some("Europe/Berlin".into()))
+        );
+        // JSON may escape the slash (RFC 8259 §7); the name is the same.
+        assert_eq!(
+            zone_of(r#"{"time_zone": "America\/Chicago"}"#),
+            Ok(Some("America/Chicago".into()))
+        );
+        let refused = zone_of(r#"{"time_zone": ["Europe/Berlin"]}"#).unwrap_err();
+        assert!(
+            refused.starts_with("/time_zone: time_zone is an IANA time zone name"),
+            "{refused}"
+        );
+        let unknown = zone_of(r#"{"time_zone": "Mars/Olympus"}"#).unwrap_err();
+        assert!(
+            unknown.starts_with("/time_zone: unknown time zone 'Mars/Olympus'"),
+            "{unknown}"
+        );
     }
 }

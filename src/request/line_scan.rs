@@ -1,5 +1,6 @@
 //! The fast reader's cursor: one pass over the bytes of a plain measurement line
-//! (`{"t": <number>, "values": {...}}`), used by `ReadingParser::parse_plain` in
+//! (`{"t": <number> | "<timestamp>", "values": {...}}`; a timestamp is read with
+//! [`Scan::key`], a string without escapes), used by `ReadingParser::parse_plain` in
 //! `reading.rs`. Kept apart so the line grammar it accepts reads on its own; it gives up
 //! (`None`) on anything unusual and the serde reader takes over, so it only has to be
 //! right on what it accepts: numbers follow JSON's grammar and are converted by

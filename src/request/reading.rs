@@ -5,7 +5,7 @@
 
 use crate::model::Model;
 use crate::model::Reading;
-use crate::model::{Instant, TimeMode};
+use crate::model::{Instant, TimeMode, Zone};
 use crate::problem::{escape_token, FieldError};
 use crate::request::line_scan::Scan;
 use crate::request::reader::names_list;
@@ -159,12 +159,15 @@ impl LineError {
 pub struct ReadingParser<'m> {
     model: &'m Model,
     mode: TimeMode,
+    /// Where timestamps without an offset are read (the request's `time_zone`).
+    zone: &'m Zone,
 }
 
 impl<'m> ReadingParser<'m> {
-    /// A parser for readings of `model` whose times take the form `mode`.
-    pub fn new(model: &'m Model, mode: TimeMode) -> Self {
-        Self { model, mode }
+    /// A parser for readings of `model` whose times take the form `mode`, offset-less
+    /// timestamps read in `zone`.
+    pub fn new(model: &'m Model, mode: TimeMode, zone: &'m Zone) -> Self {
+        Self { model, mode, zone }
     }
 
     /// Parse one line (JSON text). Pointers in errors are relative to the line (`/t`,
@@ -175,7 +178,7 @@ impl<'m> ReadingParser<'m> {
     /// through `serde_path_to_error` to locate the bad field: tracking the path costs
     /// about as much as the parse itself, and almost every line is fine.
     pub fn parse(&self, text: &str, out: &mut Reading) -> Result<(), LineError> {
-        if self.mode == TimeMode::Seconds && self.parse_plain(text, out).is_some() {
+        if self.parse_plain(text, out).is_some() {
             return Ok(());
         }
         self.parse_full(text, out)
@@ -192,14 +195,16 @@ impl<'m> ReadingParser<'m> {
         self.resolve(raw, out).map_err(LineError::Invalid)
     }
 
-    /// The usual line, `{"t": <number>, "values": {"<sensor>": <number> | [<numbers>] |
-    /// null, ...}}` with its keys in that order and its sensors in model order, read in one
-    /// pass over the bytes. `None` for anything else (other keys or orders, escapes in a
-    /// name, an unknown, repeated or out-of-order sensor, a wrong count of values, a number
-    /// out of range): the serde reader then reads the line and reports what is wrong, so
-    /// errors are the same as ever. Numbers are checked against JSON's grammar and then
-    /// converted by `f64::from_str`, which rounds correctly, as serde_json does with its
-    /// `float_roundtrip` feature: both readers give the same bits (tested).
+    /// The usual line, `{"t": <number> | "<timestamp>", "values": {"<sensor>": <number> |
+    /// [<numbers>] | null, ...}}` with its keys in that order and its sensors in model
+    /// order, read in one pass over the bytes (a timestamp without escapes in the same
+    /// pass, its offset with it). `None` for anything else (other keys or orders, escapes
+    /// in a name, an unknown, repeated or out-of-order sensor, a wrong count of values, a
+    /// number out of range, a timestamp that does not read): the serde reader then reads
+    /// the line and reports what is wrong, so errors are the same as ever. Numbers are
+    /// checked against JSON's grammar and then converted by `f64::from_str`, which rounds
+    /// correctly, as serde_json does with its `float_roundtrip` feature: both readers
+    /// give the same bits (tested).
     fn parse_plain(&self, text: &str, out: &mut Reading) -> Option<()> {
         let m = self.model;
         let mut sc = Scan::new(text);
@@ -211,7 +216,10 @@ impl<'m> ReadingParser<'m> {
         sc.eat(b'{')?;
         (sc.key()? == "t").then_some(())?;
         sc.eat(b':')?;
-        let t = sc.number()?;
+        let t = match self.mode {
+            TimeMode::Seconds => Instant::seconds(sc.number()?),
+            TimeMode::Stamp => Instant::parse_stamp(sc.key()?, self.zone).ok()?,
+        };
         sc.eat(b',')?;
         (sc.key()? == "values").then_some(())?;
         sc.eat(b':')?;
@@ -252,7 +260,7 @@ impl<'m> ReadingParser<'m> {
         }
         sc.eat(b'}')?;
         sc.end()?;
-        out.t = Instant::seconds(t);
+        out.t = t;
         Some(())
     }
 
@@ -292,10 +300,12 @@ impl<'m> ReadingParser<'m> {
             RawTime::Num(x) if self.mode == TimeMode::Seconds && x.is_finite() => {
                 out.t = Instant::seconds(x)
             }
-            RawTime::Str(s) if self.mode == TimeMode::Stamp => match Instant::parse_rfc3339(&s) {
-                Ok(i) => out.t = i,
-                Err(e) => errs.push(FieldError::new(tp(), e)),
-            },
+            RawTime::Str(s) if self.mode == TimeMode::Stamp => {
+                match Instant::parse_stamp(&s, self.zone) {
+                    Ok(i) => out.t = i,
+                    Err(e) => errs.push(FieldError::new(tp(), e)),
+                }
+            }
             RawTime::Num(_) if self.mode == TimeMode::Seconds => {
                 errs.push(FieldError::new(tp(), "number is out of range"))
             }
@@ -507,7 +517,8 @@ mod plain_line_tests {
     #[test]
     fn plain_lines_read_as_serde_reads_them() {
         let m = model();
-        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let zone = Zone::none();
+        let p = ReadingParser::new(&m, TimeMode::Seconds, &zone);
         let taken = [
             r#"{"t":0.5,"values":{"a":1.25}}"#,
             " { \"t\" : 1e-3 ,\n\"values\" : { \"a\" : -0 , \"v\" : [ 1 , 2.5E+2 ] } }\t",
@@ -554,10 +565,55 @@ mod plain_line_tests {
     }
 
     #[test]
+    fn timestamp_lines_read_on_the_fast_path_as_serde_reads_them() {
+        // Timestamps (with their offsets and forms) go through the byte reader too; the
+        // serde reader is the reference for the time, its offset and form, and the values.
+        let m = model();
+        let zone = Zone::named("Europe/Berlin").unwrap();
+        let p = ReadingParser::new(&m, TimeMode::Stamp, &zone);
+        for line in [
+            r#"{"t":"2026-03-01T06:00:10+01:00","values":{"a":1.25}}"#,
+            r#"{"t": "2026-03-01T06:00:10.5-05:30", "values": {"v": [1, 2]}}"#,
+            r#"{"t":"2026-03-01 06:00:10","values":{"a":null,"b":3}}"#,
+            r#"{"t":"2026-03-01T06:00:10.000000001Z","values":{}}"#,
+        ] {
+            assert!(check(&p, line), "fast path refused {line}");
+        }
+        for line in [
+            r#"{"t":1.5,"values":{"a":1}}"#,
+            r#"{"t":"2026-03-29 02:30:00","values":{"a":1}}"#,
+            r#"{"t":"2026-03-01T06:00:10\u002B01:00","values":{"a":1}}"#,
+            r#"{"t":"yesterday","values":{"a":1}}"#,
+        ] {
+            assert!(!check(&p, line), "fast path took {line}");
+        }
+        // The escaped line is still read, by serde, to the same instant and offset.
+        let mut r = Reading::default();
+        assert!(p
+            .parse(
+                r#"{"t":"2026-03-01T06:00:10\u002B01:00","values":{"a":1}}"#,
+                &mut r
+            )
+            .is_ok());
+        assert_eq!(r.t.to_rfc3339(), "2026-03-01T06:00:10+01:00");
+        // Without a zone the offset-less line is refused at /t, saying what to add.
+        let none = Zone::none();
+        let p = ReadingParser::new(&m, TimeMode::Stamp, &none);
+        match p.parse(r#"{"t":"2026-03-01 06:00:10","values":{}}"#, &mut r) {
+            Err(LineError::Invalid(e)) => {
+                assert_eq!(e[0].pointer, "/t");
+                assert!(e[0].detail.contains("has no UTC offset"), "{}", e[0].detail);
+            }
+            _ => panic!("an offset-less time without a zone was not refused"),
+        }
+    }
+
+    #[test]
     fn plain_numbers_round_as_serde_rounds() {
         // 20,000 numbers in shortest, scientific, long and integer forms, seeded.
         let m = model();
-        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let zone = Zone::none();
+        let p = ReadingParser::new(&m, TimeMode::Seconds, &zone);
         let mut state = 0x9e3779b97f4a7c15u64;
         let mut next = || {
             state ^= state << 13;
@@ -585,7 +641,8 @@ mod plain_line_tests {
     #[test]
     fn a_line_overrides_noise_under_its_v2_name_only() {
         let m = model();
-        let p = ReadingParser::new(&m, TimeMode::Seconds);
+        let zone = Zone::none();
+        let p = ReadingParser::new(&m, TimeMode::Seconds, &zone);
         let mut r = Reading::default();
         p.parse(
             r#"{"t": 1, "values": {"v": [1, 2]}, "noise_std": {"v": [0.5, 2]}}"#,

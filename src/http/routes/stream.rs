@@ -10,7 +10,9 @@
 //!
 //! The header line is checked before the response head is sent, so a bad header is an
 //! ordinary problem response with its own status; after that the status is 200 and a
-//! failure is one last line `{"error": problem}`.
+//! failure (a bad line, a filter failure, a line over the size limit) ends the stream
+//! with two lines: the `{posterior, summary}` of the last line that went through, so the
+//! client can resume exactly from there, then `{"error": problem}`.
 
 use super::route::{mount, Route};
 use crate::http::extract::require_media_type;
@@ -282,6 +284,7 @@ fn run_session(
                     let mark = out.len();
                     if let Err(p) = session.push(&line, line_no, out) {
                         out.truncate(mark);
+                        session.last_good(out);
                         error_line(&p, out);
                         return finish_flow(tx, out);
                     }
@@ -305,6 +308,7 @@ fn run_session(
                 return finish_flow(tx, out);
             }
             Input::Fail(p) => {
+                session.last_good(out);
                 error_line(&p, out);
                 return finish_flow(tx, out);
             }

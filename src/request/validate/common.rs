@@ -4,7 +4,7 @@
 
 use crate::formula::{FormulaError, FormulaLimits, Program, Source};
 use crate::linalg::{cholesky_psd, is_symmetric, symmetrize};
-use crate::model::{Instant, TimeMode};
+use crate::model::{Instant, TimeMode, Zone};
 use crate::request::error::{SpecErrorKind, SpecErrors};
 use crate::request::raw::{Expected, Field, Matrix, RawTime};
 use crate::request::reader::{child, index, Errors};
@@ -350,16 +350,18 @@ pub(super) fn formula_errors(errs: &mut SpecErrors, list: Vec<FormulaError>) {
     }
 }
 
-/// A time (seconds or RFC 3339), holding the whole request to the form of the first one.
+/// A time (seconds or a timestamp, offset-less ones read in `zone`), holding the whole
+/// request to the form of the first one.
 pub(super) fn time(
     f: &Field<RawTime>,
     ptr: &str,
     mode: &mut Option<TimeMode>,
+    zone: &Zone,
     errs: &mut SpecErrors,
 ) -> Option<Instant> {
     let (inst, m) = match typed(f, ptr, errs)? {
         RawTime::Seconds(x) => (Instant::seconds(finite(*x, ptr, errs)?), TimeMode::Seconds),
-        RawTime::Stamp(s) => match Instant::parse_rfc3339(s) {
+        RawTime::Stamp(s) => match Instant::parse_stamp(s, zone) {
             Ok(i) => (i, TimeMode::Stamp),
             Err(message) => {
                 errs.push(ptr, SpecErrorKind::Timestamp { message });
@@ -384,6 +386,7 @@ pub fn time_value(
     v: &Value,
     ptr: &str,
     mode: &mut Option<TimeMode>,
+    zone: &Zone,
     errs: &mut Errors,
 ) -> Option<Instant> {
     let field = match RawTime::deserialize(v) {
@@ -391,7 +394,7 @@ pub fn time_value(
         Err(_) => Field::Wrong(v.clone()),
     };
     let mut found = SpecErrors::default();
-    let t = time(&field, ptr, mode, &mut found);
+    let t = time(&field, ptr, mode, zone, &mut found);
     for e in found.into_fields() {
         errs.push_field(e);
     }
@@ -499,12 +502,15 @@ mod tests {
         let secs = Field::Ok(RawTime::Seconds(1.5));
         let stamp = Field::Ok(RawTime::Stamp("2026-03-01T06:00:00Z"));
         assert_eq!(
-            time(&secs, "/a", &mut mode, &mut errs),
+            time(&secs, "/a", &mut mode, &Zone::none(), &mut errs),
             Some(Instant::seconds(1.5))
         );
-        assert_eq!(time(&stamp, "/b", &mut mode, &mut errs), None);
+        assert_eq!(
+            time(&stamp, "/b", &mut mode, &Zone::none(), &mut errs),
+            None
+        );
         let bad = Field::Wrong(json!(true));
-        assert_eq!(time(&bad, "/c", &mut mode, &mut errs), None);
+        assert_eq!(time(&bad, "/c", &mut mode, &Zone::none(), &mut errs), None);
         let got: Vec<String> = errs.into_vec().iter().map(|e| e.to_string()).collect();
         assert_eq!(
             got,

@@ -19,4 +19,4 @@ pub use common::time_value;
 pub use filter::{check_filter, filter};
 pub use model::{check_model, model};
 pub use output::{check_output, output};
-pub use prior::{check_prior, prior};
+pub use prior::{check_prior, check_prior_in, prior, prior_in};

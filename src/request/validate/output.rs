@@ -2,8 +2,8 @@
 //! predict at.
 
 use super::common::{optional, time, typed, unknown_fields};
-use crate::model::TimeMode;
 use crate::model::{CovarianceOutput, OutputConfig};
+use crate::model::{TimeMode, Zone};
 use crate::problem::FieldError;
 use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
 use crate::request::raw::{self, RawOutput};
@@ -11,14 +11,15 @@ use crate::request::reader::{child, index};
 use serde_json::Value;
 
 /// Parse the optional `output` section at `ptr` (absent or `null`: the defaults), with
-/// times in the request's form `mode`, reporting every fault found as the problem
-/// document's field errors.
+/// times in the request's form `mode` (offset-less timestamps read in `zone`), reporting
+/// every fault found as the problem document's field errors.
 pub fn output(
     v: Option<&Value>,
     ptr: &str,
     mode: TimeMode,
+    zone: &Zone,
 ) -> Result<OutputConfig, Vec<FieldError>> {
-    check_output(v, ptr, mode).map_err(|e| e.into_iter().map(FieldError::from).collect())
+    check_output(v, ptr, mode, zone).map_err(|e| e.into_iter().map(FieldError::from).collect())
 }
 
 /// [`output`] with typed errors.
@@ -26,20 +27,27 @@ pub fn check_output(
     v: Option<&Value>,
     ptr: &str,
     mode: TimeMode,
+    zone: &Zone,
 ) -> Result<OutputConfig, Vec<SpecError>> {
     let Some(v) = v.filter(|v| !v.is_null()) else {
         return Ok(OutputConfig::default());
     };
     let mut errs = SpecErrors::default();
     let section = raw::section::<RawOutput>(v);
-    let out = typed(&section, ptr, &mut errs).map(|o| checked(o, ptr, mode, &mut errs));
+    let out = typed(&section, ptr, &mut errs).map(|o| checked(o, ptr, mode, zone, &mut errs));
     match out {
         Some(o) if errs.is_empty() => Ok(o),
         _ => Err(errs.into_vec()),
     }
 }
 
-fn checked(o: &RawOutput, ptr: &str, mode: TimeMode, errs: &mut SpecErrors) -> OutputConfig {
+fn checked(
+    o: &RawOutput,
+    ptr: &str,
+    mode: TimeMode,
+    zone: &Zone,
+    errs: &mut SpecErrors,
+) -> OutputConfig {
     unknown_fields(&o.unknown, ptr, RawOutput::KNOWN, &[], errs);
     let mut out = OutputConfig::default();
     match optional(&o.covariance, ptr, "covariance", errs).copied() {
@@ -63,7 +71,7 @@ fn checked(o: &RawOutput, ptr: &str, mode: TimeMode, errs: &mut SpecErrors) -> O
         let mut m = Some(mode);
         for (i, x) in items.iter().enumerate() {
             let p = index(&ap, i);
-            if let Some(t) = time(x, &p, &mut m, errs) {
+            if let Some(t) = time(x, &p, &mut m, zone, errs) {
                 if let Some(prev) = out.at.last() {
                     if prev.is_after(&t, mode) {
                         errs.push(&p, SpecErrorKind::DecreasingTimes);
@@ -86,10 +94,13 @@ mod tests {
     #[test]
     fn absent_or_null_output_takes_the_defaults() {
         let d = OutputConfig::default();
-        assert_eq!(check_output(None, "/output", TimeMode::Seconds).unwrap(), d);
+        assert_eq!(
+            check_output(None, "/output", TimeMode::Seconds, &Zone::none()).unwrap(),
+            d
+        );
         let null = json!(null);
         assert_eq!(
-            check_output(Some(&null), "/output", TimeMode::Seconds).unwrap(),
+            check_output(Some(&null), "/output", TimeMode::Seconds, &Zone::none()).unwrap(),
             d
         );
         assert!(d.innovations && d.covariance == CovarianceOutput::Full);
@@ -98,7 +109,7 @@ mod tests {
     #[test]
     fn a_valid_output_is_read() {
         let v = json!({"covariance": "std", "innovations": false, "at": [0.5, 0.5, 2]});
-        let o = check_output(Some(&v), "/output", TimeMode::Seconds).unwrap();
+        let o = check_output(Some(&v), "/output", TimeMode::Seconds, &Zone::none()).unwrap();
         assert_eq!(o.covariance, CovarianceOutput::Std);
         assert!(!o.innovations);
         assert_eq!(o.at, [0.5, 0.5, 2.0].map(Instant::seconds));
@@ -107,7 +118,12 @@ mod tests {
     #[test]
     fn every_fault_is_reported_at_its_pointer() {
         let v = json!({"covariance": "half", "innovations": "yes", "at": [2, 1, "2026-03-01T06:00:00Z"], "every": 1});
-        let got = faults(check_output(Some(&v), "/output", TimeMode::Seconds));
+        let got = faults(check_output(
+            Some(&v),
+            "/output",
+            TimeMode::Seconds,
+            &Zone::none(),
+        ));
         let want = [
             (
                 "/output/every",
@@ -130,7 +146,12 @@ mod tests {
         assert_eq!(got, pairs(&want));
         let arr = json!([1]);
         assert_eq!(
-            faults(check_output(Some(&arr), "/output", TimeMode::Seconds)),
+            faults(check_output(
+                Some(&arr),
+                "/output",
+                TimeMode::Seconds,
+                &Zone::none()
+            )),
             [(
                 "/output".into(),
                 "expected an object, found an array".into()

@@ -5,8 +5,8 @@ use super::common::{
     check_covariance, finite, matrix, non_negative, number, optional, present, required, time,
     typed, unknown_fields, whole,
 };
-use crate::model::TimeMode;
 use crate::model::{FilterConfig, Method, Model, Prior, Running};
+use crate::model::{TimeMode, Zone};
 use crate::problem::FieldError;
 use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
 use crate::request::raw::{self, Entries, Field, RawPrior, RawRunning};
@@ -22,7 +22,19 @@ pub fn prior(
     model: &Model,
     cfg: Option<&FilterConfig>,
 ) -> Result<Prior, Vec<FieldError>> {
-    check_prior(v, ptr, model, cfg).map_err(|e| e.into_iter().map(FieldError::from).collect())
+    prior_in(v, ptr, model, cfg, &Zone::none())
+}
+
+/// [`prior`] for a request with a `time_zone`: an offset-less `t` is read in `zone`.
+pub fn prior_in(
+    v: &Value,
+    ptr: &str,
+    model: &Model,
+    cfg: Option<&FilterConfig>,
+    zone: &Zone,
+) -> Result<Prior, Vec<FieldError>> {
+    check_prior_in(v, ptr, model, cfg, zone)
+        .map_err(|e| e.into_iter().map(FieldError::from).collect())
 }
 
 /// [`prior`] with typed errors.
@@ -32,10 +44,21 @@ pub fn check_prior(
     model: &Model,
     cfg: Option<&FilterConfig>,
 ) -> Result<Prior, Vec<SpecError>> {
+    check_prior_in(v, ptr, model, cfg, &Zone::none())
+}
+
+/// [`prior_in`] with typed errors.
+pub fn check_prior_in(
+    v: &Value,
+    ptr: &str,
+    model: &Model,
+    cfg: Option<&FilterConfig>,
+    zone: &Zone,
+) -> Result<Prior, Vec<SpecError>> {
     let mut errs = SpecErrors::default();
     let section = raw::section::<RawPrior>(v);
     let prior =
-        typed(&section, ptr, &mut errs).and_then(|p| checked(p, ptr, model, cfg, &mut errs));
+        typed(&section, ptr, &mut errs).and_then(|p| checked(p, ptr, model, cfg, zone, &mut errs));
     match prior {
         Some(p) if errs.is_empty() => Ok(p),
         _ => Err(errs.into_vec()),
@@ -58,12 +81,13 @@ fn checked(
     ptr: &str,
     model: &Model,
     cfg: Option<&FilterConfig>,
+    zone: &Zone,
     errs: &mut SpecErrors,
 ) -> Option<Prior> {
     unknown_fields(&p.unknown, ptr, RawPrior::KNOWN, &[], errs);
     let at = |k: &str| child(ptr, k);
     let mut mode = None;
-    let t = present(&p.t, ptr, "t", errs).and_then(|t| time(t, &at("t"), &mut mode, errs));
+    let t = present(&p.t, ptr, "t", errs).and_then(|t| time(t, &at("t"), &mut mode, zone, errs));
     let n = model.n();
     let nm = model.n_model;
 
