@@ -84,7 +84,14 @@ pub struct RowOutcome {
 /// to `(ρ, 0)` (`ρ ≥ 0` when `a ≥ 0`).
 #[inline(always)]
 fn givens(a: f64, b: f64) -> (f64, f64, f64) {
-    let rho = a.hypot(b);
+    // √(a² + b²) directly where neither square can overflow or underflow (the usual
+    // case, several times cheaper than `hypot`), `hypot`'s scaled form otherwise.
+    let big = a.abs().max(b.abs());
+    let rho = if big < 1e150 && big > 1e-150 {
+        (a * a + b * b).sqrt()
+    } else {
+        a.hypot(b)
+    };
     (a / rho, b / rho, rho)
 }
 

@@ -95,36 +95,50 @@ impl Enkf {
         if ma < nn && !self.always_full {
             return self.transform_low_rank();
         }
-        // ỸᵀỸ, column j for all i ≤ j at once from Ỹ transposed.
-        gemm_nt_upper(
-            &self.ws.whitened_t,
-            &self.ws.whitened_t,
-            self.ws.transform_gram.as_mut_slice(),
-            (nn, ma, nn),
-        );
-        for j in 0..nn {
-            for i in 0..j {
-                self.ws.transform_gram[(j, i)] = self.ws.transform_gram[(i, j)];
-            }
-        }
-        // Eigenvectors overwrite `transform_gram`. The eigenvalues of A = (N−1) I + ỸᵀỸ are
-        // N−1 plus those of the Gram matrix ỸᵀỸ, which is positive semi-definite: its
-        // eigenvalues are clipped at zero before N−1 is added, so A stays positive
-        // definite however large Ỹ grows (a reading far more precise than the spread, after
-        // a long gap, where adding N−1 first would drown in the rounding of ỸᵀỸ).
-        if !symmetric_eigen(
-            self.ws.transform_gram.as_mut_slice(),
-            &mut self.ws.eigenvalues,
-            &mut self.ws.eigen_scratch,
-            nn,
-        ) {
-            return Err(FilterError::NonFinite("ensemble transform matrix"));
-        }
+        // A = (N−1) I + ỸᵀỸ first, as the eigen solver converges fastest on it; when
+        // rounding has made it indefinite (a reading far more precise than the spread,
+        // after a long gap, where N−1 drowns in the rounding of ỸᵀỸ), the Gram matrix ỸᵀỸ
+        // alone, whose eigenvalues are clipped at zero before N−1 is added, so A stays
+        // positive definite however large Ỹ grows (the same eigenvectors either way).
         let mut log_det_m = 0.0;
-        for l in self.ws.eigenvalues[..nn].iter_mut() {
+        for shifted in [true, false] {
+            // Column j for all i ≤ j at once from Ỹ transposed.
+            gemm_nt_upper(
+                &self.ws.whitened_t,
+                &self.ws.whitened_t,
+                self.ws.transform_gram.as_mut_slice(),
+                (nn, ma, nn),
+            );
+            for j in 0..nn {
+                if shifted {
+                    self.ws.transform_gram[(j, j)] += nf - 1.0;
+                }
+                for i in 0..j {
+                    self.ws.transform_gram[(j, i)] = self.ws.transform_gram[(i, j)];
+                }
+            }
+            // Eigenvectors overwrite `transform_gram`.
+            if !symmetric_eigen(
+                self.ws.transform_gram.as_mut_slice(),
+                &mut self.ws.eigenvalues,
+                &mut self.ws.eigen_scratch,
+                nn,
+            ) {
+                return Err(FilterError::NonFinite("ensemble transform matrix"));
+            }
+            let eig = &mut self.ws.eigenvalues[..nn];
+            if shifted && eig.iter().any(|l| !(*l > 0.0)) {
+                continue;
+            }
             // det M = det(I + ỸᵀỸ/(N−1)) (Sylvester's determinant identity).
-            log_det_m += (l.max(0.0) / (nf - 1.0)).ln_1p();
-            *l = l.max(0.0) + (nf - 1.0);
+            log_det_m = 0.0;
+            for l in eig.iter_mut() {
+                if !shifted {
+                    *l = l.max(0.0) + (nf - 1.0);
+                }
+                log_det_m += (*l / (nf - 1.0)).ln();
+            }
+            break;
         }
         self.ws.log_det_m = log_det_m;
         // w̄ = V Λ⁻¹ Vᵀ Ỹᵀ d̃ ; W = √(N−1) V Λ^{-1/2} Vᵀ.
