@@ -86,12 +86,7 @@ pub struct RowOutcome {
 fn givens(a: f64, b: f64) -> (f64, f64, f64) {
     // √(a² + b²) directly where neither square can overflow or underflow (the usual
     // case, several times cheaper than `hypot`), `hypot`'s scaled form otherwise.
-    let big = a.abs().max(b.abs());
-    let rho = if big < 1e150 && big > 1e-150 {
-        (a * a + b * b).sqrt()
-    } else {
-        a.hypot(b)
-    };
+    let rho = super::symmetric_eigen::pythag(a, b);
     (a / rho, b / rho, rho)
 }
 

@@ -39,7 +39,7 @@ fn squares_are_safe(a: f64, b: f64) -> bool {
 /// `hypot` outside that range.
 #[inline(always)]
 #[allow(clippy::imprecise_flops)] // the plain formula is chosen on purpose, see above
-fn pythag(a: f64, b: f64) -> f64 {
+pub(crate) fn pythag(a: f64, b: f64) -> f64 {
     if squares_are_safe(a, b) {
         (a * a + b * b).sqrt()
     } else {
