@@ -399,25 +399,12 @@ impl Sink for Json<'_> {
         // The marks live on the truth line, not the measurement line, so the measurements
         // stay exactly what estimate accepts.
         if !s.outliers.is_empty() {
-            truth.extend_from_slice(b",\"injected\":{");
-            for (j, si) in s.outliers.iter().enumerate() {
-                if j > 0 {
-                    truth.push(b',');
-                }
-                quoted(truth, &model.sensors[*si].name);
-                truth.extend_from_slice(b":\"outlier\"");
-            }
-            truth.push(b'}');
+            truth.extend_from_slice(b",\"injected\":");
+            sensor_names(truth, model, s.outliers, b"{}", b":\"outlier\"");
         }
         if !s.dropped.is_empty() {
-            truth.extend_from_slice(b",\"dropped\":[");
-            for (j, si) in s.dropped.iter().enumerate() {
-                if j > 0 {
-                    truth.push(b',');
-                }
-                quoted(truth, &model.sensors[*si].name);
-            }
-            truth.push(b']');
+            truth.extend_from_slice(b",\"dropped\":");
+            sensor_names(truth, model, s.dropped, b"[]", b"");
         }
         truth.push(b'}');
         meas.extend_from_slice(b"{\"t\":");
@@ -496,4 +483,24 @@ fn problem(e: SimulateError, mode: TimeMode) -> Problem {
             ),
         ),
     }
+}
+
+/// The names of `sensors` between `brackets` (`{}` or `[]`), each followed by `after`
+/// (`:"outlier"` for an object of marks, nothing for a list).
+fn sensor_names(
+    buf: &mut Vec<u8>,
+    model: &Model,
+    sensors: &[usize],
+    brackets: &[u8; 2],
+    after: &[u8],
+) {
+    buf.push(brackets[0]);
+    for (j, si) in sensors.iter().enumerate() {
+        if j > 0 {
+            buf.push(b',');
+        }
+        quoted(buf, &model.sensors[*si].name);
+        buf.extend_from_slice(after);
+    }
+    buf.push(brackets[1]);
 }

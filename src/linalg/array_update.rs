@@ -378,6 +378,31 @@ mod tests {
         (a - b).abs().max() <= tol * (1.0 + b.abs().max())
     }
 
+    /// The array's covariance, mean change `dx` and NIS against the plain form's `want`
+    /// and gain `k` for the update by `h`, `r` of `p` with innovation `nu`; returns S.
+    fn agrees_with_plain(
+        au: &ArrayUpdate,
+        (p, h, r): (&DMatrix<f64>, &DMatrix<f64>, &DMatrix<f64>),
+        (want, k): (&DMatrix<f64>, &DMatrix<f64>),
+        nu: &[f64],
+        dx: &[f64],
+        nis: f64,
+    ) -> DMatrix<f64> {
+        let n = p.nrows();
+        let mut got = DMatrix::zeros(n, n);
+        au.covariance(got.as_mut_slice());
+        assert!(close(&got, want, 1e-13), "{got} vs {want}");
+        let nuv = DVector::from_vec(nu.to_vec());
+        let kdx = k * &nuv;
+        for i in 0..n {
+            assert!((dx[i] - kdx[i]).abs() < 1e-13, "{} vs {}", dx[i], kdx[i]);
+        }
+        let s = h * p * h.transpose() + r;
+        let want_nis = nuv.dot(&(s.clone().try_inverse().unwrap() * &nuv));
+        assert!((nis - want_nis).abs() < 1e-12 * want_nis);
+        s
+    }
+
     #[test]
     fn rows_one_at_a_time_equal_the_plain_update() {
         // Sequential scalar rows with diagonal R give the stacked Kalman update (an identity
@@ -404,17 +429,7 @@ mod tests {
             nis += e * e;
             log_det += out.s.ln();
         }
-        let mut got = DMatrix::zeros(n, n);
-        au.covariance(got.as_mut_slice());
-        assert!(close(&got, &want, 1e-13), "{got} vs {want}");
-        let nuv = DVector::from_vec(nu.to_vec());
-        let kdx = &k * &nuv;
-        for i in 0..n {
-            assert!((dx[i] - kdx[i]).abs() < 1e-13, "{} vs {}", dx[i], kdx[i]);
-        }
-        let s = &h * &p * h.transpose() + &r;
-        let want_nis = nuv.dot(&(s.clone().try_inverse().unwrap() * &nuv));
-        assert!((nis - want_nis).abs() < 1e-12 * want_nis);
+        let s = agrees_with_plain(&au, (&p, &h, &r), (&want, &k), &nu, dx.as_slice(), nis);
         assert!((log_det - s.determinant().ln()).abs() < 1e-12);
     }
 
@@ -434,17 +449,7 @@ mod tests {
         let nu = [0.25, -0.4];
         let mut dx = vec![0.0; n];
         let (nis, log_det) = au.block(&lr, &b, &nu, 2, &mut dx).unwrap();
-        let mut got = DMatrix::zeros(n, n);
-        au.covariance(got.as_mut_slice());
-        assert!(close(&got, &want, 1e-13), "{got} vs {want}");
-        let nuv = DVector::from_vec(nu.to_vec());
-        let kdx = &k * &nuv;
-        for i in 0..n {
-            assert!((dx[i] - kdx[i]).abs() < 1e-13, "{} vs {}", dx[i], kdx[i]);
-        }
-        let s = &h * &p * h.transpose() + &r;
-        let want_nis = nuv.dot(&(s.clone().try_inverse().unwrap() * &nuv));
-        assert!((nis - want_nis).abs() < 1e-12 * want_nis);
+        let s = agrees_with_plain(&au, (&p, &h, &r), (&want, &k), &nu, &dx, nis);
         // ln det S against the 2 × 2 determinant written out (independent of the array).
         let det = s[(0, 0)] * s[(1, 1)] - s[(0, 1)] * s[(1, 0)];
         assert!(
