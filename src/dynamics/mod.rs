@@ -6,5 +6,5 @@ mod ode;
 mod van_loan;
 
 pub use expm::Expm;
-pub use ode::{past_deadline, Dopri5, OdeError, OdeStats, DEADLINE_EVERY};
+pub use ode::{first_non_finite, past_deadline, Dopri5, OdeError, OdeStats, DEADLINE_EVERY};
 pub use van_loan::{Discrete, Discretiser};

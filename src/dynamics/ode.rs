@@ -13,6 +13,9 @@ pub enum OdeError {
     NonFinite {
         /// Time of the failed evaluation.
         t: f64,
+        /// The first non-finite component of the rate or state vector (`None` when the
+        /// time itself was not finite), so callers can name the formula behind it.
+        component: Option<usize>,
     },
     /// The step size fell below what floating point can resolve at time `t`.
     StepTooSmall {
@@ -44,7 +47,9 @@ pub fn past_deadline(deadline: Option<std::time::Instant>, step: usize) -> bool 
 impl std::fmt::Display for OdeError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
-            Self::NonFinite { t } => write!(f, "the rate model gave a non-finite value at t = {t}"),
+            Self::NonFinite { t, .. } => {
+                write!(f, "the rate model gave a non-finite value at t = {t}")
+            }
             Self::StepTooSmall { t } => {
                 write!(
                     f,
@@ -213,16 +218,25 @@ impl Dopri5 {
         assert_eq!(y.len(), self.dim, "dopri5: state has the wrong length");
         let mut stats = OdeStats::default();
         if !t0.is_finite() {
-            return Err(OdeError::NonFinite { t: t0 });
+            return Err(OdeError::NonFinite {
+                t: t0,
+                component: None,
+            });
         }
         if !t1.is_finite() {
-            return Err(OdeError::NonFinite { t: t1 });
+            return Err(OdeError::NonFinite {
+                t: t1,
+                component: None,
+            });
         }
         if t1 == t0 || self.dim == 0 {
             return Ok(stats);
         }
         if !all_finite(y) {
-            return Err(OdeError::NonFinite { t: t0 });
+            return Err(OdeError::NonFinite {
+                t: t0,
+                component: first_non_finite(y),
+            });
         }
         let (rtol, atol, max_steps) = (self.rtol, self.atol, self.max_steps);
         let deadline = self.deadline;
@@ -307,7 +321,10 @@ impl Dopri5 {
                         + h * (A71 * k1[i] + A73 * k3[i] + A74 * k4[i] + A75 * k5[i] + A76 * k6[i]);
                 }
                 if !all_finite(y_new) {
-                    break 'step Err(OdeError::NonFinite { t: t_new });
+                    break 'step Err(OdeError::NonFinite {
+                        t: t_new,
+                        component: first_non_finite(y_new),
+                    });
                 }
                 if let Err(e) = eval(&mut f, t_new, y_new, k7, &mut stats) {
                     break 'step Err(e);
@@ -378,8 +395,16 @@ where
     if all_finite(dy) {
         Ok(())
     } else {
-        Err(OdeError::NonFinite { t })
+        Err(OdeError::NonFinite {
+            t,
+            component: first_non_finite(dy),
+        })
     }
+}
+
+/// The index of the first entry of `v` that is not finite.
+pub fn first_non_finite(v: &[f64]) -> Option<usize> {
+    v.iter().position(|x| !x.is_finite())
 }
 
 /// Weighted RMS norm `sqrt(mean (v_i / sc_i)²)`, `sc_i = atol + rtol |y_i|`.

@@ -240,15 +240,21 @@ fn nan_from_the_model_is_reported() {
         &mut y,
     );
     match result {
-        Err(OdeError::NonFinite { t }) => assert!(t > 0.3 && t <= 1.0, "{t}"),
+        Err(OdeError::NonFinite { t, component }) => {
+            assert!(t > 0.3 && t <= 1.0, "{t}");
+            assert_eq!(component, Some(0));
+        }
         other => panic!("expected NonFinite, got {other:?}"),
     }
     assert!(y[0].is_finite());
     let mut bad = [f64::NAN];
-    assert_eq!(
+    assert!(matches!(
         ode.integrate(|_, y, dy| dy[0] = -y[0], 0.0, 1.0, &mut bad),
-        Err(OdeError::NonFinite { t: 0.0 })
-    );
+        Err(OdeError::NonFinite {
+            t: 0.0,
+            component: Some(0)
+        })
+    ));
 }
 
 #[test]

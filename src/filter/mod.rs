@@ -36,6 +36,12 @@ pub enum FilterError {
         /// What turned non-finite (its Jacobian, its predicted reading, …).
         what: &'static str,
     },
+    /// A non-finite value appeared while integrating the rate formula of model state
+    /// `state` (an index; the job layer names it).
+    RateNonFinite {
+        /// Index of the state among the model's states.
+        state: usize,
+    },
     /// The named covariance lost positive (semi-)definiteness.
     NotPositive(&'static str),
     /// The integrator gave up, for the stated reason.
@@ -48,6 +54,10 @@ impl std::fmt::Display for FilterError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
             FilterError::NonFinite(what) => write!(f, "a non-finite value appeared in the {what}"),
+            FilterError::RateNonFinite { state } => write!(
+                f,
+                "a non-finite value appeared in the rate of state #{state} during integration"
+            ),
             FilterError::SensorNonFinite { sensor, what } => write!(
                 f,
                 "a non-finite value appeared in the {what} of sensor number {sensor} (from 0)"

@@ -76,15 +76,26 @@ impl Rk4 {
                 y[i] += h / 6.0 * (k1[i] + 2.0 * k2[i] + 2.0 * k3[i] + k4[i]);
             }
             if !all_finite(y) {
-                return Err(OdeError::NonFinite { t: t + h });
+                return Err(OdeError::NonFinite {
+                    t: t + h,
+                    component: crate::dynamics::first_non_finite(y),
+                });
             }
         }
         Ok(())
     }
 }
 
-fn ode_error(e: OdeError) -> FilterError {
+/// The filter's error for an integration that failed with `e`; `state_of` maps a component
+/// of the integrated vector to the model state whose rate formula it is (`None` for the
+/// covariance or transition parts), so the message can name the formula.
+fn ode_error(e: OdeError, state_of: impl Fn(usize) -> Option<usize>) -> FilterError {
     match e {
+        OdeError::NonFinite {
+            component: Some(c), ..
+        } if state_of(c).is_some() => FilterError::RateNonFinite {
+            state: state_of(c).unwrap_or(0),
+        },
         OdeError::NonFinite { .. } => FilterError::NonFinite("state during integration"),
         OdeError::StepTooSmall { .. } => FilterError::Integration(
             "the step size collapsed (the dynamics may be stiff or blow up)",
@@ -533,7 +544,8 @@ impl Predictor {
             Some(h) => self.rk_g.integrate(rhs, dt, h, y),
             None => self.ode_g.integrate(rhs, 0.0, dt, y).map(|_| ()),
         }
-        .map_err(ode_error)
+        // y = [m, M]: the first n_model entries are the model states' own rates.
+        .map_err(|e| ode_error(e, |c| (c < nm).then_some(c)))
     }
 
     fn fill_vars(&mut self, x: &[f64], u: &[f64], t0: f64, dt: f64) {
@@ -657,7 +669,8 @@ impl Predictor {
                     Some(h) => self.rk_p.integrate(rhs, dt, h, y),
                     None => self.ode_p.integrate(rhs, 0.0, dt, y).map(|_| ()),
                 }
-                .map_err(ode_error)?;
+                // y = [points by state (mp each), Q]: entry i·mp + j is state i of point j.
+                .map_err(|e| ode_error(e, |c| (c < nm * mp).then_some(c / mp)))?;
                 x.as_mut_slice().copy_from_slice(&y[..n * mp]);
                 if with_q {
                     q.as_mut_slice().copy_from_slice(&y[n * mp..dim]);

@@ -29,6 +29,15 @@ pub(super) fn step_problem(e: RunError, model: &Model) -> Problem {
                 ),
             )
         }),
+        RunError::Step {
+            cause: cause @ FilterError::RateNonFinite { state },
+            ..
+        } => model.states.get(*state).map(|name| {
+            (
+                cause.to_string(),
+                format!("a non-finite value appeared in the rate formula of state \"{name}\" during integration"),
+            )
+        }),
         _ => None,
     };
     let mut p = Problem::from(e);

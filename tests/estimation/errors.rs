@@ -252,6 +252,32 @@ fn diverging_filter_fails_with_a_clear_error_not_nan() {
     assert!(p.detail.contains("step 1"), "{p}");
 }
 
+/// Issue 10: a numerical failure names the formula where it arose. A water tower whose
+/// outflow formula takes the square root of a head that turns negative gives NaN inside
+/// the integration; the answer names the state whose rate formula it is, for the mean's
+/// integration (ekf) and the sigma points' (ukf).
+#[test]
+fn a_rate_formula_that_turns_non_finite_is_named() {
+    for method in ["ekf", "ukf"] {
+        let body = json!({
+            "model": {"states": ["level", "inflow"],
+                      "dynamics": {"rates": {"level": "inflow - 0.3*sqrt(level - 4.5)", "inflow": "0"}},
+                      "process_noise": {"density": {"inflow": 1e-4}},
+                      "sensors": {"gauge": {"measures": "level", "std": 0.01}}},
+            "filter": {"method": method},
+            "prior": {"t": 0.0, "mean": {"level": 4.0, "inflow": 0.0},
+                      "std": {"level": 0.01, "inflow": 0.01}},
+            "measurements": [{"t": 1.0, "values": {"gauge": 4.0}}]
+        });
+        let p = estimate(&body).unwrap_err();
+        assert!(
+            p.detail
+                .contains("in the rate formula of state \"level\" during integration"),
+            "{method}: {p}"
+        );
+    }
+}
+
 #[test]
 fn observability_of_position_and_velocity_sensors() {
     // Constant velocity (common practice): position readings recover velocity; velocity
