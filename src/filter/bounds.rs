@@ -288,7 +288,7 @@ pub fn truncated_standard_normal(a: f64, b: f64) -> (f64, f64) {
 /// `(j, k)` and `(k, j)`) and PSD (`0 ≤ c ≤ 1/σ²`, and `P − P e_i e_iᵀ P / σ²` is a Schur
 /// complement). With `σ² = 0` the mean is clamped. `column` is scratch of length `n`.
 /// Returns whether anything changed; nothing does while both bounds lie beyond
-/// [`NEGLIGIBLE_SIGMAS`].
+/// `NEGLIGIBLE_SIGMAS` standard deviations.
 pub fn truncate(
     x: &mut nalgebra::DVector<f64>,
     p: &mut nalgebra::DMatrix<f64>,

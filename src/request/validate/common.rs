@@ -380,8 +380,9 @@ pub(super) fn time(
     Some(inst)
 }
 
-/// [`time`] for callers that read their section with the pointer-carrying reader
-/// (`request::reader`): a time value in JSON, its errors pushed as field errors.
+/// `time` (the section readers' form) for callers that read their section with the
+/// pointer-carrying reader (`request::reader`): a time value in JSON, its errors pushed as
+/// field errors.
 pub fn time_value(
     v: &Value,
     ptr: &str,
