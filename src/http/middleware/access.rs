@@ -84,10 +84,10 @@ impl RequestLine {
         // `parent: None`: the fields say everything, and outside the request's span the
         // text line does not repeat its method and id in a prefix.
         if QUIET_ROUTES.contains(&route) {
-            tracing::debug!(target: TARGET, parent: None, method = %self.method, route = %route,
+            tracing::debug!(target: TARGET, parent: None, method = %crate::http::metrics::method_label(&self.method), route = %route,
                 status, duration_ms, request_id = %request_id, lines, filter, "request finished");
         } else {
-            tracing::info!(target: TARGET, parent: None, method = %self.method, route = %route,
+            tracing::info!(target: TARGET, parent: None, method = %crate::http::metrics::method_label(&self.method), route = %route,
                 status, duration_ms, request_id = %request_id, lines, filter, "request finished");
         }
     }
