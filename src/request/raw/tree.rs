@@ -9,8 +9,7 @@
 //! built only when something fails, each level adding its own key or index to the trail
 //! as the error passes back up.
 
-use crate::problem::FieldError;
-use crate::request::reader::{child, index};
+use crate::problem::{escape_token, FieldError};
 use serde::de::{self, DeserializeSeed, MapAccess, SeqAccess, Visitor};
 use serde_json::map::Entry;
 use serde_json::{Map, Number, Value};
@@ -45,11 +44,13 @@ pub fn tree(text: &str, base: &str) -> Result<Value, TreeError> {
         .and_then(|v| de.end().map(|()| v));
     read.map_err(|error| {
         let mut pointer = base.to_string();
+        // Built here rather than with `reader::child`, as `reader` reads sections with this.
         for seg in trail.segments.iter().rev() {
-            pointer = match seg {
-                Segment::Key(k) => child(&pointer, k),
-                Segment::Index(i) => index(&pointer, *i),
-            };
+            pointer.push('/');
+            match seg {
+                Segment::Key(k) => pointer.push_str(&escape_token(k)),
+                Segment::Index(i) => pointer.push_str(&i.to_string()),
+            }
         }
         match trail.repeated {
             Some(key) => TreeError::Repeated(FieldError::new(pointer, repeated_key(&key))),
