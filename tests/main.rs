@@ -15,4 +15,5 @@ mod http_simulate;
 mod http_time;
 mod no_alloc;
 mod openapi;
+mod request_keys;
 mod stream_no_alloc;

@@ -82,7 +82,7 @@ pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
     let model_v = envelope::section(env.model, "model")?;
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
     let zone = envelope::time_zone(&env)?;
-    let (x, u, t) = match envelope::optional_section(env.prior)? {
+    let (x, u, t) = match envelope::optional_section(env.prior, "prior")? {
         Some(pv) => {
             let p =
                 validate::prior_in(&pv, "/prior", &model, None, &zone).map_err(Problem::invalid)?;

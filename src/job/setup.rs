@@ -33,7 +33,7 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
         (env.filter, "filter"),
         (env.prior, "prior"),
     ])?;
-    let output_v = envelope::optional_section(env.output)?;
+    let output_v = envelope::optional_section(env.output, "output")?;
     let zone = envelope::time_zone(env)?;
     let mut errors: Vec<FieldError> = Vec::new();
     let model = validate::model(&model_v, "/model", limits)

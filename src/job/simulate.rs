@@ -292,11 +292,15 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         .transpose()
         .map_err(|e| Problem::invalid(vec![e]))?;
     let inputs = input_schedule(inputs_v, &model, &prior, &mut mode, &zone, &mut errs);
-    let seed = match envelope::optional_section(env.seed)? {
+    let seed = match envelope::optional_section(env.seed, "seed")? {
         Some(s) => whole(&s, "/seed", &mut errs).unwrap_or(0),
         None => 0,
     };
-    let sched = schedules(envelope::optional_section(env.sampling)?, &model, &mut errs);
+    let sched = schedules(
+        envelope::optional_section(env.sampling, "sampling")?,
+        &model,
+        &mut errs,
+    );
     if !errs.is_empty() {
         return Err(Problem::invalid(errs.into_vec()));
     }

@@ -1,9 +1,12 @@
 //! The request envelope: top-level sections kept as raw JSON text so each can be parsed
 //! with its own rules (the model as a tree with pointers, readings on the fast path), and
-//! the request-level `time_zone` every section's times are read in.
+//! the request-level `time_zone` every section's times are read in. A key given twice,
+//! at the top level (serde's derive refuses it) or inside a section ([`tree`]), is a 422
+//! at its second occurrence.
 
 use crate::model::Zone;
-use crate::problem::{FieldError, Problem, ProblemKind};
+use crate::problem::{escape_token, FieldError, Problem, ProblemKind};
+use crate::request::raw::{repeated_key, tree, TreeError};
 use crate::request::reading::clean_message;
 use serde::Deserialize;
 use serde_json::value::RawValue;
@@ -88,9 +91,20 @@ pub fn json_problem(e: serde_json::Error) -> Problem {
     match e.classify() {
         serde_json::error::Category::Data => {
             let msg = clean_message(&e);
-            let pointer = msg
-                .strip_prefix("unknown field `")
-                .and_then(|r| r.split('`').next())
+            // serde's derive names a top-level key it does not know, or one given twice,
+            // in backquotes; the pointer is that key's.
+            let named = |prefix: &str| {
+                msg.strip_prefix(prefix)
+                    .and_then(|r| r.split('`').next())
+                    .map(str::to_string)
+            };
+            if let Some(key) = named("duplicate field `") {
+                return Problem::invalid(vec![FieldError::new(
+                    format!("/{}", escape_token(&key)),
+                    repeated_key(&key),
+                )]);
+            }
+            let pointer = named("unknown field `")
                 .map(|f| format!("/{f}"))
                 .unwrap_or_default();
             Problem::invalid(vec![FieldError::new(pointer, msg)])
@@ -102,10 +116,20 @@ pub fn json_problem(e: serde_json::Error) -> Problem {
     }
 }
 
+/// A section's text as a JSON tree: a key repeated within one object is a 422 at its
+/// second occurrence (see [`tree`]), anything else serde_json says goes through
+/// [`json_problem`].
+fn section_tree(raw: &RawValue, name: &str) -> Result<Value, Problem> {
+    tree(raw.get(), &format!("/{name}")).map_err(|e| match e {
+        TreeError::Repeated(f) => Problem::invalid(vec![f]),
+        TreeError::Json { error, .. } => json_problem(error),
+    })
+}
+
 /// A required section as a JSON tree, or a 422 naming it.
 pub fn section(raw: Option<&RawValue>, name: &str) -> Result<Value, Problem> {
     match raw {
-        Some(r) => serde_json::from_str(r.get()).map_err(json_problem),
+        Some(r) => section_tree(r, name),
         None => Err(Problem::field(
             format!("/{name}"),
             format!("missing required field '{name}'"),
@@ -113,10 +137,9 @@ pub fn section(raw: Option<&RawValue>, name: &str) -> Result<Value, Problem> {
     }
 }
 
-/// An optional section as a JSON tree.
-pub fn optional_section(raw: Option<&RawValue>) -> Result<Option<Value>, Problem> {
-    raw.map(|r| serde_json::from_str(r.get()).map_err(json_problem))
-        .transpose()
+/// An optional section (named `name` at the top level) as a JSON tree.
+pub fn optional_section(raw: Option<&RawValue>, name: &str) -> Result<Option<Value>, Problem> {
+    raw.map(|r| section_tree(r, name)).transpose()
 }
 
 /// Read the named required sections, collecting every missing one (and reporting a section
@@ -128,7 +151,7 @@ pub fn sections<const N: usize>(
     let mut out: [Value; N] = std::array::from_fn(|_| Value::Null);
     for (i, (r, name)) in raw.iter().enumerate() {
         match r {
-            Some(r) => out[i] = serde_json::from_str(r.get()).map_err(json_problem)?,
+            Some(r) => out[i] = section_tree(r, name)?,
             None => missing.push(FieldError::new(
                 format!("/{name}"),
                 format!("missing required field '{name}'"),

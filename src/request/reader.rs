@@ -193,27 +193,21 @@ pub fn names_list<S: AsRef<str>>(names: &[S]) -> String {
 }
 
 /// Parse a request section's text (already checked to be JSON syntax) into a tree, or
-/// name the field that cannot be held in one: a number beyond the range of a double
-/// (`1e400`) passes the syntax check but has no finite value. `base` is the section's
-/// pointer.
+/// name the field that cannot be held in one: a key given twice in one object (see
+/// [`crate::request::raw::tree()`]), or a number beyond the range of a double (`1e400`),
+/// which passes the syntax check but has no finite value. `base` is the section's pointer.
 pub fn parse_section(text: &str, base: &str) -> Result<Value, FieldError> {
-    let mut de = serde_json::Deserializer::from_str(text);
-    serde_path_to_error::deserialize::<_, Value>(&mut de).map_err(|e| {
-        use serde_path_to_error::Segment;
-        let mut pointer = base.to_string();
-        for seg in e.path().iter() {
-            match seg {
-                Segment::Seq { index: i } => pointer = index(&pointer, *i),
-                Segment::Map { key } => pointer = child(&pointer, key),
-                Segment::Enum { .. } | Segment::Unknown => {}
-            }
+    use crate::request::raw::{tree, TreeError};
+    tree(text, base).map_err(|e| match e {
+        TreeError::Repeated(f) => f,
+        TreeError::Json { pointer, error } => {
+            let detail = if error.to_string().contains("out of range") {
+                "number is out of range: a value must be a finite number".to_string()
+            } else {
+                error.to_string()
+            };
+            FieldError::new(pointer, detail)
         }
-        let detail = if e.inner().to_string().contains("out of range") {
-            "number is out of range: a value must be a finite number".to_string()
-        } else {
-            e.inner().to_string()
-        };
-        FieldError::new(pointer, detail)
     })
 }
 

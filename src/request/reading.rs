@@ -8,6 +8,7 @@ use crate::model::Reading;
 use crate::model::{Instant, TimeMode, Zone};
 use crate::problem::{escape_token, FieldError};
 use crate::request::line_scan::Scan;
+use crate::request::raw::repeated_key;
 use crate::request::reader::names_list;
 use serde::de::{Deserializer, MapAccess, SeqAccess, Visitor};
 use serde::Deserialize;
@@ -274,7 +275,19 @@ impl<'m> ReadingParser<'m> {
                 let inner = e.into_inner();
                 match inner.classify() {
                     serde_json::error::Category::Data => {
-                        LineError::Invalid(vec![FieldError::new(path, clean_message(&inner))])
+                        let msg = clean_message(&inner);
+                        // serde's derive names a line's key given twice in backquotes.
+                        let twice = msg
+                            .strip_prefix("duplicate field `")
+                            .and_then(|r| r.split('`').next());
+                        let e = match twice {
+                            Some(key) => FieldError::new(
+                                format!("{path}/{}", escape_token(key)),
+                                repeated_key(key),
+                            ),
+                            None => FieldError::new(path, msg),
+                        };
+                        LineError::Invalid(vec![e])
                     }
                     _ => LineError::Syntax(inner.to_string()),
                 }
@@ -315,8 +328,13 @@ impl<'m> ReadingParser<'m> {
             )),
         }
         if let Some(values) = raw.values {
-            for (name, v) in values.0 {
+            let twice = repeated_keys(&values.0);
+            for (i, (name, v)) in values.0.into_iter().enumerate() {
                 let p = || format!("/values/{}", escape_token(&name));
+                if twice.contains(&i) {
+                    errs.push(FieldError::new(p(), repeated_key(&name)));
+                    continue;
+                }
                 let Some(si) = m.sensor_index(&name) else {
                     errs.push(FieldError::new(
                         p(),
@@ -332,13 +350,6 @@ impl<'m> ReadingParser<'m> {
                     ));
                     continue;
                 };
-                if out.sensors.iter().any(|(s, _)| *s == si) {
-                    errs.push(FieldError::new(
-                        p(),
-                        format!("sensor '{name}' appears twice"),
-                    ));
-                    continue;
-                }
                 let dim = m.sensors[si].dim;
                 let start = out.z.len();
                 match v {
@@ -383,8 +394,13 @@ impl<'m> ReadingParser<'m> {
             }
         }
         if let Some(inputs) = raw.inputs {
-            for (name, v) in inputs.0 {
+            let twice = repeated_keys(&inputs.0);
+            for (i, (name, v)) in inputs.0.into_iter().enumerate() {
                 let p = || format!("/inputs/{}", escape_token(&name));
+                if twice.contains(&i) {
+                    errs.push(FieldError::new(p(), repeated_key(&name)));
+                    continue;
+                }
                 match (m.input_index(&name), v) {
                     (Some(i), Some(x)) => out.inputs.push((i, x)),
                     (Some(_), None) => {}
@@ -402,8 +418,13 @@ impl<'m> ReadingParser<'m> {
             errs.push(FieldError::new("/std", "`std` was renamed `noise_std`"));
         }
         if let Some(stds) = raw.noise_std {
-            for (name, v) in stds.0 {
+            let twice = repeated_keys(&stds.0);
+            for (i, (name, v)) in stds.0.into_iter().enumerate() {
                 let p = || format!("/noise_std/{}", escape_token(&name));
+                if twice.contains(&i) {
+                    errs.push(FieldError::new(p(), repeated_key(&name)));
+                    continue;
+                }
                 let Some(si) = m.sensor_index(&name) else {
                     errs.push(FieldError::new(p(), format!("unknown sensor '{name}'")));
                     continue;
@@ -439,6 +460,29 @@ impl<'m> ReadingParser<'m> {
             Err(errs)
         }
     }
+}
+
+/// The positions of the members whose key an earlier member of the same object has
+/// (empty, without allocating, when every key is unique). A few members are compared
+/// pairwise; more are looked up in a set, so a line of many keys costs linear time.
+fn repeated_keys<V>(members: &[(Cow<'_, str>, V)]) -> Vec<usize> {
+    const PAIRWISE_UP_TO: usize = 16;
+    let mut out = Vec::new();
+    if members.len() <= PAIRWISE_UP_TO {
+        for (i, (k, _)) in members.iter().enumerate() {
+            if members[..i].iter().any(|(e, _)| e == k) {
+                out.push(i);
+            }
+        }
+    } else {
+        let mut seen = std::collections::HashSet::with_capacity(members.len());
+        for (i, (k, _)) in members.iter().enumerate() {
+            if !seen.insert(k.as_ref()) {
+                out.push(i);
+            }
+        }
+    }
+    out
 }
 
 fn path_to_pointer(path: &serde_path_to_error::Path) -> String {

@@ -10,7 +10,9 @@
 //! Names and formulas borrow from the parsed JSON tree (`'a`), so reading a section
 //! copies no strings. Where a field takes two shapes the type is an enum read by the
 //! JSON type met (`by_json_type!`): what `#[serde(untagged)]` does, without buffering
-//! the value and trying each variant in turn.
+//! the value and trying each variant in turn. The tree they are read from comes from
+//! [`tree()`], which refuses a key repeated within one object (serde_json's own tree keeps
+//! the last silently).
 
 mod field;
 mod filter;
@@ -19,6 +21,7 @@ mod output;
 mod prior;
 #[cfg(test)]
 mod tests;
+mod tree;
 
 pub use field::{kind_of, section, Entries, Expected, Field, Matrix};
 pub use filter::{RawEnsemble, RawFilter, RawGate, RawIntegration, RawReacquire, RawUnscented};
@@ -28,3 +31,4 @@ pub use model::{
 };
 pub use output::RawOutput;
 pub use prior::{RawPrior, RawRunning, RawTime};
+pub use tree::{repeated_key, tree, TreeError};

@@ -15,6 +15,7 @@ use crate::request::error::{SpecError, SpecErrorKind, SpecErrors};
 use crate::request::raw::{self, Entries, Field, RawBounds, RawEstimated, RawModel, RawParameter};
 use crate::request::reader::{child, index};
 use serde_json::Value;
+use std::collections::HashSet;
 
 /// Parse and check the `model` section at `ptr`, reporting every fault found as the
 /// problem document's field errors.
@@ -38,7 +39,7 @@ fn name_list(
     f: &Option<Field<Vec<Field<&str>>>>,
     ptr: &str,
     what: &'static str,
-    taken: &mut Vec<String>,
+    taken: &mut HashSet<String>,
     errs: &mut SpecErrors,
 ) -> Vec<String> {
     let Some(items) = f.as_ref().and_then(|f| typed(f, ptr, errs)) else {
@@ -162,12 +163,63 @@ fn estimated(
     ))
 }
 
+/// The count limits, checked before anything is read one by one: a model of 200,000 state
+/// names is refused at once, whatever else is wrong with it, rather than after each
+/// name is checked. States count with the estimated parameters (objects in `parameters`),
+/// as the filter carries both; every item of `states` counts, even one that is not a
+/// name. Whether anything was over a limit.
+fn over_limits(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> bool {
+    let states = match &m.states {
+        Some(Field::Ok(list)) => list.len(),
+        _ => 0,
+    };
+    let estimated = match &m.parameters {
+        Some(Field::Ok(params)) => params
+            .0
+            .iter()
+            .filter(|(_, p)| matches!(p, Field::Ok(RawParameter::Estimated(_))))
+            .count(),
+        _ => 0,
+    };
+    let sensors = match &m.sensors {
+        Some(Field::Ok(list)) => list.len(),
+        _ => 0,
+    };
+    let mut over = false;
+    if states + estimated > limits.max_states {
+        errs.push(
+            child(ptr, "states"),
+            SpecErrorKind::OverLimit {
+                what: "states (with estimated parameters)",
+                count: (states + estimated) as u64,
+                limit: limits.max_states,
+            },
+        );
+        over = true;
+    }
+    if sensors > limits.max_sensors {
+        errs.push(
+            child(ptr, "sensors"),
+            SpecErrorKind::OverLimit {
+                what: "sensors",
+                count: sensors as u64,
+                limit: limits.max_sensors,
+            },
+        );
+        over = true;
+    }
+    over
+}
+
 /// The checks of [`check_model`] once the section is known to be an object.
 fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> Option<Model> {
+    if over_limits(m, ptr, limits, errs) {
+        return None;
+    }
     unknown_fields(&m.unknown, ptr, RawModel::KNOWN, &[], errs);
     let at = |k: &str| child(ptr, k);
 
-    let mut taken = Vec::new();
+    let mut taken = HashSet::new();
     present(&m.states, ptr, "states", errs);
     let model_states = name_list(&m.states, &at("states"), "state", &mut taken, errs);
     if model_states.is_empty() && m.states.is_some() {
@@ -222,16 +274,6 @@ fn checked(m: &RawModel, ptr: &str, limits: &Limits, errs: &mut SpecErrors) -> O
     states.extend(estimated_params.iter().map(|p| p.name.clone()));
     let n = states.len();
     let nu = inputs.len();
-    if n > limits.max_states {
-        errs.push(
-            at("states"),
-            SpecErrorKind::OverLimit {
-                what: "states (with estimated parameters)",
-                count: n as u64,
-                limit: limits.max_states,
-            },
-        );
-    }
     if !errs.is_empty() {
         return None;
     }
@@ -453,6 +495,34 @@ mod tests {
                 "/model/states".into(),
                 "3 states (with estimated parameters) exceed the limit of 2".into()
             )]
+        );
+    }
+
+    #[test]
+    fn the_count_limits_are_checked_before_the_names() {
+        // 300 state names with a repeat and a reserved one among them, and 300 sensors:
+        // the counts alone are reported, before any name is looked at.
+        let mut v = trolley();
+        let mut names: Vec<String> = (0..300).map(|i| format!("s{i}")).collect();
+        names[5] = "s1".into();
+        names[6] = "dt".into();
+        v["states"] = json!(names);
+        let sensors: serde_json::Map<String, Value> = (0..300)
+            .map(|i| (format!("g{i}"), json!({"measures": "s0", "std": 1})))
+            .collect();
+        v["sensors"] = Value::Object(sensors);
+        assert_eq!(
+            faults(check(&v)),
+            [
+                (
+                    "/model/states".into(),
+                    "301 states (with estimated parameters) exceed the limit of 256".into()
+                ),
+                (
+                    "/model/sensors".into(),
+                    "300 sensors exceed the limit of 256".into()
+                ),
+            ]
         );
     }
 
