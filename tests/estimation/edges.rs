@@ -2,7 +2,7 @@
 //! item 2): each must be a clear refusal, never a 500, a hang or a 200 with nonsense.
 //! The plants are invented: a kiln's two thermocouple zones and a bottling conveyor.
 
-use super::support::check;
+use super::support::{check, estimate, simulate_or_problem};
 use serde_json::{json, Value};
 
 /// A kiln whose "balance" sensor reads the ratio of two zone temperatures: at the default
@@ -62,4 +62,79 @@ fn check_with_a_nan_dynamics_jacobian_is_a_422_naming_the_rate() {
                 && e.detail.contains("front = 0, back = 0")),
         "{p}"
     );
+}
+
+/// A bottling conveyor: belt position and speed, an encoder on the position.
+fn conveyor() -> Value {
+    json!({
+        "states": ["pos", "speed"],
+        "dynamics": {"rates": {"pos": "speed"}},
+        "process_noise": {"density": {"speed": 0.01}},
+        "sensors": {"encoder": {"measures": "pos", "std": 0.01}}
+    })
+}
+
+fn conveyor_prior() -> Value {
+    json!({"t": 0.0, "mean": {"pos": 0.0, "speed": 0.5}, "std": {"pos": 0.1, "speed": 0.1}})
+}
+
+/// The refusal of a std whose square is not a finite double: at `pointer`, stating the
+/// largest std accepted. √(largest binary64) = 1.3407807929942596e154 (IEEE 754, common
+/// practice; the digits from memory, checked by the unit test beside the bound).
+fn refused_std(p: &tacit::problem::Problem, pointer: &str) {
+    assert_eq!(p.status, 422, "{p}");
+    let e = p
+        .errors
+        .iter()
+        .find(|e| e.pointer == pointer)
+        .unwrap_or_else(|| panic!("no error at {pointer}: {p}"));
+    assert!(e.detail.contains("1.3407807929942596e154"), "{}", e.detail);
+}
+
+/// Item 3: a sensor std of 1.4e154 was a 500 ("sensor noise not PSD") from simulate,
+/// since its square overflows. Now a 422 at the std, from every endpoint.
+#[test]
+fn a_sensor_std_whose_square_overflows_is_a_422_at_the_std() {
+    let mut model = conveyor();
+    model["sensors"]["encoder"]["std"] = json!(1.4e154);
+    let sim = json!({"model": model, "prior": conveyor_prior(),
+                     "times": {"start": 0.1, "step": 0.1, "count": 3}, "seed": 5});
+    let p = simulate_or_problem(&sim).expect_err("simulate must refuse");
+    refused_std(&p, "/model/sensors/encoder/std");
+    let est = json!({"model": model, "filter": {"method": "ekf"}, "prior": conveyor_prior(),
+                     "measurements": [{"t": 0.1, "values": {"encoder": 0.05}}]});
+    refused_std(&estimate(&est).unwrap_err(), "/model/sensors/encoder/std");
+    refused_std(
+        &check(&json!({"model": model})).unwrap_err(),
+        "/model/sensors/encoder/std",
+    );
+    // One per component, too.
+    let mut model = conveyor();
+    model["sensors"]["encoder"] = json!({"measures": ["pos", "speed"], "std": [0.01, 1.4e154]});
+    let est = json!({"model": model, "filter": {"method": "ekf"}, "prior": conveyor_prior(),
+                     "measurements": []});
+    refused_std(&estimate(&est).unwrap_err(), "/model/sensors/encoder/std/1");
+    // The bound itself is accepted: its square is finite.
+    let mut model = conveyor();
+    model["sensors"]["encoder"]["std"] = json!(1.3407807929942596e154);
+    let sim = json!({"model": model, "prior": conveyor_prior(),
+                     "times": {"start": 0.1, "step": 0.1, "count": 3}, "seed": 5});
+    assert!(check(&json!({"model": model})).is_ok());
+    simulate_or_problem(&sim).unwrap_or_else(|p| panic!("the bound is accepted: {p}"));
+}
+
+/// Item 12: a prior std of 1.4e154 answered `"covariance": [[null]]`. Now a 422 at
+/// /prior/std/<name>.
+#[test]
+fn a_prior_std_whose_square_overflows_is_a_422_at_the_std() {
+    let mut prior = conveyor_prior();
+    prior["std"]["speed"] = json!(1.4e154);
+    for method in ["ekf", "ukf", "enkf"] {
+        let est = json!({"model": conveyor(), "filter": {"method": method}, "prior": prior,
+                         "measurements": [{"t": 0.1, "values": {"encoder": 0.05}}]});
+        refused_std(&estimate(&est).unwrap_err(), "/prior/std/speed");
+    }
+    let sim = json!({"model": conveyor(), "prior": prior,
+                     "times": {"start": 0.1, "step": 0.1, "count": 3}, "seed": 5});
+    refused_std(&simulate_or_problem(&sim).unwrap_err(), "/prior/std/speed");
 }
