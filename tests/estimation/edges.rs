@@ -138,3 +138,38 @@ fn a_prior_std_whose_square_overflows_is_a_422_at_the_std() {
                      "times": {"start": 0.1, "step": 0.1, "count": 3}, "seed": 5});
     refused_std(&simulate_or_problem(&sim).unwrap_err(), "/prior/std/speed");
 }
+
+/// A runaway kiln zone, x' = k x, predicted over a 1 s gap: the mean grows by e^k and the
+/// variance by e^{2k} (the exponential solution of a linear ODE, common practice). At
+/// k = 400 the variance e^800 is beyond every double (largest ≈ 1.8e308, IEEE 754): each
+/// method refuses with a 422 naming step 1, never a 200. (At k = 100 the prediction itself
+/// is right, e^100 ≈ 2.69e43, from memory, checked below.)
+#[test]
+fn an_overflowing_prediction_is_a_422_naming_the_step() {
+    let body = |method: &str, rate: &str| {
+        json!({
+            "model": {"states": ["x"], "dynamics": {"rates": {"x": rate}},
+                      "process_noise": {"density": {"x": 0.01}},
+                      "sensors": {"tc": {"measures": "x", "std": 0.5}}},
+            "filter": {"method": method},
+            "prior": {"t": 0.0, "mean": {"x": 1.0}, "std": {"x": 1.0}},
+            "measurements": [{"t": 1.0}]
+        })
+    };
+    for method in ["ekf", "ukf", "enkf"] {
+        match estimate(&body(method, "400*x")) {
+            Ok(out) => panic!("{method}: answered 200: {}", out["estimates"]),
+            Err(p) => {
+                assert_eq!(p.status, 422, "{method}: {p}");
+                assert!(p.detail.contains("step 1"), "{method}: {p}");
+            }
+        }
+    }
+    for method in ["ekf", "ukf"] {
+        let out = estimate(&body(method, "100*x")).unwrap_or_else(|p| panic!("{method}: {p}"));
+        let x = out["estimates"][0]["mean"]["x"].as_f64().unwrap();
+        let var = out["estimates"][0]["covariance"][0][0].as_f64().unwrap();
+        assert!((x / 100f64.exp() - 1.0).abs() < 1e-9, "{method}: {x}");
+        assert!(var > 0.0 && var.is_finite(), "{method}: {var}");
+    }
+}
