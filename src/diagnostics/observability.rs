@@ -70,20 +70,48 @@ pub fn jacobians(
     (f, hs)
 }
 
+/// The observability matrix overflowed: some entry of H Fᵏ (k < n) is not finite, so the
+/// rank test cannot be made at this point.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Overflow {
+    /// The first power k of F at which a block H Fᵏ has a non-finite entry.
+    pub power: usize,
+}
+
 /// Observability of the pair (F, H) over the named states.
-pub fn analyse(f: &DMatrix<f64>, h: &DMatrix<f64>, states: &[String]) -> Observability {
+///
+/// F and H must be finite (the caller refuses them otherwise, naming the formula); the
+/// blocks H Fᵏ are checked here before the SVD, since the decomposition does not terminate
+/// or panics on non-finite input, and powers of a finite F can still overflow.
+pub fn analyse(
+    f: &DMatrix<f64>,
+    h: &DMatrix<f64>,
+    states: &[String],
+) -> Result<Observability, Overflow> {
     let n = f.nrows();
     let m = h.nrows();
     let mut o = DMatrix::zeros(m * n, n);
     let mut block = h.clone();
     for k in 0..n {
+        if !block.iter().all(|v| v.is_finite()) {
+            return Err(Overflow { power: k });
+        }
         o.view_mut((k * m, 0), (m, n)).copy_from(&block);
-        block = &block * f;
+        if k + 1 < n {
+            block = &block * f;
+        }
     }
     // Scale each block row to unit size so that powers of F with large entries do not hide
     // the other rows from the rank tolerance.
     for mut row in o.row_iter_mut() {
-        let norm = row.norm();
+        let mut norm = row.norm();
+        if norm.is_infinite() {
+            // The sum of squares overflowed although every entry is finite: bring the
+            // row to its largest entry first.
+            let big = row.amax();
+            row /= big;
+            norm = row.norm();
+        }
         if norm > 0.0 {
             row /= norm;
         }
@@ -110,9 +138,9 @@ pub fn analyse(f: &DMatrix<f64>, h: &DMatrix<f64>, states: &[String]) -> Observa
             unobservable.push(name.clone());
         }
     }
-    Observability {
+    Ok(Observability {
         rank,
         dimension: n,
         unobservable,
-    }
+    })
 }

@@ -169,6 +169,28 @@ fn lyapunov_rate(f: &[f64], p: &[f64], qc: &[f64], fp: &mut [f64], dp: &mut [f64
 /// (`x`, `points × n` column-major, so each state's values over the points are
 /// contiguous), then each of the `nu` inputs `u_j` and the time `t` repeated once per
 /// point; the program's own slots follow. Used by the prediction and the point observer.
+/// End-of-prediction test of definiteness, O(n): a positive semi-definite P has no
+/// negative diagonal entry (Pᵢᵢ = eᵢᵀ P eᵢ ≥ 0, common practice), so a variance below
+/// zero proves the prediction lost P's definiteness (cancellation between huge terms, as
+/// in a runaway model over a long gap) and the step is refused rather than answered.
+/// Rounding leaves a zero variance at most a few ulps of the largest one below zero, so
+/// the test allows 64 ε of the largest variance.
+pub(crate) fn ensure_variances(cov: &DMatrix<f64>, what: &'static str) -> Result<(), FilterError> {
+    let n = cov.nrows();
+    let mut largest = 0.0_f64;
+    let mut lowest = 0.0_f64;
+    for i in 0..n {
+        let d = cov[(i, i)];
+        largest = largest.max(d);
+        lowest = lowest.min(d);
+    }
+    if lowest < -64.0 * f64::EPSILON * largest {
+        Err(FilterError::NotPositive(what))
+    } else {
+        Ok(())
+    }
+}
+
 pub(crate) fn load_points(
     bvars: &mut [f64],
     x: &[f64],
@@ -500,7 +522,7 @@ impl Predictor {
             }
         }
         ensure_finite(mean.as_slice(), cov.as_slice(), "predicted state")?;
-        Ok(())
+        ensure_variances(cov, "predicted covariance")
     }
 
     /// Integrate `y_g = [m, M]` over `dt` where `M` follows Ṗ = F P + P Fᵀ + Qc (covariance)
@@ -687,7 +709,24 @@ impl Predictor {
 
 #[cfg(test)]
 mod tests {
-    use super::round_to_40_bits;
+    use super::{ensure_variances, round_to_40_bits, DMatrix, FilterError};
+
+    /// A PSD matrix has no negative diagonal entry (common practice); a prediction
+    /// that leaves one is refused, while rounding a few ulps below zero is not.
+    #[test]
+    fn a_negative_predicted_variance_is_refused() {
+        let lost = DMatrix::from_row_slice(2, 2, &[1.0, 0.0, 0.0, -9.5e69]);
+        assert!(matches!(
+            ensure_variances(&lost, "predicted covariance"),
+            Err(FilterError::NotPositive("predicted covariance"))
+        ));
+        let all_below = DMatrix::from_row_slice(1, 1, &[-1e-300]);
+        assert!(ensure_variances(&all_below, "p").is_err());
+        let rounding = DMatrix::from_row_slice(2, 2, &[1.0, 0.0, 0.0, -1e-16]);
+        assert!(ensure_variances(&rounding, "p").is_ok());
+        let zero = DMatrix::zeros(3, 3);
+        assert!(ensure_variances(&zero, "p").is_ok());
+    }
 
     #[test]
     fn grid_gaps_share_one_discretisation_key() {

@@ -265,7 +265,8 @@ impl Estimator for Ukf {
         if !self.core.cov.iter().all(|x| x.is_finite()) {
             return Err(FilterError::NonFinite("predicted covariance"));
         }
-        Ok(())
+        // A negative centre weight can leave a negative variance (issue 15: −9.5e69).
+        crate::filter::predict::ensure_variances(&self.core.cov, "predicted covariance")
     }
 
     fn update(

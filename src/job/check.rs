@@ -4,10 +4,10 @@
 //! [`crate::diagnostics::observability`].
 
 use crate::config::Limits;
-use crate::diagnostics::observability::{analyse, jacobians, Observability};
+use crate::diagnostics::observability::{analyse, jacobians, Observability, Overflow};
 use crate::job::{Done, RunStats};
-use crate::model::Dynamics;
-use crate::problem::Problem;
+use crate::model::{Dynamics, Model};
+use crate::problem::{escape_token, FieldError, Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::validate;
 use nalgebra::{DMatrix, DVector};
@@ -97,14 +97,8 @@ pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
         }
     };
     let (f, hs) = jacobians(&model, &x, &u, t);
+    refuse_non_finite(&model, &x, t, &f, &hs)?;
     let mut warnings = Vec::new();
-    if !f
-        .iter()
-        .chain(hs.iter().flat_map(|h| h.iter()))
-        .all(|v| v.is_finite())
-    {
-        warnings.push("some derivatives are not finite at the linearisation point; give a prior mean where the formulas are smooth".to_string());
-    }
     let mut stacked = DMatrix::zeros(hs.iter().map(|h| h.nrows()).sum(), model.n());
     let mut row = 0;
     for h in &hs {
@@ -113,13 +107,17 @@ pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
             .copy_from(h);
         row += h.nrows();
     }
-    let all = analyse(&f, &stacked, &model.states);
+    let all = analyse(&f, &stacked, &model.states).map_err(|e| overflow(e, "all sensors"))?;
     let by_sensor: Vec<(String, Observability)> = model
         .sensors
         .iter()
         .zip(&hs)
-        .map(|(s, h)| (s.name.clone(), analyse(&f, h, &model.states)))
-        .collect();
+        .map(|(s, h)| {
+            analyse(&f, h, &model.states)
+                .map(|o| (s.name.clone(), o))
+                .map_err(|e| overflow(e, &format!("sensor '{}'", s.name)))
+        })
+        .collect::<Result<_, _>>()?;
     for name in &all.unobservable {
         warnings.push(format!("state '{name}' cannot be recovered from these sensors near this point: its estimate will follow the prior and the model only"));
     }
@@ -184,4 +182,99 @@ pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
         body,
         stats: RunStats::default(),
     })
+}
+
+/// Where the Jacobians were taken, for messages: `pos = 0, vel = 1.5 at t = 0`.
+fn point(model: &Model, x: &DVector<f64>, t: f64) -> String {
+    let at: Vec<String> = model
+        .states
+        .iter()
+        .zip(x.iter())
+        .map(|(name, v)| format!("{name} = {v}"))
+        .collect();
+    format!("{} at t = {t}", at.join(", "))
+}
+
+/// The first state column whose entry in `row` is not finite, with that entry.
+fn first_bad(model: &Model, row: impl Iterator<Item = f64>) -> Option<(&str, f64)> {
+    model
+        .states
+        .iter()
+        .zip(row)
+        .find(|(_, v)| !v.is_finite())
+        .map(|(name, v)| (name.as_str(), v))
+}
+
+/// Refuse a linearisation point where a derivative is not finite, naming each formula
+/// and the state it was taken with respect to. The rank test below runs an SVD, which
+/// panics or never ends on NaN; a rank read off non-finite entries would mean nothing.
+fn refuse_non_finite(
+    model: &Model,
+    x: &DVector<f64>,
+    t: f64,
+    f: &DMatrix<f64>,
+    hs: &[DMatrix<f64>],
+) -> Result<(), Problem> {
+    let at = point(model, x, t);
+    let fix = "give a prior mean where the formula is smooth";
+    let mut errors = Vec::new();
+    for (s, h) in model.sensors.iter().zip(hs) {
+        for k in 0..h.nrows() {
+            if let Some((state, v)) = first_bad(model, h.row(k).iter().copied()) {
+                let mut pointer = format!("/model/sensors/{}/measures", escape_token(&s.name));
+                if s.dim > 1 {
+                    pointer.push_str(&format!("/{k}"));
+                }
+                errors.push(FieldError::new(
+                    pointer,
+                    format!(
+                        "the derivative of sensor '{}' with respect to '{state}' is {v} at the linearisation point ({at}); {fix}",
+                        s.name
+                    ),
+                ));
+            }
+        }
+    }
+    let section = match &model.dynamics {
+        Dynamics::Rates(_) => Some("rates"),
+        Dynamics::Next(_) => Some("next"),
+        // A linear model's matrix was checked finite when it was read.
+        Dynamics::Linear { .. } => None,
+    };
+    if let Some(section) = section {
+        for k in 0..model.n_model {
+            if let Some((state, v)) = first_bad(model, f.row(k).iter().copied()) {
+                let row = &model.states[k];
+                errors.push(FieldError::new(
+                    format!("/model/dynamics/{section}/{}", escape_token(row)),
+                    format!(
+                        "the derivative of the formula for '{row}' with respect to '{state}' is {v} at the linearisation point ({at}); {fix}"
+                    ),
+                ));
+            }
+        }
+    }
+    if errors.is_empty() && !f.iter().all(|v| v.is_finite()) {
+        // Not reached from a formula (named above); kept so no SVD ever sees a NaN.
+        errors.push(FieldError::new(
+            "/model/dynamics",
+            format!("the dynamics Jacobian is not finite at the linearisation point ({at})"),
+        ));
+    }
+    if errors.is_empty() {
+        Ok(())
+    } else {
+        Err(Problem::invalid(errors))
+    }
+}
+
+/// The observability matrix of `whom` overflowed at power k of the dynamics Jacobian.
+fn overflow(e: Overflow, whom: &str) -> Problem {
+    Problem::new(
+        ProblemKind::NumericalFailure,
+        format!(
+            "the observability test for {whom} overflowed: H·F^{} has entries beyond the floating-point range at the linearisation point; rescale the states (units) or give a prior mean where the dynamics are milder",
+            e.power
+        ),
+    )
 }

@@ -4,6 +4,7 @@
 
 mod affine_sensor;
 mod bounds;
+mod edges;
 mod errors;
 mod properties;
 mod r10_integration;

@@ -23,10 +23,14 @@ pub(super) fn smooth(body: &Value) -> Result<Value, Problem> {
 
 /// Run `/v1/simulate` in-process.
 pub(super) fn simulate(body: &Value) -> Value {
+    simulate_or_problem(body).unwrap_or_else(|p| panic!("simulate failed: {p}"))
+}
+
+/// Run `/v1/simulate` in-process, keeping a refusal.
+pub(super) fn simulate_or_problem(body: &Value) -> Result<Value, Problem> {
     let bytes = serde_json::to_vec(body).unwrap();
-    let d = tacit::job::simulate(&bytes, &Limits::default(), &NOT_CANCELLED)
-        .unwrap_or_else(|p| panic!("simulate failed: {p}"));
-    serde_json::from_slice(&d.body).unwrap()
+    tacit::job::simulate(&bytes, &Limits::default(), &NOT_CANCELLED)
+        .map(|d| serde_json::from_slice(&d.body).unwrap())
 }
 
 /// Run `/v1/check` in-process.

@@ -156,7 +156,35 @@ pub(super) fn number(f: &Field<f64>, ptr: &str, errs: &mut SpecErrors) -> Option
     typed(f, ptr, errs).and_then(|&x| finite(x, ptr, errs))
 }
 
-/// A finite number above zero.
+/// The largest standard deviation accepted: √(largest f64), rounded down, so that the
+/// variance std² every filter, the prior and simulate form from it is still finite.
+/// A std of 1.4e154 squared overflows to infinity (IEEE 754 binary64: largest finite
+/// value ≈ 1.797e308, common practice).
+pub(super) const STD_MAX: f64 = 1.340_780_792_994_259_6e154;
+
+/// How [`STD_MAX`] is stated in refusals.
+const STD_RANGE: &str =
+    "at or below 1.3407807929942596e154 (its square, the variance, must be a finite number)";
+
+/// A `std` must square to a finite variance; any other field passes. Every std of a
+/// request (sensors, parameters, the prior) is read through the two functions below, so
+/// this one test guards them all.
+fn variance_fits(x: f64, ptr: &str, what: &'static str, errs: &mut SpecErrors) -> Option<f64> {
+    if what == "std" && x.abs() > STD_MAX {
+        errs.push(
+            ptr,
+            SpecErrorKind::OutOfRange {
+                what,
+                range: STD_RANGE,
+                value: x,
+            },
+        );
+        return None;
+    }
+    Some(x)
+}
+
+/// A finite number above zero (a `std` also squaring to a finite variance).
 pub(super) fn positive_value(
     x: f64,
     ptr: &str,
@@ -170,9 +198,10 @@ pub(super) fn positive_value(
         |x| x > 0.0,
         |value| SpecErrorKind::NotPositive { what, value },
     )
+    .and_then(|x| variance_fits(x, ptr, what, errs))
 }
 
-/// A finite number of zero or more.
+/// A finite number of zero or more (a `std` also squaring to a finite variance).
 pub(super) fn non_negative_value(
     x: f64,
     ptr: &str,
@@ -186,6 +215,7 @@ pub(super) fn non_negative_value(
         |x| x >= 0.0,
         |value| SpecErrorKind::Negative { what, value },
     )
+    .and_then(|x| variance_fits(x, ptr, what, errs))
 }
 
 /// A finite number that passes `ok` (a sign test), else the fault recorded at `ptr`:
@@ -426,6 +456,33 @@ pub(super) fn pairs(want: &[(&str, &str)]) -> Vec<(String, String)> {
 mod tests {
     use super::*;
     use serde_json::json;
+
+    /// The std bound is exactly where squaring stops being finite (IEEE 754 binary64,
+    /// common practice): the bound squares finite, the next double up does not.
+    #[test]
+    fn the_largest_std_is_the_last_whose_square_is_finite() {
+        assert!((STD_MAX * STD_MAX).is_finite());
+        assert!((STD_MAX.next_up() * STD_MAX.next_up()).is_infinite());
+        let mut errs = SpecErrors::default();
+        assert_eq!(
+            positive_value(STD_MAX, "/s", "std", &mut errs),
+            Some(STD_MAX)
+        );
+        assert_eq!(non_negative_value(1.4e154, "/s", "std", &mut errs), None);
+        // Other fields are not variances' roots and keep their range.
+        assert_eq!(
+            positive_value(1.4e154, "/d", "dt", &mut errs),
+            Some(1.4e154)
+        );
+        let e = errs.into_fields();
+        assert_eq!(e.len(), 1, "{e:?}");
+        assert_eq!(e[0].pointer, "/s");
+        assert!(
+            e[0].detail.contains("1.3407807929942596e154"),
+            "{}",
+            e[0].detail
+        );
+    }
 
     fn field_matrix(v: Value) -> Field<Matrix> {
         Field::deserialize(&v).unwrap()
