@@ -104,8 +104,10 @@ impl NisTally {
         running_verdict: &'static str,
     ) -> NisSummary {
         let all_mean = (all.count > 0).then(|| all.sum / all.count as f64);
-        let verdict = self.verdict(refusals);
-        if self.count == 0 {
+        // The chi-square quantiles once, for the verdict and the figures alike.
+        let bounds = self.bounds();
+        let verdict = self.judge(refusals, bounds);
+        let Some((lower, upper)) = bounds else {
             return NisSummary {
                 mean: None,
                 all_mean,
@@ -115,14 +117,12 @@ impl NisTally {
                 verdict,
                 running_verdict,
             };
-        }
+        };
         let k = self.count as f64;
-        let dof = self.dof as f64;
-        let (lower, upper) = self.bounds();
         NisSummary {
             mean: Some(self.sum / k),
             all_mean,
-            dof: dof / k,
+            dof: self.dof as f64 / k,
             lower_95: Some(lower),
             upper_95: Some(upper),
             verdict,
@@ -130,25 +130,32 @@ impl NisTally {
         }
     }
 
-    /// The two-sided 95 % interval of the mean NIS (needs at least one update).
-    fn bounds(&self) -> (f64, f64) {
+    /// The two-sided 95 % interval of the mean NIS (`None` without updates).
+    fn bounds(&self) -> Option<(f64, f64)> {
+        if self.count == 0 {
+            return None;
+        }
         let (k, dof) = (self.count as f64, self.dof as f64);
-        (
+        Some((
             chi2::quantile(0.025, dof) / k,
             chi2::quantile(0.975, dof) / k,
-        )
+        ))
     }
 
     /// The one-word verdict of this tally of accepted readings and the gate's refusals.
     pub fn verdict(&self, refusals: Option<Refusals>) -> &'static str {
+        self.judge(refusals, self.bounds())
+    }
+
+    /// [`NisTally::verdict`] with the interval already computed.
+    fn judge(&self, refusals: Option<Refusals>, bounds: Option<(f64, f64)>) -> &'static str {
         if refusals.is_some_and(|r| r.too_many()) {
             return "overconfident";
         }
-        if self.count == 0 {
+        let Some((lower, upper)) = bounds else {
             return "no_data";
-        }
+        };
         let mean = self.sum / self.count as f64;
-        let (lower, upper) = self.bounds();
         if mean > upper {
             "overconfident"
         } else if mean < lower {

@@ -127,19 +127,9 @@ impl Warnings {
             .find(|w| w.kind == kind && w.sensor == sensor && w.state == state)
     }
 
-    /// Whether a warning of `kind` was recorded.
-    pub fn has(&self, kind: WarningKind) -> bool {
-        self.list.iter().any(|w| w.kind == kind)
-    }
-
     /// The warnings, in the order they first happened.
     pub fn list(&self) -> &[Warning] {
         &self.list
-    }
-
-    /// Whether nothing was recorded.
-    pub fn is_empty(&self) -> bool {
-        self.list.is_empty()
     }
 }
 
@@ -170,8 +160,8 @@ mod tests {
         assert_eq!(w.list()[0].count, 1000);
         assert_eq!(w.list()[0].at, Instant::seconds(0.0));
         assert_eq!(w.list()[0].detail, "first at 0");
-        assert!(w.has(WarningKind::OutOfBounds));
-        assert!(!w.has(WarningKind::NoUpdates));
+        assert_eq!(w.list()[1].kind, WarningKind::OutOfBounds);
+        assert_eq!(w.list()[1].state, Some(2));
     }
 
     #[test]

@@ -501,19 +501,21 @@ impl Run {
     /// A line whose time is before the run's: skipped with a warning under
     /// `filter.late: "skip"`, else the request's error.
     fn late_line(&mut self, r: &Reading, pointer: &str) -> Result<StepDone, RunError> {
-        let (at, current) = (fmt_time(&r.t, self.mode), fmt_time(&self.t, self.mode));
-        let back = r.t.until(&self.t, self.mode);
+        let (mode, now) = (self.mode, self.t);
+        let back = r.t.until(&now, mode);
         if self.cfg.late == LateLines::Reject {
             return Err(RunError::TimeDecreasing {
                 pointer: pointer.to_string(),
-                at,
-                current,
+                at: fmt_time(&r.t, mode),
+                current: fmt_time(&now, mode),
                 back,
             });
         }
         self.counts.skipped += 1;
+        // The texts are made only for the first late line: later ones add to its count.
         self.warnings
             .note(WarningKind::LateLineSkipped, None, None, r.t, || {
+                let (at, current) = (fmt_time(&r.t, mode), fmt_time(&now, mode));
                 format!("a line at {at} came {back} s after the run had reached {current} and was skipped (filter.late = \"skip\"); count says how many were").into()
             });
         Ok(StepDone {
@@ -528,10 +530,10 @@ impl Run {
     fn note_duplicates(&mut self, r: &Reading) {
         for &(s, _) in &r.sensors {
             if std::mem::replace(&mut self.read_now[s], true) {
-                let name = &self.model.sensors[s].name;
-                let at = fmt_time(&r.t, self.mode);
+                let (name, mode) = (&self.model.sensors[s].name, self.mode);
                 self.warnings
                     .note(WarningKind::DuplicateTime, Some(s), None, r.t, || {
+                        let at = fmt_time(&r.t, mode);
                         format!("sensor '{name}' was read twice at {at}; both readings were applied as independent ones (a line repeated by an export would count twice)").into()
                     });
             }
@@ -554,13 +556,10 @@ impl Run {
             }
             self.gate_now[s] = f64::INFINITY;
             self.est.reset_spread(&self.measured[s], &self.prior_var);
-            let (name, at, k) = (
-                &self.model.sensors[s].name,
-                fmt_time(&r.t, self.mode),
-                self.streaks[s].0,
-            );
+            let (name, mode, k) = (&self.model.sensors[s].name, self.mode, self.streaks[s].0);
             self.warnings
                 .note(WarningKind::Reacquired, Some(s), None, r.t, || {
+                    let at = fmt_time(&r.t, mode);
                     format!("sensor '{name}' was taken back at {at} after {k} refusals in a row; the states its readings inform were reset to their prior spread").into()
                 });
         }
