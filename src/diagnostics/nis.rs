@@ -4,17 +4,24 @@
 //! freedom when the filter is consistent, so the mean NIS has the two-sided 95 % interval
 //! [χ²_{0.025}(Σm)/K, χ²_{0.975}(Σm)/K] (Bar-Shalom, Li, Kirubarajan 2001, §5.4.2).
 //!
-//! Refused readings count too. Behind a gate of probability p, a consistent filter refuses
-//! each judged reading with probability 1 − p, so out of J judged readings the number
-//! refused is Binomial(J, 1 − p). When at least the refused count R is less likely than
-//! 0.1 % under that law, P(X ≥ R) = I_{1−p}(R, J − R + 1) (the regularised incomplete beta
+//! Refused readings count too, by how they come. Behind a gate of probability p, a
+//! consistent filter refuses each judged reading with probability 1 − p, and its
+//! innovations are white (independent from step to step; Bar-Shalom et al. 2001, §5.4.2),
+//! so a reading is refused right after the same sensor's previous reading was refused
+//! with probability (1 − p)². An overconfident filter refuses in runs: its error persists
+//! from step to step, so once a reading is refused the next one is likely refused too (a
+//! locked-out sensor, a sensor that changed its units). An isolated glitch, refused once
+//! between accepted readings, says nothing against the filter's spread: that is what a gate
+//! is for. So the test counts the refusals that followed a refusal of the same sensor, A,
+//! out of J judged readings, against Binomial(J, (1 − p)²): when at least A is less likely
+//! than 0.1 %, P(X ≥ A) = I_{(1−p)²}(A, J − A + 1) (the regularised incomplete beta
 //! function; any statistics text, common practice), the verdict is `overconfident`
-//! whatever the accepted readings' NIS says: a filter that locks a sensor out or refuses
-//! a sensor that changed its units must not look consistent because the readings that
-//! would show it were left out. The level is stricter than the NIS bounds' 2.5 % on
-//! purpose: a gate is there to refuse the odd glitch that no noise model describes, and
-//! one refused glitch among ten readings (a tail of 1 %) must not turn the verdict, while
-//! a lock-out (hundreds refused, a tail far below 1e-100) must.
+//! whatever the accepted readings' NIS says. The pairs overlap and so are not quite
+//! independent; for rare refusals their count is close to Poisson with the same mean (the
+//! law of rare events, common practice), which the binomial with J ≥ the number of pairs
+//! matches or errs above. Runs carry across the requests of a chain
+//! (`posterior.running.in_a_row`), so a dashboard posting one reading at a time is judged
+//! as one long run would be.
 
 use crate::diagnostics::chi2;
 use serde::Serialize;
@@ -31,35 +38,38 @@ pub struct NisTally {
     pub dof: u64,
 }
 
-/// The binomial tail below which the gate's refusals make the verdict `overconfident`.
+/// The binomial tail below which the gate's repeated refusals make the verdict
+/// `overconfident`.
 pub const REFUSAL_LEVEL: f64 = 1e-3;
 
-/// What the gate did: readings judged and refused, at gate probability `p`.
+/// What the gate did: readings judged, and how many were refused right after the same
+/// sensor's previous refusal, at gate probability `p`.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Refusals {
     /// Gate probability.
     pub p: f64,
     /// Sensor readings judged by the gate.
     pub judged: u64,
-    /// Of those, refused.
-    pub refused: u64,
+    /// Of those, refused right after the same sensor's previous reading was refused.
+    pub again: u64,
 }
 
 impl Refusals {
-    /// P(X ≥ refused) for X ~ Binomial(judged, 1 − p): how likely this many refusals or
-    /// more are from a consistent filter.
+    /// P(X ≥ again) for X ~ Binomial(judged, (1 − p)²): how likely this many repeated
+    /// refusals or more are from a consistent filter.
     pub fn tail_probability(&self) -> f64 {
-        if self.refused == 0 {
+        if self.again == 0 {
             return 1.0;
         }
-        let (k, n) = (self.refused as f64, self.judged as f64);
-        beta_reg(k, n - k + 1.0, 1.0 - self.p)
+        let (k, n) = (self.again as f64, self.judged as f64);
+        let q = 1.0 - self.p;
+        beta_reg(k, n - k + 1.0, q * q)
     }
 
-    /// Whether the refusals alone show the filter overconfident (tail below
+    /// Whether the repeated refusals alone show the filter overconfident (tail below
     /// [`REFUSAL_LEVEL`]).
     pub fn too_many(&self) -> bool {
-        self.refused > 0 && self.tail_probability() < REFUSAL_LEVEL
+        self.again > 0 && self.tail_probability() < REFUSAL_LEVEL
     }
 }
 
@@ -76,8 +86,8 @@ pub struct NisSummary {
     pub lower_95: Option<f64>,
     /// Upper two-sided 95 % bound of the mean NIS.
     pub upper_95: Option<f64>,
-    /// `consistent`, `overconfident` (NIS too large, or more readings refused than the
-    /// gate explains), `underconfident` (NIS too small), or `no_data` when no reading
+    /// `consistent`, `overconfident` (NIS too large, or more readings refused in runs than
+    /// the gate explains), `underconfident` (NIS too small), or `no_data` when no reading
     /// updated the filter and none was refused.
     pub verdict: &'static str,
     /// The same verdict over every request of a chain (`posterior.running`).
@@ -191,33 +201,31 @@ mod tests {
     }
 
     #[test]
-    fn refusals_beyond_what_the_gate_explains_make_the_verdict_overconfident() {
-        // A gate at p = 0.999 refuses a consistent filter's reading with probability
-        // 0.001. P(X ≥ 1) for X ~ Binomial(1000, 0.001) is 1 − 0.999^1000 = 0.6323 (closed
-        // form, common practice): one refusal in 1000 is ordinary.
+    fn repeated_refusals_beyond_what_the_gate_explains_make_the_verdict_overconfident() {
+        // A gate at p = 0.999 refuses a consistent filter's reading right after a refused
+        // one with probability 0.001² = 1e-6. P(X ≥ 1) for X ~ Binomial(1000, 1e-6) is
+        // 1 − (1 − 1e-6)^1000 (closed form, common practice): about 1e-3.
         let one = Refusals {
             p: 0.999,
             judged: 1000,
-            refused: 1,
+            again: 1,
         };
-        let closed = 1.0 - 0.999f64.powi(1000);
+        let closed = 1.0 - (1.0 - 1e-6f64).powi(1000);
         assert!((one.tail_probability() - closed).abs() < 1e-12);
-        assert!(!one.too_many());
-        // P(X ≥ 2) = 1 − 0.999^1000 − 1000·0.001·0.999^999 = 0.2642 (closed form).
-        // One glitch refused among nine readings (a README example): tail
-        // 1 − 0.999⁹ = 0.009, above the 0.1 % level, so it does not turn the verdict.
-        let glitch = Refusals {
-            p: 0.999,
-            judged: 9,
-            refused: 1,
-        };
-        assert!((glitch.tail_probability() - (1.0 - 0.999f64.powi(9))).abs() < 1e-12);
-        assert!(!glitch.too_many());
-        let two = Refusals { refused: 2, ..one };
-        let closed2 = 1.0 - 0.999f64.powi(1000) - 0.999f64.powi(999);
-        assert!((two.tail_probability() - closed2).abs() < 1e-12);
-        // The cart that locked out: 562 of 1105 refused. However good the accepted
-        // readings' NIS, the verdict is overconfident.
+        // P(X ≥ 2) = 1 − (1−q)^1000 − 1000·q·(1−q)^999 with q = 1e-6 (closed form; about
+        // 5e-7, so the difference of near-equal terms is compared to 1e-6 relative).
+        let q = 1e-6f64;
+        let two = Refusals { again: 2, ..one };
+        let closed2 = 1.0 - (1.0 - q).powi(1000) - 1000.0 * q * (1.0 - q).powi(999);
+        assert!((two.tail_probability() / closed2 - 1.0).abs() < 1e-6);
+        assert!(two.too_many());
+        // Isolated glitches, each refused once between accepted readings, never repeat:
+        // however many, they do not turn the verdict.
+        let glitches = Refusals { again: 0, ..one };
+        assert_eq!(glitches.tail_probability(), 1.0);
+        assert!(!glitches.too_many());
+        // The cart that locked out: 562 of 1105 refused, 561 of them right after another.
+        // However good the accepted readings' NIS, the verdict is overconfident.
         let mut acc = NisTally::default();
         for _ in 0..543 {
             acc.add(1.0, 1);
@@ -226,16 +234,18 @@ mod tests {
         let lockout = Refusals {
             p: 0.999,
             judged: 1105,
-            refused: 562,
+            again: 561,
         };
         assert!(lockout.tail_probability() < 1e-100);
         assert_eq!(acc.verdict(Some(lockout)), "overconfident");
-        // Every reading refused (a sensor that switched units): not `no_data`.
+        // Two readings, both refused behind a 0.99 gate (a sensor that switched units):
+        // one repeat out of two, P(X ≥ 1) = 1 − (1 − 1e-4)² ≈ 2e-4 < 1e-3: not `no_data`.
         let all = Refusals {
             p: 0.99,
-            judged: 40,
-            refused: 40,
+            judged: 2,
+            again: 1,
         };
+        assert!((all.tail_probability() - (1.0 - (1.0 - 1e-4f64).powi(2))).abs() < 1e-12);
         assert_eq!(NisTally::default().verdict(Some(all)), "overconfident");
     }
 }

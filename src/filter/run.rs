@@ -33,6 +33,8 @@ pub struct Counts {
     pub updates: u64,
     /// Readings refused by the gate.
     pub rejected: u64,
+    /// Of those, refused right after the same sensor's previous reading was refused.
+    pub refused_again: u64,
     /// Sensor readings judged (accepted or refused).
     pub judged: u64,
     /// Lines skipped because their time went backwards (`filter.late: "skip"`).
@@ -326,7 +328,7 @@ impl Run {
             gate_now: thresholds.clone().unwrap_or_default(),
             thresholds,
             keep_cross,
-            streaks: vec![(0, prior.t); sensors],
+            streaks: prior.in_a_row.iter().map(|&k| (k, prior.t)).collect(),
             read_now: vec![false; sensors],
             measured,
             prior_var,
@@ -586,6 +588,9 @@ impl Run {
             refused_dim += ck.dim;
             if streak.0 == 0 {
                 streak.1 = *at;
+            } else {
+                self.counts.refused_again += 1;
+                self.running.refused_again += 1;
             }
             streak.0 += 1;
             if streak.0 >= STREAK_WARNING {
@@ -634,20 +639,29 @@ impl Run {
         self.running
     }
 
+    /// Per sensor, in model order: its latest readings refused in a row
+    /// (`posterior.running.in_a_row`).
+    pub fn in_a_row(&self) -> impl ExactSizeIterator<Item = u64> + '_ {
+        self.streaks.iter().map(|s| s.0)
+    }
+
     /// The summary's NIS object: this request's verdict (refusals counted) and the
     /// chain's.
     pub fn nis_summary(&self) -> NisSummary {
         let c = &self.counts;
-        let refusals = |judged, refused| self.cfg.gate.map(|p| Refusals { p, judged, refused });
+        let refusals = |judged, again| self.cfg.gate.map(|p| Refusals { p, judged, again });
         let run = self.running();
         let chain = NisTally {
             count: run.readings,
             sum: run.nis_sum,
             dof: run.dof_sum,
         };
-        let running_verdict = chain.verdict(refusals(run.judged, run.refused));
-        c.nis
-            .summary(&c.all_nis, refusals(c.judged, c.rejected), running_verdict)
+        let running_verdict = chain.verdict(refusals(run.judged, run.refused_again));
+        c.nis.summary(
+            &c.all_nis,
+            refusals(c.judged, c.refused_again),
+            running_verdict,
+        )
     }
 
     /// A prediction-only estimate at `at` (not before the current time) that leaves the run

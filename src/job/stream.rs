@@ -43,6 +43,7 @@ struct LastGood {
     inputs: DVector<f64>,
     counts: Counts,
     running: Running,
+    in_a_row: Vec<u64>,
     warnings: Warnings,
     /// Entries and the sum of their counts in `warnings`. Warnings only ever gain entries
     /// or counts, so while this pair is unchanged they are unchanged and are not copied.
@@ -67,6 +68,7 @@ impl LastGood {
             inputs: run.inputs().clone(),
             counts: run.counts,
             running: run.running(),
+            in_a_row: run.in_a_row().collect(),
             warnings: run.warnings.clone(),
             seen: fingerprint(&run.warnings),
         }
@@ -87,6 +89,9 @@ impl LastGood {
         self.inputs.copy_from(run.inputs());
         self.counts = run.counts;
         self.running = run.running();
+        for (mine, theirs) in self.in_a_row.iter_mut().zip(run.in_a_row()) {
+            *mine = theirs;
+        }
         let seen = fingerprint(&run.warnings);
         if seen != self.seen {
             self.warnings = run.warnings.clone();
@@ -186,6 +191,7 @@ impl Stream {
             g.step,
             &g.inputs,
             &g.running,
+            g.in_a_row.iter().copied(),
         );
         out.push(b',');
         // The run's own summary rules (e.g. `no_updates`) over the last good tallies.

@@ -293,6 +293,7 @@ impl Writer {
             est.step(),
             run.inputs(),
             &run.running(),
+            run.in_a_row(),
         );
     }
 
@@ -308,6 +309,7 @@ impl Writer {
         step: u64,
         inputs: &DVector<f64>,
         r: &Running,
+        in_a_row: impl Iterator<Item = u64>,
     ) {
         buf.extend_from_slice(b"\"posterior\":{\"t\":");
         self.time(buf, t);
@@ -337,7 +339,17 @@ impl Writer {
         buf.extend_from_slice(itoa::Buffer::new().format(r.judged).as_bytes());
         buf.extend_from_slice(b",\"refused\":");
         buf.extend_from_slice(itoa::Buffer::new().format(r.refused).as_bytes());
-        buf.extend_from_slice(b"}}");
+        buf.extend_from_slice(b",\"refused_again\":");
+        buf.extend_from_slice(itoa::Buffer::new().format(r.refused_again).as_bytes());
+        buf.extend_from_slice(b",\"in_a_row\":{");
+        for (s, k) in in_a_row.enumerate() {
+            if s > 0 {
+                buf.push(b',');
+            }
+            buf.extend_from_slice(&self.sensor_keys[s]);
+            buf.extend_from_slice(itoa::Buffer::new().format(k).as_bytes());
+        }
+        buf.extend_from_slice(b"}}}");
     }
 
     /// `"summary":{...}`.

@@ -126,6 +126,10 @@ pub struct Prior {
     /// Tallies of the requests before this one in a chain (`prior.running`; zero when
     /// absent).
     pub running: Running,
+    /// Per sensor, in model order: how many of its latest readings in the chain were
+    /// refused in a row (`prior.running.in_a_row`; zeros when absent), so a streak that
+    /// spans two requests counts as one.
+    pub in_a_row: Vec<u64>,
 }
 
 /// What a chain of requests has seen so far (`posterior.running`), so a verdict can cover
@@ -144,6 +148,9 @@ pub struct Running {
     pub judged: u64,
     /// Of those, refused.
     pub refused: u64,
+    /// Of those, refused right after the same sensor's previous reading was refused (the
+    /// count the verdict tests; `diagnostics::nis`).
+    pub refused_again: u64,
 }
 
 /// How much covariance each estimate carries.

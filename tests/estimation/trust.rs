@@ -254,6 +254,71 @@ fn a_chain_of_requests_keeps_one_running_verdict() {
     assert_eq!(p.errors[0].pointer, "/prior/running/refused");
 }
 
+/// The locked-out cart as a dashboard would post it, ten lines a request: its runs of
+/// refusals span the requests, and `posterior.running.in_a_row` carries each sensor's
+/// run on, so the chain's `refused_again` and `running_verdict` are the long run's. Had
+/// every request started its runs afresh, each would count at most 9 repeats of its own.
+#[test]
+fn runs_of_refusals_carry_across_a_chain_of_requests() {
+    let whole = cart(0.003, "encoder_m", (0.01, 0.1), None);
+    let single = ok(&whole);
+    let r = &single["posterior"]["running"];
+    assert_eq!(single["summary"]["nis"]["verdict"], "overconfident");
+    assert!(r["refused_again"].as_u64().unwrap() > 400, "{r}");
+    let lines = whole["measurements"].as_array().unwrap().clone();
+    let mut prior = whole["prior"].clone();
+    let mut last = Value::Null;
+    for chunk in lines.chunks(10) {
+        let mut body = whole.clone();
+        body["prior"] = prior;
+        body["measurements"] = json!(chunk);
+        last = ok(&body);
+        prior = last["posterior"].clone();
+    }
+    assert_eq!(last["posterior"]["running"], *r);
+    assert_eq!(last["summary"]["nis"]["running_verdict"], "overconfident");
+    // A run carried for a sensor the model does not have is refused at its name.
+    let mut body = whole.clone();
+    body["prior"] = single["posterior"].clone();
+    body["prior"]["running"]["in_a_row"] = json!({"tachometer": 3});
+    body["measurements"] = json!([]);
+    let p = estimate(&body).unwrap_err();
+    assert_eq!(p.errors[0].pointer, "/prior/running/in_a_row/tachometer");
+}
+
+/// A cart (q = 0.01) whose encoder glitches by +0.5 m (50 σ) on every 40th reading: the
+/// gate refuses each glitch and nothing else, so 27 of 1105 readings are refused, none
+/// right after another. A refused reading updates nothing, so the run is the run with
+/// those readings left out, and so must be its verdict: a consistent filter's
+/// innovations are white (Bar-Shalom, Li & Kirubarajan 2001, §5.4.2, R6), and isolated
+/// refusals say nothing against its spread. Counting all refusals against
+/// Binomial(1105, 0.001) instead (the rule before) called it `overconfident` whatever the
+/// accepted readings said (27 or more has a tail far below 0.1 %).
+#[test]
+fn isolated_refused_glitches_do_not_change_the_verdict() {
+    let mut glitched = cart(0.01, "encoder_m", (0.01, 0.1), None);
+    let mut left_out = glitched.clone();
+    let lines = glitched["measurements"].as_array_mut().unwrap();
+    let mut glitches = 0;
+    for (i, line) in lines.iter_mut().enumerate() {
+        if i % 40 == 39 {
+            let z = line["values"]["encoder"].as_f64().unwrap();
+            line["values"]["encoder"] = json!(z + 0.5);
+            left_out["measurements"][i] = json!({"t": line["t"]});
+            glitches += 1;
+        }
+    }
+    let (a, b) = (ok(&glitched), ok(&left_out));
+    let s = &a["summary"];
+    assert_eq!(glitches, 27);
+    assert_eq!(s["rejected"], glitches, "{s}");
+    assert_eq!(a["posterior"]["running"]["refused_again"], 0);
+    assert_eq!(s["nis"]["mean"], b["summary"]["nis"]["mean"]);
+    assert_eq!(s["nis"]["verdict"], b["summary"]["nis"]["verdict"], "{s}");
+    assert_ne!(s["nis"]["verdict"], "overconfident", "{s}");
+    assert!(warning(&a, "refused_in_a_row").is_none());
+}
+
 fn trolley(lines: Value, filter: Value) -> Value {
     json!({
         "model": {"states": ["position", "velocity"],

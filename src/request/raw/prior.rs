@@ -47,7 +47,8 @@ pub struct RawPrior<'a> {
     pub inputs: Option<Field<Entries<'a, f64>>>,
     /// Tallies of the chain so far (a posterior's `running`).
     #[serde(default)]
-    pub running: Option<Field<RawRunning>>,
+    #[serde(borrow)]
+    pub running: Option<Field<RawRunning<'a>>>,
     /// Keys the section does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
@@ -55,7 +56,7 @@ pub struct RawPrior<'a> {
 
 /// `prior.running`: what a chain of requests has tallied (a posterior's own).
 #[derive(Debug, Deserialize)]
-pub struct RawRunning {
+pub struct RawRunning<'a> {
     /// Updates counted.
     #[serde(default)]
     pub readings: Option<Field<u64>>,
@@ -74,12 +75,19 @@ pub struct RawRunning {
     /// Of those, refused.
     #[serde(default)]
     pub refused: Option<Field<u64>>,
+    /// Of those, refused right after the same sensor's previous refusal.
+    #[serde(default)]
+    pub refused_again: Option<Field<u64>>,
+    /// Per sensor, its latest readings refused in a row.
+    #[serde(default)]
+    #[serde(borrow)]
+    pub in_a_row: Option<Field<Entries<'a, u64>>>,
     /// Keys the object does not have.
     #[serde(flatten)]
     pub unknown: Map<String, Value>,
 }
 
-impl RawRunning {
+impl RawRunning<'_> {
     /// The object's fields, in the order messages list them.
     pub const KNOWN: &'static [&'static str] = &[
         "readings",
@@ -88,6 +96,8 @@ impl RawRunning {
         "log_likelihood",
         "judged",
         "refused",
+        "refused_again",
+        "in_a_row",
     ];
 }
 
@@ -105,7 +115,7 @@ impl RawPrior<'_> {
     ];
 }
 
-an_object!(RawPrior<'_>, RawRunning);
+an_object!(RawPrior<'_>, RawRunning<'_>);
 
 by_json_type!(RawTime<'a> {
     number: |n| RawTime::Seconds(n.as_f64().unwrap_or(f64::NAN)),

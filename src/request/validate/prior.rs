@@ -218,11 +218,13 @@ fn checked(
             _ => errs.push(&mp, SpecErrorKind::MembersWithoutEnsemble),
         }
     }
+    let mut in_a_row = vec![0; model.sensors.len()];
     let running = optional(&p.running, ptr, "running", errs)
-        .map(|r| running(r, &at("running"), errs))
+        .map(|r| running(r, model, &at("running"), &mut in_a_row, errs))
         .unwrap_or_default();
     Some(Prior {
         running,
+        in_a_row,
         t: t?,
         mode: mode.unwrap_or(TimeMode::Seconds),
         mean,
@@ -235,8 +237,16 @@ fn checked(
 
 /// `prior.running`, as a posterior wrote it: every field is required (a partial tally
 /// would give a verdict over a history it does not describe), counts whole, sums finite,
-/// NIS and degrees of freedom not negative, refusals no more than the readings judged.
-fn running(r: &RawRunning, ptr: &str, errs: &mut SpecErrors) -> Running {
+/// NIS and degrees of freedom not negative, refusals no more than the readings judged,
+/// repeated refusals no more than refusals. `in_a_row` names sensors of the model (each
+/// run written into `in_a_row` by sensor index).
+fn running(
+    r: &RawRunning,
+    model: &Model,
+    ptr: &str,
+    in_a_row: &mut [u64],
+    errs: &mut SpecErrors,
+) -> Running {
     unknown_fields(&r.unknown, ptr, RawRunning::KNOWN, &[], errs);
     let at = |k: &str| child(ptr, k);
     let count = |f: &Option<Field<u64>>, k: &str, errs: &mut SpecErrors| {
@@ -254,7 +264,35 @@ fn running(r: &RawRunning, ptr: &str, errs: &mut SpecErrors) -> Running {
         log_likelihood: sum(&r.log_likelihood, "log_likelihood", errs),
         judged: count(&r.judged, "judged", errs),
         refused: count(&r.refused, "refused", errs),
+        refused_again: count(&r.refused_again, "refused_again", errs),
     };
+    if let Some(runs) = required(&r.in_a_row, ptr, "in_a_row", errs) {
+        let rp = at("in_a_row");
+        for (k, v) in &runs.0 {
+            let kp = child(&rp, k);
+            match model.sensor_index(k) {
+                Some(i) => {
+                    if let Some(v) = whole(v, &kp, errs) {
+                        in_a_row[i] = v;
+                    }
+                }
+                None => {
+                    let known: Vec<String> = model.sensors.iter().map(|s| s.name.clone()).collect();
+                    unknown_name(&rp, k, &known, errs);
+                }
+            }
+        }
+    }
+    if out.refused_again > out.refused {
+        errs.push(
+            at("refused_again"),
+            SpecErrorKind::OutOfRange {
+                what: "refused_again",
+                range: "at most running.refused",
+                value: out.refused_again as f64,
+            },
+        );
+    }
     if out.nis_sum < 0.0 {
         errs.push(
             at("nis_sum"),
