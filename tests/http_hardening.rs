@@ -332,3 +332,25 @@ async fn a_socket_with_a_partial_request_head_or_idle_after_an_answer_is_closed(
         String::from_utf8_lossy(&answered)
     );
 }
+
+#[tokio::test]
+async fn check_with_a_non_finite_sensor_jacobian_answers() {
+    // Issue 15 item 2: `/v1/check` whose sensor Jacobian holds NaN (3 states) never
+    // answered. The kiln's thermocouple reads √(wall) at a wall temperature of −1, where
+    // the derivative d√w/dw = 1/(2√w) is NaN (IEEE 754 sqrt of a negative, common
+    // practice): a 422 naming the formula, not a hang.
+    let s = start(ServerConfig::default()).await;
+    let body = json!({
+        "model": {"states": ["core", "wall", "draft"],
+                  "dynamics": {"rates": {"core": "0.1*(wall - core)", "wall": "-0.2*wall + draft", "draft": "0"}},
+                  "process_noise": {"density": {"core": 0.01, "wall": 0.01, "draft": 0.01}},
+                  "sensors": {"couple": {"measures": "sqrt(wall) + core + draft", "std": 0.1}}},
+        "prior": {"t": 0.0, "mean": {"core": 1.0, "wall": -1.0, "draft": 0.0},
+                  "std": {"core": 1.0, "wall": 1.0, "draft": 1.0}}
+    });
+    let a = tokio::time::timeout(Duration::from_secs(60), post_json(&s, "/v1/check", &body))
+        .await
+        .expect("/v1/check never answered");
+    assert_problem(&a, 422);
+    assert!(a.text.contains("couple"), "{}", a.text);
+}
