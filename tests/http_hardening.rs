@@ -295,6 +295,17 @@ async fn an_idle_stream_holds_no_job_slot_and_is_ended_after_the_idle_time() {
     assert_eq!(lines[1]["posterior"]["t"], 1.0, "{got}");
     assert_eq!(lines[2]["error"]["type"], "/problems/stream-idle", "{got}");
     drop(tx);
+    // The idle time is the server's, listed in /v1/info.
+    let info: Value = s
+        .client
+        .get(s.url("/v1/info"))
+        .send()
+        .await
+        .unwrap()
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(info["timeouts"]["stream_idle_secs"], 1.0);
 }
 
 /// Read from `sock` until the server closes it (or gives an answer and then closes).
