@@ -4,13 +4,12 @@
 
 use crate::config::Limits;
 use crate::http::{self, ApiKeys, AppState, ServerConfig};
-use crate::job::{self, StreamSession};
+use crate::job::{self, Stop, StreamSession};
 use crate::problem::Problem;
 use clap::{Args, Parser, Subcommand, ValueEnum};
 use std::io::{BufRead, BufReader, IsTerminal, Read, Write};
 use std::net::SocketAddr;
 use std::process::ExitCode;
-use std::sync::atomic::AtomicBool;
 use std::time::{Duration, Instant};
 
 /// Recover unmeasured plant states with extended, unscented and ensemble Kalman filters.
@@ -74,7 +73,12 @@ pub struct LimitArgs {
     /// Deepest formula nesting.
     #[arg(long, env = "TACIT_MAX_FORMULA_DEPTH")]
     pub max_formula_depth: Option<usize>,
-    /// Compute budget of one request, seconds; 0 for none.
+    /// Most fixed-size steps one gap may need (grid steps of a discrete model, or steps of
+    /// integration.fixed_step); a longer gap is refused with 422 before stepping.
+    #[arg(long, env = "TACIT_MAX_GAP_STEPS")]
+    pub max_gap_steps: Option<u64>,
+    /// Compute budget of one request, seconds, counted from its arrival; 0 for none (a
+    /// request whose client goes away is still stopped at once).
     #[arg(long, env = "TACIT_DEADLINE_SECS")]
     pub deadline_secs: Option<f64>,
     /// Most requests computing at once; more are answered 503 with Retry-After.
@@ -105,6 +109,7 @@ impl LimitArgs {
             max_sim_times,
             max_formula_len,
             max_formula_depth,
+            max_gap_steps,
             max_concurrency
         );
         if let Some(s) = self.deadline_secs {
@@ -151,6 +156,14 @@ pub struct ServeArgs {
     /// Seconds running requests may continue after SIGTERM or SIGINT.
     #[arg(long, env = "TACIT_SHUTDOWN_GRACE_SECS", default_value_t = 30.0)]
     pub shutdown_grace_secs: f64,
+    /// Seconds a stream may stay silent between two lines before it is ended (with its
+    /// last good posterior and a stream-idle error line).
+    #[arg(long, env = "TACIT_STREAM_IDLE_SECS", default_value_t = 60.0)]
+    pub stream_idle_secs: f64,
+    /// Seconds a socket may wait for, or take to send, a request head (new connections
+    /// and kept-alive ones between requests) before it is closed.
+    #[arg(long, env = "TACIT_SOCKET_IDLE_SECS", default_value_t = 10.0)]
+    pub socket_idle_secs: f64,
 }
 
 /// `tacit run`.
@@ -238,13 +251,13 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
         Command::Check(a) => {
             let limits = a.limits.to_limits().map_err(CliError::Other)?;
             let body = read_all(&a.file)?;
-            print_body(&job::check(&body, &limits)?.body)
+            print_body(&job::check(&body, &limits, &Stop::within(limits.deadline))?.body)
         }
         Command::Simulate(a) => {
             let limits = a.limits.to_limits().map_err(CliError::Other)?;
             let body = read_all(&a.file)?;
-            let cancel = AtomicBool::new(false);
-            print_body(&job::simulate(&body, &limits, &cancel)?.body)
+            let stop = Stop::within(limits.deadline);
+            print_body(&job::simulate(&body, &limits, &stop)?.body)
         }
         Command::Demo(a) => demo(&a),
     }
@@ -269,6 +282,16 @@ pub fn server_config(a: &ServeArgs) -> Result<ServerConfig, CliError> {
             "--shutdown-grace-secs must be a non-negative number".into(),
         ));
     }
+    for (flag, v) in [
+        ("--stream-idle-secs", a.stream_idle_secs),
+        ("--socket-idle-secs", a.socket_idle_secs),
+    ] {
+        if !v.is_finite() || v <= 0.0 || v > 1e9 {
+            return Err(CliError::Other(format!(
+                "{flag} must be a positive number of seconds"
+            )));
+        }
+    }
     Ok(ServerConfig {
         limits,
         api_keys: keys,
@@ -279,6 +302,8 @@ pub fn server_config(a: &ServeArgs) -> Result<ServerConfig, CliError> {
             .filter(|o| !o.is_empty())
             .collect(),
         shutdown_grace: Duration::from_secs_f64(a.shutdown_grace_secs),
+        stream_idle: Duration::from_secs_f64(a.stream_idle_secs),
+        socket_idle: Duration::from_secs_f64(a.socket_idle_secs),
         ..ServerConfig::default()
     })
 }
@@ -442,14 +467,14 @@ fn run(a: &RunArgs) -> Result<(), CliError> {
             break;
         }
     }
-    let cancel = AtomicBool::new(false);
+    let stop = Stop::within(limits.deadline);
     match classify(&first) {
         InputKind::Batch => {
             input.read_to_end(&mut first)?;
             let done = if a.smooth {
-                job::smooth_pieces(&first, &limits, &cancel)?
+                job::smooth_pieces(&first, &limits, &stop)?
             } else {
-                job::estimate_pieces(&first, &limits, &cancel)?
+                job::estimate_pieces(&first, &limits, &stop)?
             };
             print_pieces(&done.parts)
         }
@@ -467,7 +492,7 @@ fn run_stream(
     mut input: Input,
     limits: &Limits,
 ) -> Result<(), CliError> {
-    let mut session = StreamSession::start(header, limits)?;
+    let mut session = StreamSession::start(header, limits, &Stop::never())?;
     let stdout = std::io::stdout();
     let mut out = std::io::BufWriter::with_capacity(1 << 16, stdout.lock());
     let mut buf = Vec::with_capacity(1 << 16);

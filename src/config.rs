@@ -27,7 +27,12 @@ pub struct Limits {
     pub max_formula_len: usize,
     /// Deepest nesting of a formula (parentheses, calls, unary operators).
     pub max_formula_depth: usize,
-    /// Wall-clock budget for the filter work of one request; `None` for no deadline.
+    /// Most fixed-size steps one gap between readings may need (grid steps of a discrete
+    /// model, or steps of `integration.fixed_step`); a longer gap is refused with a 422
+    /// before any stepping.
+    pub max_gap_steps: u64,
+    /// Wall-clock budget of one request, counted from its arrival; `None` for no
+    /// deadline (a request whose client goes away still stops).
     #[serde(rename = "deadline_secs", serialize_with = "ser_opt_secs")]
     pub deadline: Option<Duration>,
     /// Most requests doing filter work at once; more are answered 503.
@@ -53,6 +58,7 @@ impl Default for Limits {
             max_sim_times: 1_000_000,
             max_formula_len: 4096,
             max_formula_depth: 64,
+            max_gap_steps: 10_000_000,
             deadline: Some(Duration::from_secs(60)),
             max_concurrency: 64,
         }

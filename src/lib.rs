@@ -19,8 +19,8 @@
 //! One estimate, without a server: a trolley read by position only, its speed recovered.
 //!
 //! ```
-//! use std::sync::atomic::AtomicBool;
 //! use tacit::config::Limits;
+//! use tacit::job::Stop;
 //!
 //! let body = br#"{
 //!   "model": {"states": ["position", "velocity"],
@@ -34,7 +34,7 @@
 //!                    {"t": 0.2, "values": {"encoder": 2.10}},
 //!                    {"t": 0.3, "values": {"encoder": 2.15}}]
 //! }"#;
-//! let done = tacit::job::estimate(body, &Limits::default(), &AtomicBool::new(false))
+//! let done = tacit::job::estimate(body, &Limits::default(), &Stop::never())
 //!     .expect("a valid request");
 //! let answer: serde_json::Value = serde_json::from_slice(&done.body).unwrap();
 //! let speed = answer["posterior"]["mean"]["velocity"].as_f64().unwrap();

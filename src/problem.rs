@@ -59,6 +59,8 @@ pub enum ProblemKind {
     ShuttingDown,
     /// A stream's header line did not arrive in time.
     HeaderTimeout,
+    /// A stream fell silent between two lines for longer than the server waits.
+    StreamIdle,
 }
 
 /// The description of one kind of problem: what the answer carries and what the page at
@@ -93,6 +95,7 @@ impl ProblemKind {
         Self::Internal,
         Self::ShuttingDown,
         Self::HeaderTimeout,
+        Self::StreamIdle,
     ];
 
     /// The one table of problem kinds.
@@ -136,7 +139,10 @@ impl ProblemKind {
                 "send the request to another instance, or retry once the server is back"),
             Self::HeaderTimeout => (408, "request timeout", "header-timeout",
                 "the stream's first line (model, filter, prior) did not arrive in time",
-                "send the header line as soon as the request starts; readings may follow at any pace"),
+                "send the header line as soon as the request starts; readings may follow at any pace within the server's idle time (stream-idle)"),
+            Self::StreamIdle => (408, "request timeout", "stream-idle",
+                "the stream sent no byte between two lines for longer than the server's idle time; the last good posterior came before this error",
+                "resume from that posterior in a new stream when readings are due again, or send lines more often than the idle time"),
         };
         About {
             status,

@@ -14,14 +14,14 @@
 //! to a [`Sink`]; `POST /v1/simulate` ([`crate::job`]) parses the request and writes them.
 
 use crate::filter::predict::Predictor;
+use crate::filter::FilterError;
 use crate::linalg::cholesky_psd;
-use crate::model::{Instant, TimeMode};
+use crate::model::{Halt, Instant, Stop, TimeMode};
 use crate::model::{Integration, Model, Prior};
 use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha20Rng;
 use rand_distr::StandardNormal;
-use std::sync::atomic::{AtomicBool, Ordering};
 
 /// How one sensor is sampled.
 #[derive(Debug, Clone, Copy)]
@@ -97,8 +97,8 @@ pub trait Sink {
 #[derive(Debug, Clone, PartialEq)]
 #[non_exhaustive]
 pub enum SimulateError {
-    /// The cancel flag was set.
-    Cancelled,
+    /// The request's stop fired: its client went away or its deadline passed.
+    Stopped(Halt),
     /// The prior covariance has no square root.
     PriorNotPsd,
     /// Propagating the truth to time `at` failed.
@@ -165,9 +165,12 @@ impl Truth<'_> {
                     dt,
                     &mut self.q,
                 )
-                .map_err(|e| SimulateError::Propagation {
-                    at: *to,
-                    reason: e.to_string(),
+                .map_err(|e| match e {
+                    FilterError::Deadline => SimulateError::Stopped(Halt::Deadline),
+                    e => SimulateError::Propagation {
+                        at: *to,
+                        reason: e.to_string(),
+                    },
                 })?;
             if noisy {
                 cholesky_psd(self.q.as_slice(), &mut self.l, n)
@@ -188,14 +191,11 @@ impl Truth<'_> {
 
 /// Simulate `plan`, handing each time's sample to `sink`: one per sampling time, plus one
 /// per input change that falls strictly between sampling times (or between the prior's
-/// time and the first), in time order. `cancel` is polled every 256 sampling times.
+/// time and the first), in time order. `stop` is looked at on every sampling time and
+/// inside each long gap.
 /// Every draw comes from one ChaCha20 stream seeded with `plan.seed`, in a fixed order,
 /// so the same plan gives the same samples on every platform.
-pub fn run(
-    plan: &Plan<'_>,
-    cancel: &AtomicBool,
-    sink: &mut impl Sink,
-) -> Result<(), SimulateError> {
+pub fn run(plan: &Plan<'_>, stop: &Stop, sink: &mut impl Sink) -> Result<(), SimulateError> {
     let Plan {
         model,
         prior,
@@ -220,9 +220,11 @@ pub fn run(
         atol: 1e-12,
         fixed_step: None,
     };
+    let mut pred = Predictor::new(model, integration, 1);
+    pred.set_stop(stop);
     let mut truth = Truth {
         model,
-        pred: Predictor::new(model, integration, 1),
+        pred,
         mode,
         x,
         t: prior.t,
@@ -245,8 +247,8 @@ pub fn run(
     let mut dropped: Vec<usize> = Vec::with_capacity(model.sensors.len());
     let mut changed: Vec<(usize, f64)> = Vec::with_capacity(nu);
     for (k, tk) in times.iter().enumerate() {
-        if k % 256 == 0 && cancel.load(Ordering::Relaxed) {
-            return Err(SimulateError::Cancelled);
+        if let Some(why) = stop.every(k, 16) {
+            return Err(SimulateError::Stopped(why));
         }
         // Changes strictly before this sampling time: move the truth to each change's own
         // time, switch the inputs there and report that time as a sample of its own, so

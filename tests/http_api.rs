@@ -338,28 +338,39 @@ async fn no_job_slots_means_503_with_retry_after() {
     assert!(text.contains("tacit_http_shed_total"), "{text}");
 }
 
-/// Open a stream request whose body is held open, so its handler holds a job slot while
-/// it waits for the header line. Returns the sender that feeds the body.
-fn held_stream(
-    s: &crate::support::Server,
-) -> (
-    tokio::sync::mpsc::Sender<Result<bytes::Bytes, std::io::Error>>,
-    tokio::task::JoinHandle<reqwest::Result<reqwest::Response>>,
-) {
-    let (tx, rx) = tokio::sync::mpsc::channel::<Result<bytes::Bytes, std::io::Error>>(4);
-    let body = reqwest::Body::wrap_stream(futures_util::stream::unfold(rx, |mut rx| async {
-        rx.recv().await.map(|x| (x, rx))
-    }));
-    let req = s
-        .client
-        .post(s.url("/v1/estimate/stream"))
-        .header("content-type", "application/x-ndjson")
-        .body(body);
-    (tx, tokio::spawn(req.send()))
+/// Server settings under which [`held_job`] holds the only job slot for about two
+/// seconds: one slot, a 2 s deadline and no limit on the steps of one gap.
+fn holding(c: &mut ServerConfig) {
+    c.limits.max_concurrency = 1;
+    c.limits.deadline = Some(Duration::from_secs(2));
+    c.limits.max_gap_steps = u64::MAX;
 }
 
-/// Poll until `path` is shed with 503 (the held request owns the only slot), failing
-/// after two seconds instead of hanging.
+/// Start an estimate that computes until its deadline (under [`holding`]): fixed steps of
+/// 1 µs over a gap of 10⁶ s, 10¹² steps. (An idle stream no longer holds a slot, so a
+/// computing request is what fills the server.) Its answer is a 503 deadline problem.
+fn held_job(
+    s: &crate::support::Server,
+) -> tokio::task::JoinHandle<reqwest::Result<reqwest::Response>> {
+    let body = serde_json::json!({
+        "model": {"states": ["level"],
+                  "dynamics": {"rates": {"level": "-0.01*sin(level)"}},
+                  "process_noise": {"density": {"level": 0.01}},
+                  "sensors": {"gauge": {"measures": "level", "std": 0.1}}},
+        "filter": {"method": "ekf", "integration": {"fixed_step": 1e-6}},
+        "prior": {"t": 0.0, "mean": {"level": 1.0}, "std": {"level": 1.0}},
+        "measurements": [{"t": 1e6, "values": {"gauge": 0.5}}]
+    });
+    let req = s
+        .client
+        .post(s.url("/v1/estimate"))
+        .header("content-type", "application/json")
+        .body(serde_json::to_vec(&body).unwrap());
+    tokio::spawn(req.send())
+}
+
+/// Poll until `/v1/check` is shed with 503 (the held request owns the only slot),
+/// failing after two seconds instead of hanging.
 async fn wait_until_saturated(s: &crate::support::Server) {
     for _ in 0..200 {
         let res = s
@@ -375,13 +386,13 @@ async fn wait_until_saturated(s: &crate::support::Server) {
         }
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
-    panic!("the held stream never took the only job slot");
+    panic!("the held job never took the only job slot");
 }
 
 #[tokio::test]
 async fn a_full_server_sheds_instead_of_queueing() {
-    let s = start(config_with(|c| c.limits.max_concurrency = 1)).await;
-    let (tx, pending) = held_stream(&s);
+    let s = start(config_with(holding)).await;
+    let pending = held_job(&s);
     wait_until_saturated(&s).await;
     let a = post(&s, "/v1/estimate", "application/json", "{}").await;
     assert_problem(&a, 503);
@@ -389,10 +400,10 @@ async fn a_full_server_sheds_instead_of_queueing() {
     // Health is not delayed by the held request.
     let res = s.client.get(s.url("/healthz")).send().await.unwrap();
     assert_eq!(res.status(), 200);
-    // Ending the held body (empty stream) frees the slot.
-    drop(tx);
+    // The held job ends at its deadline, and that frees the slot.
     let held = answer(pending.await.unwrap().unwrap()).await;
-    assert_problem(&held, 400);
+    assert_problem(&held, 503);
+    assert_eq!(held.body["type"], "/problems/deadline-exceeded");
     let res = s
         .client
         .post(s.url("/v1/check"))
@@ -407,11 +418,11 @@ async fn a_full_server_sheds_instead_of_queueing() {
 #[tokio::test]
 async fn shutdown_flips_readiness_and_lets_running_requests_finish() {
     let mut s = start(config_with(|c| {
-        c.limits.max_concurrency = 1;
+        holding(c);
         c.shutdown_grace = Duration::from_secs(10);
     }))
     .await;
-    let (tx, pending) = held_stream(&s);
+    let pending = held_job(&s);
     wait_until_saturated(&s).await;
     s.signal_shutdown();
     // Readiness flips as soon as the signal is seen.
@@ -432,9 +443,9 @@ async fn shutdown_flips_readiness_and_lets_running_requests_finish() {
     .unwrap();
     assert_eq!(ready.status(), 503);
     // The running request still gets its answer after the signal.
-    drop(tx);
     let held = answer(pending.await.unwrap().unwrap()).await;
-    assert_problem(&held, 400);
+    assert_problem(&held, 503);
+    assert_eq!(held.body["type"], "/problems/deadline-exceeded");
     tokio::time::timeout(Duration::from_secs(5), s.shutdown())
         .await
         .expect("server stops once the running request is done")
@@ -444,11 +455,11 @@ async fn shutdown_flips_readiness_and_lets_running_requests_finish() {
 #[tokio::test]
 async fn shutdown_cuts_off_requests_past_the_grace_time() {
     let mut s = start(config_with(|c| {
-        c.limits.max_concurrency = 1;
+        holding(c);
         c.shutdown_grace = Duration::from_millis(200);
     }))
     .await;
-    let (_tx, _pending) = held_stream(&s);
+    let _pending = held_job(&s);
     wait_until_saturated(&s).await;
     s.signal_shutdown();
     let t0 = std::time::Instant::now();

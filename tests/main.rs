@@ -10,6 +10,7 @@ mod estimation;
 mod http_api;
 mod http_core;
 mod http_errors;
+mod http_hardening;
 mod http_logs;
 mod http_simulate;
 mod http_time;

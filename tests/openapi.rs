@@ -198,7 +198,7 @@ fn every_example_matches_its_schema() {
 /// (in process), and the two must agree.
 #[test]
 fn the_schema_refuses_what_the_server_refuses_and_takes_what_it_takes() {
-    use std::sync::atomic::AtomicBool;
+    use tacit::job::Stop;
     let d = doc();
     let schema = d["components"]["schemas"]["EstimateRequest"].clone();
     let v = validator(&d, &schema);
@@ -256,7 +256,7 @@ fn the_schema_refuses_what_the_server_refuses_and_takes_what_it_takes() {
     for (label, body, ok) in cases {
         let schema_ok = v.is_valid(&body);
         let bytes = serde_json::to_vec(&body).unwrap();
-        let server_ok = tacit::job::estimate(&bytes, &limits, &AtomicBool::new(false)).is_ok();
+        let server_ok = tacit::job::estimate(&bytes, &limits, &Stop::never()).is_ok();
         assert_eq!(
             (schema_ok, server_ok),
             (ok, ok),

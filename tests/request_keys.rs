@@ -6,12 +6,12 @@
 //! Bodies are written as text: a JSON tree in memory cannot hold a repeated key. The
 //! scenario is a water tower whose level `p` is filled by a pump and read by a gauge.
 
-use std::sync::atomic::AtomicBool;
 use tacit::config::Limits;
+use tacit::job::Stop;
 use tacit::job::{self, StreamSession};
 use tacit::problem::Problem;
 
-static NOT_CANCELLED: AtomicBool = AtomicBool::new(false);
+static NOT_CANCELLED: Stop = Stop::never();
 
 const MODEL: &str = r#"{"states": ["p"], "inputs": ["pump"], "parameters": {"area": 2.0},
     "dynamics": {"rates": {"p": "pump/area"}},
@@ -91,7 +91,11 @@ fn a_repeated_prior_mean_key_is_refused_not_the_last_taken() {
     // /v1/check reads the prior as an optional section.
     let check = format!(r#"{{"model": {MODEL}, "prior": {prior}}}"#);
     assert_repeated(
-        refused(job::check(check.as_bytes(), &Limits::default())),
+        refused(job::check(
+            check.as_bytes(),
+            &Limits::default(),
+            &NOT_CANCELLED,
+        )),
         "/prior/mean/p",
         "p",
     );
@@ -238,6 +242,7 @@ fn repeated_keys_are_refused_in_the_stream_header_and_lines() {
     let p = StreamSession::start(
         header(r#"{"method": "ekf", "method": "ukf"}"#).as_bytes(),
         &Limits::default(),
+        &NOT_CANCELLED,
     )
     .err()
     .expect("a header with a repeated key should be refused");
@@ -246,8 +251,12 @@ fn repeated_keys_are_refused_in_the_stream_header_and_lines() {
         (p.errors[0].pointer.as_str(), p.errors[0].detail.as_str()),
         ("/filter/method", "'method' appears twice in this object")
     );
-    let mut s = StreamSession::start(header(FILTER).as_bytes(), &Limits::default())
-        .unwrap_or_else(|p| panic!("{p}"));
+    let mut s = StreamSession::start(
+        header(FILTER).as_bytes(),
+        &Limits::default(),
+        &NOT_CANCELLED,
+    )
+    .unwrap_or_else(|p| panic!("{p}"));
     let mut out = Vec::new();
     let p = s
         .push(

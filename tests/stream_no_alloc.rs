@@ -12,7 +12,8 @@ use tacit::job::StreamSession;
 /// buffer reserved beforehand.
 fn allocations(header: &serde_json::Value, lines: &[String]) -> u64 {
     let header = serde_json::to_vec(header).unwrap();
-    let mut session = StreamSession::start(&header, &Limits::default()).unwrap();
+    let mut session =
+        StreamSession::start(&header, &Limits::default(), &tacit::job::Stop::never()).unwrap();
     let mut out = Vec::with_capacity(1 << 20);
     for (i, l) in lines[..8].iter().enumerate() {
         session.push(l.as_bytes(), i as u64 + 2, &mut out).unwrap();

@@ -3,7 +3,6 @@
 
 use crate::config::Limits;
 use serde_json::Value;
-use std::sync::atomic::AtomicBool;
 
 /// One scenario's files as text: the inputs a person writes and the two generated files.
 #[derive(Debug, Clone, Copy)]
@@ -124,8 +123,7 @@ pub fn simulate_request(model: &str, prior: &str, simulate: &str) -> Result<Valu
 pub fn generate(model: &str, prior: &str, simulate: &str) -> Result<Generated, String> {
     let req = simulate_request(model, prior, simulate)?;
     let body = serde_json::to_vec(&req).map_err(|e| e.to_string())?;
-    let cancel = AtomicBool::new(false);
-    let done = crate::job::simulate(&body, &Limits::default(), &cancel)
+    let done = crate::job::simulate(&body, &Limits::default(), &crate::job::Stop::never())
         .map_err(|p| format!("the simulator refused the scenario: {p}"))?;
     let out: Value = serde_json::from_slice(&done.body).map_err(|e| e.to_string())?;
     let lines = |key: &str| -> Result<String, String> {

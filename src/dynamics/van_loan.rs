@@ -6,6 +6,7 @@
 
 use super::Expm;
 use crate::linalg::{add_mul_ab, add_mul_abt, mul_ab, mul_abt, norm1, symmetrize};
+use crate::model::Stop;
 use nalgebra::DMatrix;
 
 /// The discrete model over one step: `x⁺ = phi x + gamma u + w`, `E[w w'] = q`.
@@ -73,6 +74,10 @@ pub struct Discretiser {
     tmp: DMatrix<f64>,
     /// `n × nu` scratch.
     tmp_gamma: DMatrix<f64>,
+    /// When to give up the squarings of a long gap (up to about 1030 of them).
+    stop: Stop,
+    /// Whether the last call gave up because `stop` fired.
+    gave_up: bool,
 }
 
 impl Discretiser {
@@ -87,7 +92,20 @@ impl Discretiser {
             block_exp: DMatrix::zeros(big, big),
             tmp: DMatrix::zeros(n, n),
             tmp_gamma: DMatrix::zeros(n, nu),
+            stop: Stop::never(),
+            gave_up: false,
         }
+    }
+
+    /// Give up the squarings once `stop` fires: the output is then non-finite and
+    /// [`Discretiser::gave_up`] says why.
+    pub fn set_stop(&mut self, stop: &Stop) {
+        self.stop = stop.clone();
+    }
+
+    /// Whether the last [`Discretiser::discretise`] gave up because its stop fired.
+    pub fn gave_up(&self) -> bool {
+        self.gave_up
     }
 
     /// An output buffer of the right shape.
@@ -114,6 +132,7 @@ impl Discretiser {
         out: &mut Discrete,
     ) {
         let (n, nu) = (self.n, self.nu);
+        self.gave_up = false;
         assert_eq!(a.shape(), (n, n), "discretise: a is not {n} x {n}");
         assert_eq!(b.shape(), (n, nu), "discretise: b is not {n} x {nu}");
         assert_eq!(qc.shape(), (n, n), "discretise: qc is not {n} x {n}");
@@ -176,6 +195,14 @@ impl Discretiser {
         symmetrize(&mut out.q);
 
         for _ in 0..halvings {
+            // Each squaring costs a few n × n products: the clock is cheap beside it.
+            if self.stop.halted().is_some() {
+                self.gave_up = true;
+                out.phi.fill(f64::NAN);
+                out.gamma.fill(f64::NAN);
+                out.q.fill(f64::NAN);
+                return;
+            }
             // Q ← Φ Q Φ' + Q and Γ ← Φ Γ + Γ use the old Φ, so Φ is squared last.
             mul_ab(&out.phi, &out.q, &mut self.tmp);
             add_mul_abt(&self.tmp, &out.phi, &mut out.q);

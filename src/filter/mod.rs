@@ -46,7 +46,8 @@ pub enum FilterError {
     NotPositive(&'static str),
     /// The integrator gave up, for the stated reason.
     Integration(&'static str),
-    /// The request's compute deadline passed inside one prediction.
+    /// The request's compute deadline passed (or its client went away) inside one
+    /// prediction.
     Deadline,
 }
 
@@ -142,10 +143,10 @@ pub trait Estimator: Send {
     /// done; [`crate::filter::run::Run`] calls this before anything reads the covariance.
     fn settle(&mut self) {}
 
-    /// Give up any prediction still integrating after `deadline` with
-    /// [`FilterError::Deadline`], so one long gap cannot outlast the request's budget.
-    fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
-        self.core_mut().pred.set_deadline(deadline);
+    /// Give up any prediction still running when `stop` fires (deadline passed or client
+    /// gone) with [`FilterError::Deadline`], so one long gap cannot outlast the request.
+    fn set_stop(&mut self, stop: &crate::model::Stop) {
+        self.core_mut().pred.set_stop(stop);
     }
 
     /// Put the states `states` back to the spread `variances[i]` (indexed by state), with

@@ -16,7 +16,7 @@ use crate::dynamics::{Discrete, Discretiser, Dopri5, OdeError};
 use crate::filter::{ensure_finite, FilterError};
 use crate::formula::{BatchWorkspace, Program, Workspace};
 use crate::linalg::{all_finite, congruence_plus, symmetrize};
-use crate::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise};
+use crate::model::{Dynamics, Integration, LinearTime, Model, ProcessNoise, Stop};
 use nalgebra::{DMatrix, DVector};
 
 /// `x` rounded to the nearest value with 40 significant bits (the low 12 mantissa bits
@@ -25,12 +25,16 @@ fn round_to_40_bits(x: f64) -> f64 {
     f64::from_bits((x.to_bits() + 0x800) & !0xFFF)
 }
 
+/// Grid steps of a discrete model between two looks at the clock (the cancel flag is
+/// looked at every step); one grid step is at least a small matrix product.
+const GRID_STOP_EVERY: usize = 64;
+
 /// Classic fixed-step fourth-order Runge–Kutta with its own buffers.
 #[derive(Debug, Clone)]
 struct Rk4 {
     k: [Vec<f64>; 4],
     tmp: Vec<f64>,
-    deadline: Option<std::time::Instant>,
+    stop: Stop,
 }
 
 impl Rk4 {
@@ -38,7 +42,7 @@ impl Rk4 {
         Self {
             k: std::array::from_fn(|_| vec![0.0; dim]),
             tmp: vec![0.0; dim],
-            deadline: None,
+            stop: Stop::never(),
         }
     }
 
@@ -55,7 +59,7 @@ impl Rk4 {
         let d = y.len();
         for s in 0..steps {
             let t = s as f64 * h;
-            if s > 0 && crate::dynamics::past_deadline(self.deadline, s) {
+            if s > 0 && crate::dynamics::past_deadline(&self.stop, s) {
                 return Err(OdeError::Deadline { t });
             }
             let [k1, k2, k3, k4] = &mut self.k;
@@ -263,6 +267,9 @@ pub struct Predictor {
     g: DMatrix<f64>,
     xm: DMatrix<f64>,
     vtmp: DVector<f64>,
+    /// When to give up the grid steps of a discrete model (the integrators and the
+    /// discretiser hold their own copies).
+    stop: Stop,
 }
 
 impl Predictor {
@@ -348,15 +355,21 @@ impl Predictor {
             g: DMatrix::zeros(n, n),
             xm: DMatrix::zeros(points, n),
             vtmp: DVector::zeros(n),
+            stop: Stop::never(),
         }
     }
 
-    /// Stop integrating once `deadline` has passed (see [`FilterError::Deadline`]).
-    pub fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
-        self.ode_g.deadline = deadline;
-        self.ode_p.deadline = deadline;
-        self.rk_g.deadline = deadline;
-        self.rk_p.deadline = deadline;
+    /// Give up a prediction (integration, discrete stepping, matrix exponential) once
+    /// `stop` fires, with [`FilterError::Deadline`].
+    pub fn set_stop(&mut self, stop: &Stop) {
+        self.ode_g.stop = stop.clone();
+        self.ode_p.stop = stop.clone();
+        self.rk_g.stop = stop.clone();
+        self.rk_p.stop = stop.clone();
+        if let Some(d) = self.disc.as_mut() {
+            d.set_stop(stop);
+        }
+        self.stop = stop.clone();
     }
 
     fn dopri(dim: usize, integration: &Integration) -> Dopri5 {
@@ -374,7 +387,7 @@ impl Predictor {
     /// significant bits (a relative change below 1e-12, far inside any noise model) and the
     /// last two such gaps are kept. The result depends on the gap alone, never on which gap
     /// came first, so a run split into requests still matches one run bit for bit.
-    fn discretise(&mut self, model: &Model, dt: f64) {
+    fn discretise(&mut self, model: &Model, dt: f64) -> Result<(), FilterError> {
         let key = round_to_40_bits(dt);
         if let (Some(d), Dynamics::Linear { matrix, .. }) = (self.disc.as_mut(), &model.dynamics) {
             if let Some(slot) = self
@@ -383,13 +396,19 @@ impl Predictor {
                 .position(|c| c.to_bits() == key.to_bits())
             {
                 self.current = slot;
-                return;
+                return Ok(());
             }
             let slot = 1 - self.current;
             d.discretise(matrix, &self.b_lin, &self.qc, key, &mut self.dcache[slot]);
+            if d.gave_up() {
+                // A half-made discretisation must not be found in the cache later.
+                self.cached_dt[slot] = f64::NAN;
+                return Err(FilterError::Deadline);
+            }
             self.cached_dt[slot] = key;
             self.current = slot;
         }
+        Ok(())
     }
 
     /// Per-step discrete noise `q + diag(random_walk)·dt` into `out`.
@@ -424,7 +443,7 @@ impl Predictor {
                 time: LinearTime::Continuous,
                 ..
             } => {
-                self.discretise(model, dt);
+                self.discretise(model, dt)?;
                 let d = &self.dcache[self.current];
                 d.phi.mul_to(mean, &mut self.vtmp);
                 mean.copy_from(&self.vtmp);
@@ -461,7 +480,11 @@ impl Predictor {
                 if let Some(p) = phi.as_deref_mut() {
                     p.fill_with_identity();
                 }
-                for _ in 0..k {
+                for i in 0..k {
+                    if self.stop.every(i, GRID_STOP_EVERY).is_some() {
+                        self.tmp2 = q;
+                        return Err(FilterError::Deadline);
+                    }
                     matrix.mul_to(mean, &mut self.vtmp);
                     mean.copy_from(&self.vtmp);
                     for (i, mi) in mean.iter_mut().enumerate() {
@@ -599,7 +622,7 @@ impl Predictor {
                 time: LinearTime::Continuous,
                 ..
             } => {
-                self.discretise(model, dt);
+                self.discretise(model, dt)?;
                 let d = &self.dcache[self.current];
                 // X ← X Φᵀ + 1 (Γ u)ᵀ
                 for i in 0..n {
@@ -626,7 +649,11 @@ impl Predictor {
                 for i in 0..n {
                     self.vtmp[i] = (0..nu).map(|j| b[(i, j)] * u[j]).sum();
                 }
-                for _ in 0..k {
+                for i in 0..k {
+                    if self.stop.every(i, GRID_STOP_EVERY).is_some() {
+                        self.tmp2 = qs;
+                        return Err(FilterError::Deadline);
+                    }
                     map_points(x, matrix, &self.vtmp, &mut self.xm);
                     congruence_plus(matrix, q, &qs, &mut self.tmp);
                 }

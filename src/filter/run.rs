@@ -96,6 +96,8 @@ pub struct Run {
     /// bit for bit).
     running: Running,
     bounds: BoundsKeeper,
+    /// Most integration or grid steps one gap may need (`Limits::max_gap_steps`).
+    max_gap_steps: Option<u64>,
     /// Counters.
     pub counts: Counts,
     /// What the run noticed (`summary.warnings`).
@@ -146,6 +148,21 @@ pub enum RunError {
         /// The model's step.
         dt: f64,
     },
+    /// A gap would need more fixed integration or grid steps than the server allows.
+    TooManySteps {
+        /// JSON Pointer of the time at fault, relative to the caller's base.
+        pointer: String,
+        /// The time the gap leads to, as the request writes times.
+        at: String,
+        /// Length of the gap, seconds.
+        gap: f64,
+        /// Steps the gap would need.
+        steps: f64,
+        /// The server's limit (`max_gap_steps`).
+        limit: u64,
+        /// What steps: `"integration.fixed_step"` or the model's `dt`.
+        by: &'static str,
+    },
     /// A filter step failed on line `line` (counted from 1) at time `at`.
     Step {
         /// Line number, counted from 1.
@@ -181,6 +198,17 @@ impl std::fmt::Display for RunError {
             RunError::OffGrid { at, dt, .. } => write!(
                 f,
                 "time {at} is not on the model's grid prior.t + k·{dt} (the discrete model steps by dt)"
+            ),
+            RunError::TooManySteps {
+                at,
+                gap,
+                steps,
+                limit,
+                by,
+                ..
+            } => write!(
+                f,
+                "the gap of {gap} s up to {at} would need {steps} steps of {by}, more than this server's limit of {limit} steps in one gap (max_gap_steps in /v1/info); send readings closer together, or use a longer step"
             ),
             RunError::Step {
                 line,
@@ -334,6 +362,7 @@ impl Run {
             prior_var,
             running: prior.running,
             bounds,
+            max_gap_steps: None,
             counts,
             warnings,
         })
@@ -396,10 +425,58 @@ impl Run {
         Ok(())
     }
 
-    /// Stop a prediction that is still integrating after `deadline` (the request's
-    /// compute budget); the step then fails with a deadline problem.
-    pub fn set_deadline(&mut self, deadline: Option<std::time::Instant>) {
-        self.est.set_deadline(deadline);
+    /// Stop a prediction that is still running when `stop` fires (the request's compute
+    /// deadline passed, or its client went away); the step then fails with a deadline
+    /// problem.
+    pub fn set_stop(&mut self, stop: &crate::model::Stop) {
+        self.est.set_stop(stop);
+    }
+
+    /// Refuse, before stepping, a gap that would need more than `limit` fixed
+    /// integration steps or grid steps of a discrete model.
+    pub fn set_step_limit(&mut self, limit: u64) {
+        self.max_gap_steps = Some(limit);
+    }
+
+    /// Steps a gap of `dt` seconds needs, for dynamics that step at a fixed size, and
+    /// what sets that size (as the refusal names it).
+    fn gap_steps(&self, dt: f64) -> Option<(f64, &'static str)> {
+        match (&self.model.dynamics, self.cfg.integration.fixed_step) {
+            (
+                Dynamics::Linear {
+                    time: LinearTime::Discrete { dt: grid },
+                    ..
+                },
+                _,
+            ) => Some((crate::linalg::round_half_away(dt / grid), "the model's dt")),
+            (Dynamics::Rates(_), Some(h)) => Some(((dt / h).ceil(), "integration.fixed_step")),
+            _ => None,
+        }
+    }
+
+    /// Err when the gap `dt` up to `t` needs more steps than the limit allows; the
+    /// error's pointer is `pointer` then `field` (joined only then: no allocation).
+    fn check_steps(
+        &self,
+        dt: f64,
+        t: &Instant,
+        pointer: &str,
+        field: &str,
+    ) -> Result<(), RunError> {
+        let (Some(limit), Some((steps, by))) = (self.max_gap_steps, self.gap_steps(dt)) else {
+            return Ok(());
+        };
+        if steps > limit as f64 {
+            return Err(RunError::TooManySteps {
+                pointer: format!("{pointer}{field}"),
+                at: fmt_time(t, self.mode),
+                gap: dt,
+                steps,
+                limit,
+                by,
+            });
+        }
+        Ok(())
     }
 
     /// The error of a step that failed with `cause` on the line at `t` (the next line).
@@ -445,6 +522,7 @@ impl Run {
                 });
             }
         }
+        self.check_steps(dt, &r.t, pointer, "/t")?;
         let predicted = dt > 0.0;
         if predicted {
             self.est
@@ -671,6 +749,7 @@ impl Run {
         if dt <= 0.0 {
             return Ok((self.est.mean().clone(), self.est.covariance().clone()));
         }
+        self.check_steps(dt, at, "/output/at", "")?;
         let mut side = self.est.clone_box();
         side.predict(&self.model, self.inputs.as_slice(), self.t.secs, dt, false)
             .map_err(|e| self.failure(e, at))?;

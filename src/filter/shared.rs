@@ -1,7 +1,7 @@
 //! What every filter holds in the same form: its belief (mean, covariance, and the cross
 //! covariance the smoother reads), the reading-space buffers of its update, and its
 //! propagator. [`crate::filter::Estimator`]'s accessors (`mean`, `covariance`, `cross`,
-//! `obs`, `set_deadline`) read it through `core`, so each filter writes them once.
+//! `obs`, `set_stop`) read it through `core`, so each filter writes them once.
 
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;

@@ -9,6 +9,7 @@
 //! Lines with equal times have no prediction between them (G = I).
 
 use crate::linalg::{cholesky, cholesky_solve, symmetrize};
+use crate::model::{Halt, Stop};
 use nalgebra::{DMatrix, DVector};
 
 /// What the forward pass leaves for one line.
@@ -28,10 +29,18 @@ pub struct Stored {
 pub struct SmoothError {
     /// 0-based line index.
     pub line: usize,
+    /// Set when the pass gave up because `stop` fired (deadline or client gone), not
+    /// because the numbers failed.
+    pub stopped: Option<Halt>,
 }
 
-/// Smooth in place: on return `steps[k].mean`/`cov` hold the smoothed moments.
-pub fn rts(steps: &mut [Stored]) -> Result<(), SmoothError> {
+/// Lines of the backward pass between two looks at the clock (the cancel flag is looked
+/// at on every line); one line is a few `n × n` products and a Cholesky factor.
+const STOP_EVERY: usize = 64;
+
+/// Smooth in place: on return `steps[k].mean`/`cov` hold the smoothed moments. Gives up
+/// when `stop` fires.
+pub fn rts(steps: &mut [Stored], stop: &Stop) -> Result<(), SmoothError> {
     let Some(n) = steps.first().map(|s| s.mean.len()) else {
         return Ok(());
     };
@@ -41,6 +50,12 @@ pub fn rts(steps: &mut [Stored]) -> Result<(), SmoothError> {
     let mut dp = DMatrix::zeros(n, n);
     let mut tmp = DMatrix::zeros(n, n);
     for k in (0..steps.len().saturating_sub(1)).rev() {
+        if let Some(why) = stop.every(k, STOP_EVERY) {
+            return Err(SmoothError {
+                line: k,
+                stopped: Some(why),
+            });
+        }
         let (head, tail) = steps.split_at_mut(k + 1);
         let cur = &mut head[k];
         let next = &tail[0];
@@ -50,7 +65,10 @@ pub fn rts(steps: &mut [Stored]) -> Result<(), SmoothError> {
             continue;
         };
         // Gᵀ = P⁻⁻¹ Cᵀ.
-        cholesky(p_pred.as_slice(), &mut l, n).map_err(|_| SmoothError { line: k + 1 })?;
+        cholesky(p_pred.as_slice(), &mut l, n).map_err(|_| SmoothError {
+            line: k + 1,
+            stopped: None,
+        })?;
         for i in 0..n {
             for j in 0..n {
                 gt[j + i * n] = cross[(i, j)];
@@ -71,7 +89,10 @@ pub fn rts(steps: &mut [Stored]) -> Result<(), SmoothError> {
         cur.cov += &dp;
         symmetrize(&mut cur.cov);
         if !cur.mean.iter().chain(cur.cov.iter()).all(|x| x.is_finite()) {
-            return Err(SmoothError { line: k });
+            return Err(SmoothError {
+                line: k,
+                stopped: None,
+            });
         }
     }
     Ok(())

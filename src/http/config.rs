@@ -1,4 +1,5 @@
-//! Settings of one server that are not limits on a request: keys, CORS, shutdown.
+//! Settings of one server that are not limits on a request: keys, CORS, shutdown, and
+//! how long idle sockets and streams are kept.
 //!
 //! Kept apart from [`crate::config::Limits`] because the core reads limits while the
 //! web layer alone reads these; the CLI fills both from flags and environment variables.
@@ -19,6 +20,12 @@ pub struct ServerConfig {
     pub shutdown_grace: Duration,
     /// Seconds a shed client is told to wait (`Retry-After`).
     pub retry_after_secs: u64,
+    /// Longest silence of a stream between two lines before it is ended.
+    pub stream_idle: Duration,
+    /// Longest a socket may wait for, or take to send, a request head: a new connection
+    /// that sends its head slowly (or never) and a kept-alive one that sits idle between
+    /// requests are both closed after this.
+    pub socket_idle: Duration,
 }
 
 impl Default for ServerConfig {
@@ -29,6 +36,8 @@ impl Default for ServerConfig {
             cors_origins: Vec::new(),
             shutdown_grace: Duration::from_secs(30),
             retry_after_secs: 1,
+            stream_idle: Duration::from_secs(60),
+            socket_idle: Duration::from_secs(10),
         }
     }
 }

@@ -7,7 +7,7 @@ use super::lane::SMALL_BODY;
 use super::problem::{internal, overloaded, problem_response, public};
 use super::state::AppState;
 use crate::config::Limits;
-use crate::job::{Done, Pieces, RunStats};
+use crate::job::{Done, Pieces, RunStats, Stop};
 use crate::problem::Problem;
 use axum::body::Body;
 use axum::http::{header, HeaderValue};
@@ -90,7 +90,7 @@ impl Answer for Pieces {
 pub async fn run_job<T, F>(state: &AppState, route: &str, work: F) -> Response
 where
     T: Answer,
-    F: FnOnce(&Limits, &AtomicBool) -> Result<T, Problem> + Send + 'static,
+    F: FnOnce(&Limits, &Stop) -> Result<T, Problem> + Send + 'static,
 {
     run_job_sized(state, route, usize::MAX, work).await
 }
@@ -98,7 +98,9 @@ where
 /// Like [`run_job`], for a request of `body_len` bytes: a small one runs on the app's
 /// compute lane (cheaper to hand over than `spawn_blocking`) unless the lane is stuck on
 /// slow jobs. Either way the work runs off the executor, under the same slot, cancel flag
-/// and deadline.
+/// and deadline. The deadline counts from this call (the request's arrival at its
+/// handler), not from when a compute thread picks the job up, so a job that waited in
+/// the lane's queue past its deadline stops at its first look.
 pub async fn run_job_sized<T, F>(
     state: &AppState,
     route: &str,
@@ -107,14 +109,15 @@ pub async fn run_job_sized<T, F>(
 ) -> Response
 where
     T: Answer,
-    F: FnOnce(&Limits, &AtomicBool) -> Result<T, Problem> + Send + 'static,
+    F: FnOnce(&Limits, &Stop) -> Result<T, Problem> + Send + 'static,
 {
+    let arrived = std::time::Instant::now();
     let Some(slot) = state.try_slot() else {
         state.metrics().record_shed(route);
         return overloaded(state.config().retry_after_secs);
     };
     let guard = CancelOnDrop::new();
-    let cancel = guard.flag();
+    let stop = Stop::new(guard.flag(), state.limits().deadline.map(|d| arrived + d));
     let st = state.clone();
     // The request's span goes with the work to its thread, so a log line written there
     // carries the request id, as the stream's worker does.
@@ -124,7 +127,7 @@ where
         // The slot is released only when the work really stops, so a disconnected
         // client's job still counts against the limit until it has noticed the flag.
         let _slot = slot;
-        work(st.limits(), &cancel)
+        work(st.limits(), &stop)
     };
     let joined: Result<Result<T, Problem>, String> =
         if body_len <= SMALL_BODY && state.lane().open() {

@@ -1,13 +1,25 @@
 //! The server loop: accept on a listener until a shutdown signal, then refuse new work
 //! (readiness 503, listener closed) and let running requests finish within the grace time.
+//!
+//! Each connection is served by hyper's HTTP/1 connection with a header-read timeout
+//! (`ServerConfig::socket_idle`): a client that opens a socket and sends a request head
+//! slowly or not at all (slowloris) is cut off, and the same timer runs while a kept-alive
+//! socket waits for its next request, so idle sockets are closed too. Without it, idle
+//! sockets pile up until the process runs out of file descriptors and even `/healthz`
+//! times out. The timer does not run while a request's body or its answer is under way.
 
 use super::app::app;
 use super::state::AppState;
-use axum::serve::ListenerExt;
-use std::future::{Future, IntoFuture};
-use std::sync::Arc;
+use hyper_util::rt::{TokioIo, TokioTimer};
+use hyper_util::server::graceful::GracefulShutdown;
+use hyper_util::service::TowerToHyperService;
+use std::future::Future;
+use std::time::Duration;
 use tokio::net::TcpListener;
-use tokio::sync::Notify;
+
+/// Pause after a failed accept (out of file descriptors, say) before the next one, so
+/// the loop does not spin while the condition lasts.
+const ACCEPT_BACKOFF: Duration = Duration::from_millis(50);
 
 /// Serve `state`'s app on `listener` until `shutdown` resolves and the running requests
 /// end (or the configured grace time passes, whichever is first).
@@ -17,36 +29,50 @@ pub async fn serve(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
     let grace = state.config().shutdown_grace;
-    let fired = Arc::new(Notify::new());
-    let signal = {
-        let fired = fired.clone();
-        let state = state.clone();
-        async move {
-            shutdown.await;
-            state.set_ready(false);
-            tracing::info!(
-                grace_secs = grace.as_secs_f64(),
-                "shutting down: no new connections; running requests may finish"
-            );
-            fired.notify_one();
-        }
-    };
-    // Small answers should leave at once rather than wait for Nagle's timer.
-    let listener = listener.tap_io(|tcp| {
+    let idle = state.config().socket_idle;
+    let router = app(state.clone());
+    let mut http = hyper::server::conn::http1::Builder::new();
+    http.timer(TokioTimer::new())
+        .header_read_timeout(idle)
+        .keep_alive(true);
+    let graceful = GracefulShutdown::new();
+    tokio::pin!(shutdown);
+    loop {
+        let (tcp, _peer) = tokio::select! {
+            accepted = listener.accept() => match accepted {
+                Ok(a) => a,
+                Err(e) => {
+                    tracing::warn!(error = %e, "accept failed; trying again shortly");
+                    tokio::time::sleep(ACCEPT_BACKOFF).await;
+                    continue;
+                }
+            },
+            () = &mut shutdown => break,
+        };
+        // Small answers should leave at once rather than wait for Nagle's timer.
         let _ = tcp.set_nodelay(true);
-    });
-    let server = axum::serve(listener, app(state))
-        .with_graceful_shutdown(signal)
-        .into_future();
+        let service = TowerToHyperService::new(router.clone());
+        let conn = graceful.watch(http.serve_connection(TokioIo::new(tcp), service));
+        tokio::spawn(async move {
+            if let Err(e) = conn.await {
+                tracing::debug!(error = %e, "connection ended with an error");
+            }
+        });
+    }
+    drop(listener);
+    state.set_ready(false);
+    tracing::info!(
+        grace_secs = grace.as_secs_f64(),
+        "shutting down: no new connections; running requests may finish"
+    );
     tokio::select! {
-        r = server => r,
-        () = async { fired.notified().await; tokio::time::sleep(grace).await } => {
+        () = graceful.shutdown() => {}
+        () = tokio::time::sleep(grace) => {
             tracing::warn!("shutdown grace time passed; cutting off the requests still running");
-            Ok(())
         }
     }
+    Ok(())
 }
-
 /// Resolves on SIGINT (Ctrl-C) or, on Unix, SIGTERM.
 pub async fn shutdown_signal() {
     let ctrl_c = async {

@@ -68,6 +68,18 @@ impl AppState {
         self.inner.slots.clone().try_acquire_owned().ok()
     }
 
+    /// Whether every job slot is taken now (a request that would need one is shed).
+    pub fn is_full(&self) -> bool {
+        self.inner.slots.available_permits() == 0
+    }
+
+    /// A job slot, waiting for one to come free: for work already promised an answer
+    /// (a stream whose 200 head has gone), which cannot be shed any more.
+    /// `None` only if the slots were closed, which they never are.
+    pub async fn slot(&self) -> Option<OwnedSemaphorePermit> {
+        self.inner.slots.clone().acquire_owned().await.ok()
+    }
+
     /// The compute threads for small jobs.
     pub fn lane(&self) -> &Lane {
         &self.inner.lane

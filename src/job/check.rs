@@ -6,7 +6,7 @@
 use crate::config::Limits;
 use crate::diagnostics::observability::{analyse, jacobians, Observability, Overflow};
 use crate::job::{Done, RunStats};
-use crate::model::{Dynamics, Model};
+use crate::model::{Dynamics, Halt, Model, Stop};
 use crate::problem::{escape_token, FieldError, Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::validate;
@@ -77,7 +77,7 @@ mod indexmap_like {
 }
 
 /// `POST /v1/check`.
-pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
+pub(super) fn check(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     let env = envelope::envelope(body)?;
     let model_v = envelope::section(env.model, "model")?;
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
@@ -107,12 +107,16 @@ pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
             .copy_from(h);
         row += h.nrows();
     }
+    halted(stop)?;
     let all = analyse(&f, &stacked, &model.states).map_err(|e| overflow(e, "all sensors"))?;
+    // One analysis per sensor, each up to n products of n × n matrices: the stop is
+    // looked at between them.
     let by_sensor: Vec<(String, Observability)> = model
         .sensors
         .iter()
         .zip(&hs)
         .map(|(s, h)| {
+            halted(stop)?;
             analyse(&f, h, &model.states)
                 .map(|o| (s.name.clone(), o))
                 .map_err(|e| overflow(e, &format!("sensor '{}'", s.name)))
@@ -182,6 +186,18 @@ pub(super) fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
         body,
         stats: RunStats::default(),
     })
+}
+
+/// Err when the request's stop has fired (client gone or deadline passed).
+fn halted(stop: &Stop) -> Result<(), Problem> {
+    match stop.halted() {
+        None => Ok(()),
+        Some(Halt::Cancelled) => Err(super::setup::cancelled()),
+        Some(Halt::Deadline) => Err(Problem::new(
+            ProblemKind::DeadlineExceeded,
+            "the request needed more than the compute deadline (counted from its arrival)",
+        )),
+    }
 }
 
 /// Where the Jacobians were taken, for messages: `pos = 0, vel = 1.5 at t = 0`.

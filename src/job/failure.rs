@@ -58,6 +58,7 @@ impl From<RunError> for Problem {
             | RunError::GapTooLong { pointer, .. } => {
                 Problem::field(format!("{pointer}/t"), detail)
             }
+            RunError::TooManySteps { pointer, .. } => Problem::field(pointer, detail),
             RunError::Step {
                 cause: FilterError::Deadline,
                 ..

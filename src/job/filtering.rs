@@ -12,11 +12,11 @@ use crate::config::Limits;
 use crate::filter::run::Run;
 use crate::job::write::Writer;
 use crate::job::Pieces;
+use crate::model::Stop;
 use crate::problem::Problem;
 use crate::request::envelope::{self, Envelope};
 use crate::request::reading::ReadingParser;
 use serde_json::value::RawValue;
-use std::sync::atomic::AtomicBool;
 
 /// The measurement array as the text of each element. The envelope parse has checked the
 /// section's syntax, so a byte scan finds the elements; anything it does not take for an
@@ -55,17 +55,17 @@ pub(super) const OVERLAP_MIN_LINES: usize = 4096;
 pub(super) fn run_batch(
     body: &[u8],
     limits: &Limits,
-    cancel: &AtomicBool,
+    stop: &Stop,
     smooth: bool,
 ) -> Result<Pieces, Problem> {
-    run_batch_overlapping(body, limits, cancel, smooth, OVERLAP_MIN_LINES)
+    run_batch_overlapping(body, limits, stop, smooth, OVERLAP_MIN_LINES)
 }
 
 /// [`run_batch`], writing on a second thread from `overlap_from` lines on.
 fn run_batch_overlapping(
     body: &[u8],
     limits: &Limits,
-    cancel: &AtomicBool,
+    stop: &Stop,
     smooth: bool,
     overlap_from: usize,
 ) -> Result<Pieces, Problem> {
@@ -84,11 +84,13 @@ fn run_batch_overlapping(
         lines: &lines,
         parser: ReadingParser::new(&model, run.mode(), &zone),
         writer: &writer,
-        guard: Guard::new(limits, cancel),
+        guard: Guard::new(stop),
         shape: Shape::of(&model),
     };
-    // Inside one long gap the integrator watches the same deadline.
-    run.set_deadline(ctx.guard.deadline());
+    // Inside one long gap the prediction watches the same stop, and a gap needing too
+    // many steps is refused before any.
+    run.set_stop(stop);
+    run.set_step_limit(limits.max_gap_steps);
     let mut preds = Predictions {
         at: &output.at,
         next: 0,
@@ -183,7 +185,7 @@ mod tests {
 
     fn run(body: &[u8], overlap_from: usize) -> Result<Pieces, Problem> {
         let limits = Limits::default();
-        run_batch_overlapping(body, &limits, &AtomicBool::new(false), false, overlap_from)
+        run_batch_overlapping(body, &limits, &Stop::never(), false, overlap_from)
     }
 
     #[test]

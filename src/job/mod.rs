@@ -26,8 +26,8 @@ mod smooth;
 mod stream;
 pub mod write;
 
+pub use crate::model::{Halt, Stop};
 use crate::problem::Problem;
-use std::sync::atomic::AtomicBool;
 
 /// Counters of one request's filter work, for metrics and logs.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
@@ -91,38 +91,36 @@ impl Pieces {
 }
 
 /// `POST /v1/estimate`: `{model, filter, prior, measurements, output?}`.
-/// `cancel` is polled between steps; when set the work stops early with an error.
-pub fn estimate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    estimate_pieces(body, limits, cancel).map(Pieces::into_done)
+/// `stop` is looked at between lines and inside long ones: when its client has gone or
+/// its deadline (counted from the request's arrival) has passed, the work stops early
+/// with an error.
+pub fn estimate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+    estimate_pieces(body, limits, stop).map(Pieces::into_done)
 }
 
 /// [`estimate`] with the answer left in pieces (what the server sends).
-pub fn estimate_pieces(
-    body: &[u8],
-    limits: &Limits,
-    cancel: &AtomicBool,
-) -> Result<Pieces, Problem> {
-    filtering::run_batch(body, limits, cancel, false)
+pub fn estimate_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Pieces, Problem> {
+    filtering::run_batch(body, limits, stop, false)
 }
 
 /// `POST /v1/smooth`: same input as estimate, smoothed estimates out.
-pub fn smooth(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    smooth_pieces(body, limits, cancel).map(Pieces::into_done)
+pub fn smooth(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+    smooth_pieces(body, limits, stop).map(Pieces::into_done)
 }
 
 /// [`smooth`] with the answer left in pieces.
-pub fn smooth_pieces(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Pieces, Problem> {
-    filtering::run_batch(body, limits, cancel, true)
+pub fn smooth_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Pieces, Problem> {
+    filtering::run_batch(body, limits, stop, true)
 }
 
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
-pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
-    simulate::simulate(body, limits, cancel)
+pub fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+    simulate::simulate(body, limits, stop)
 }
 
 /// `POST /v1/check`: `{model, prior?}`.
-pub fn check(body: &[u8], limits: &Limits) -> Result<Done, Problem> {
-    check::check(body, limits)
+pub fn check(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+    check::check(body, limits, stop)
 }
 
 /// `GET /v1/info`: version, methods and the limits in force.
@@ -143,8 +141,9 @@ pub struct StreamSession {
 }
 
 impl StreamSession {
-    /// Parse the first line `{model, filter, prior, output?}`.
-    pub fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
+    /// Parse the first line `{model, filter, prior, output?}`. Each line's filter step
+    /// gives up when `stop` fires (the client went away, or a deadline passed).
+    pub fn start(header: &[u8], limits: &Limits, stop: &Stop) -> Result<Self, Problem> {
         if header.len()
             > limits
                 .max_line_bytes
@@ -155,7 +154,7 @@ impl StreamSession {
                 "the header line is too large",
             ));
         }
-        stream::Stream::start(header, limits).map(|inner| Self { inner })
+        stream::Stream::start(header, limits, stop).map(|inner| Self { inner })
     }
 
     /// Apply one measurement line (1-based `line_no` for error pointers) and append its

@@ -3,13 +3,14 @@
 //! the cancel flag while the lines run.
 
 use crate::config::Limits;
+use crate::model::Stop;
 use crate::model::{FilterConfig, Model, OutputConfig, Prior, Zone};
 use crate::problem::{FieldError, Problem, ProblemKind};
 use crate::request::envelope::{self, Envelope};
 use crate::request::validate;
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::{AtomicU64, AtomicUsize, Ordering};
 use std::sync::Arc;
-use std::time::Instant as Clock;
+use std::time::{Duration, Instant as Clock};
 
 /// Everything a filtering request needs before the first reading.
 pub(super) struct Setup {
@@ -66,40 +67,70 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
     })
 }
 
-/// Checks the per-request deadline and the cancel flag every so many steps.
+/// Looks at the request's [`Stop`] between lines: the cancel flag on every line, the clock
+/// on lines spaced so that it is read about every [`CLOCK_EVERY`] of work. Cheap lines
+/// (a small filter step takes well under a microsecond) then pay almost nothing for the
+/// clock, while a line that takes seconds (a large ensemble) is followed by a look at once.
 pub(super) struct Guard<'a> {
-    cancel: &'a AtomicBool,
-    deadline: Option<Clock>,
+    stop: &'a Stop,
+    /// Clock of the guard's start, the origin of `last`.
+    start: Clock,
+    /// Lines between two clock reads: a power of two from 1 to 256.
+    stride: AtomicUsize,
+    /// Nanoseconds from `start` to the last clock read.
+    last: AtomicU64,
 }
 
+/// Wished-for work between two clock reads.
+const CLOCK_EVERY: Duration = Duration::from_micros(100);
+
 impl<'a> Guard<'a> {
-    /// A guard for `limits.deadline` from now.
-    pub(super) fn new(limits: &Limits, cancel: &'a AtomicBool) -> Self {
+    /// A guard over `stop` (its deadline counts from the request's arrival).
+    pub(super) fn new(stop: &'a Stop) -> Self {
         Self {
-            cancel,
-            deadline: limits.deadline.map(|d| Clock::now() + d),
+            stop,
+            start: Clock::now(),
+            stride: AtomicUsize::new(1),
+            last: AtomicU64::new(0),
         }
     }
 
-    /// When the request's compute budget runs out, if it has one.
-    pub(super) fn deadline(&self) -> Option<Clock> {
-        self.deadline
+    /// The request's stop, for the loops inside one line.
+    pub(super) fn stop(&self) -> &'a Stop {
+        self.stop
     }
 
-    /// Err when cancelled or past the deadline (checked on every 256th step).
+    /// Err when cancelled or past the deadline; `step` lines have been done.
     pub(super) fn check(&self, step: usize) -> Result<(), Problem> {
-        if step % 256 != 0 {
+        if self.stop.cancelled() {
+            return Err(cancelled());
+        }
+        let Some(deadline) = self.stop.deadline() else {
+            return Ok(());
+        };
+        let stride = self.stride.load(Ordering::Relaxed);
+        if step % stride != 0 {
             return Ok(());
         }
-        if self.cancel.load(Ordering::Relaxed) {
-            return Err(Problem::new(
-                ProblemKind::DeadlineExceeded,
-                "the request was cancelled",
-            ));
+        let now = Clock::now();
+        if now >= deadline {
+            return Err(Problem::new(ProblemKind::DeadlineExceeded, format!("the request needed more than the compute deadline (counted from its arrival); it stopped after {step} lines")));
         }
-        if self.deadline.is_some_and(|d| Clock::now() > d) {
-            return Err(Problem::new(ProblemKind::DeadlineExceeded, format!("the request needed more than the compute deadline; it stopped after {step} lines")));
-        }
+        let at = u64::try_from(now.duration_since(self.start).as_nanos()).unwrap_or(u64::MAX);
+        let since = Duration::from_nanos(at.saturating_sub(self.last.swap(at, Ordering::Relaxed)));
+        let stride = if since < CLOCK_EVERY / 4 {
+            (stride * 2).min(256)
+        } else if since > CLOCK_EVERY * 4 {
+            (stride / 2).max(1)
+        } else {
+            stride
+        };
+        self.stride.store(stride, Ordering::Relaxed);
         Ok(())
     }
+}
+
+/// The problem of work stopped because its client went away (no one reads it).
+pub(super) fn cancelled() -> Problem {
+    Problem::new(ProblemKind::DeadlineExceeded, "the request was cancelled")
 }

@@ -13,7 +13,7 @@ use crate::config::Limits;
 use crate::job::write::{num, Writer};
 use crate::job::{Done, RunStats};
 use crate::model::{Dynamics, LinearTime, Model, Prior};
-use crate::model::{Instant, TimeMode, Zone};
+use crate::model::{Halt, Instant, Stop, TimeMode, Zone};
 use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::reader::{
@@ -22,7 +22,6 @@ use crate::request::reader::{
 use crate::request::validate;
 use crate::simulate::{self, Plan, Sample, Schedule, SimulateError, Sink};
 use serde_json::Value;
-use std::sync::atomic::AtomicBool;
 
 fn probability(v: &Value, ptr: &str, errs: &mut Errors) -> Option<f64> {
     let p = number(v, ptr, errs)?;
@@ -254,6 +253,32 @@ fn input_schedule(
     out
 }
 
+/// Refuse, before simulating, a gap between two times (or from the prior's time to the
+/// first) that would need more grid steps of a discrete model than `max_gap_steps`.
+fn refuse_long_gaps(
+    model: &Model,
+    prior: &Prior,
+    times: &[Instant],
+    limits: &Limits,
+) -> Result<(), Problem> {
+    let Some(dt) = grid_step(model) else {
+        return Ok(());
+    };
+    let mut from = prior.t;
+    for (i, t) in times.iter().enumerate() {
+        let gap = from.until(t, prior.mode);
+        let steps = crate::linalg::round_half_away(gap / dt);
+        if steps > limits.max_gap_steps as f64 {
+            return Err(Problem::field(
+                format!("/times/{i}"),
+                format!("the gap of {gap} s up to this time would need {steps} steps of the model's dt, more than this server's limit of {} steps in one gap (max_gap_steps in /v1/info)", limits.max_gap_steps),
+            ));
+        }
+        from = *t;
+    }
+    Ok(())
+}
+
 /// The step of a discrete linear model, whose inputs can only change on its grid.
 fn grid_step(model: &Model) -> Option<f64> {
     match &model.dynamics {
@@ -266,7 +291,7 @@ fn grid_step(model: &Model) -> Option<f64> {
 }
 
 /// `POST /v1/simulate`.
-pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+pub(super) fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     let env = envelope::envelope(body)?;
     if env.readings.is_some() {
         return Err(Problem::field(
@@ -313,6 +338,7 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
             ));
         }
     }
+    refuse_long_gaps(&model, &prior, &times, limits)?;
     let n = model.n();
     let mut out = Json {
         model: &model,
@@ -329,7 +355,7 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         schedules: &sched,
         seed,
     };
-    simulate::run(&plan, cancel, &mut out).map_err(|e| problem(e, mode))?;
+    simulate::run(&plan, stop, &mut out).map_err(|e| problem(e, mode))?;
     let Json {
         writer,
         truth,
@@ -458,9 +484,11 @@ impl Sink for Json<'_> {
 /// The problem each way of stopping is answered with.
 fn problem(e: SimulateError, mode: TimeMode) -> Problem {
     match e {
-        SimulateError::Cancelled => {
-            Problem::new(ProblemKind::DeadlineExceeded, "the request was cancelled")
-        }
+        SimulateError::Stopped(Halt::Cancelled) => super::setup::cancelled(),
+        SimulateError::Stopped(_) => Problem::new(
+            ProblemKind::DeadlineExceeded,
+            "the request needed more than the compute deadline (counted from its arrival)",
+        ),
         SimulateError::PriorNotPsd => Problem::field(
             "/prior",
             "the prior covariance is not positive semi-definite",

@@ -4,9 +4,10 @@
 
 use super::failure::step_problem;
 use super::plain::{line_pointer, line_problem, problem_under, Lines, Predictions};
+use super::setup::cancelled;
 use crate::filter::run::Run;
 use crate::filter::smoother::{rts, Stored};
-use crate::model::Reading;
+use crate::model::{Halt, Reading};
 use crate::problem::{Problem, ProblemKind};
 
 impl Lines<'_> {
@@ -47,7 +48,11 @@ impl Lines<'_> {
             }
             times.push((reading.t, frag));
         }
-        rts(&mut stored).map_err(|e| Problem::new(ProblemKind::NumericalFailure, format!("smoothing failed at line {}: the predicted covariance is singular (give the model process noise or a prior with spread in every state)", e.line)))?;
+        rts(&mut stored, self.guard.stop()).map_err(|e| match e.stopped {
+            Some(Halt::Cancelled) => cancelled(),
+            Some(Halt::Deadline) => Problem::new(ProblemKind::DeadlineExceeded, format!("the request needed more than the compute deadline (counted from its arrival); the backward pass stopped at line {}", e.line + 1)),
+            None => Problem::new(ProblemKind::NumericalFailure, format!("smoothing failed at line {}: the predicted covariance is singular (give the model process noise or a prior with spread in every state)", e.line)),
+        })?;
         for (i, s) in stored.iter().enumerate() {
             if i > 0 {
                 buf.push(b',');

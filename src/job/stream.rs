@@ -15,7 +15,7 @@ use crate::diagnostics::warnings::Warnings;
 use crate::filter::run::{Counts, Run};
 use crate::job::write::Writer;
 use crate::job::RunStats;
-use crate::model::{Instant, Reading, Running, Zone};
+use crate::model::{Instant, Reading, Running, Stop, Zone};
 use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope;
 use crate::request::reading::ReadingParser;
@@ -102,7 +102,7 @@ impl LastGood {
 
 impl Stream {
     /// Parse the header line `{model, filter, prior, output?}`.
-    pub(super) fn start(header: &[u8], limits: &Limits) -> Result<Self, Problem> {
+    pub(super) fn start(header: &[u8], limits: &Limits, stop: &Stop) -> Result<Self, Problem> {
         let env = envelope::envelope(header)?;
         if env.measurements.is_some() {
             return Err(Problem::field("/measurements", "the stream's first line holds model, filter, prior and output; readings follow one per line"));
@@ -121,7 +121,9 @@ impl Stream {
             ));
         }
         let writer = Writer::new(&model, prior.mode, output);
-        let run = Run::new(model, cfg, prior, false)?;
+        let mut run = Run::new(model, cfg, prior, false)?;
+        run.set_stop(stop);
+        run.set_step_limit(limits.max_gap_steps);
         Ok(Self {
             good: LastGood::of(&run),
             run,

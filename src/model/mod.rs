@@ -5,9 +5,11 @@
 mod plant;
 mod reading;
 mod settings;
+mod stop;
 pub mod time;
 
 pub use plant::*;
 pub use reading::Reading;
 pub use settings::*;
+pub use stop::{Halt, Stop};
 pub use time::{Instant, Suffix, TimeMode, Zone};

@@ -234,7 +234,7 @@ fn hostile_formulas_are_refused_cleanly() {
 
 #[test]
 fn syntax_errors_are_400() {
-    let never = std::sync::atomic::AtomicBool::new(false);
+    let never = tacit::job::Stop::never();
     for body in [&b"{"[..], b"", b"{\"model\": }", b"[1,2", b"\xff\xfe"] {
         let p = tacit::job::estimate(body, &Default::default(), &never).unwrap_err();
         assert_eq!(p.status, 400, "{:?}: {p}", String::from_utf8_lossy(body));
@@ -333,7 +333,7 @@ fn observability_of_a_nonlinear_model_with_a_parameter() {
 
 #[test]
 fn every_missing_section_is_reported_at_once() {
-    let never = std::sync::atomic::AtomicBool::new(false);
+    let never = tacit::job::Stop::never();
     let p = tacit::job::estimate(br#"{"model": 1}"#, &Default::default(), &never).unwrap_err();
     assert_eq!(p.status, 422);
     let pointers: Vec<&str> = p.errors.iter().map(|e| e.pointer.as_str()).collect();
@@ -374,18 +374,14 @@ fn a_long_stiff_gap_stops_at_the_compute_deadline() {
         "measurements": [{"t": 1000.0, "values": {"gauge": 0.5}}]
     });
     let bytes = serde_json::to_vec(&body).unwrap();
-    let not_cancelled = std::sync::atomic::AtomicBool::new(false);
-    let mut limits = tacit::config::Limits {
-        deadline: Some(std::time::Duration::from_millis(5)),
-        ..Default::default()
-    };
-    let p = tacit::job::estimate(&bytes, &limits, &not_cancelled).unwrap_err();
+    let limits = tacit::config::Limits::default();
+    let budget = tacit::job::Stop::within(Some(std::time::Duration::from_millis(5)));
+    let p = tacit::job::estimate(&bytes, &limits, &budget).unwrap_err();
     assert_eq!(p.status, 503, "{p}");
     assert!(p.detail.contains("compute deadline"), "{p}");
     assert!(p.detail.contains("line 1"), "{p}");
     // Without a deadline the same request ends at the integrator's step limit instead.
-    limits.deadline = None;
-    let p = tacit::job::estimate(&bytes, &limits, &not_cancelled).unwrap_err();
+    let p = tacit::job::estimate(&bytes, &limits, &tacit::job::Stop::never()).unwrap_err();
     assert_eq!(p.status, 422, "{p}");
     assert!(p.detail.contains("too many integration steps"), "{p}");
 }

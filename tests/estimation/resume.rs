@@ -102,7 +102,7 @@ fn same_request_gives_identical_bytes() {
         json!({"t": 0.0, "mean": {"pos": 0.0, "vel": 0.0}, "std": {"pos": 0.5, "vel": 0.5}});
     for method in ["ekf", "ukf", "enkf"] {
         let b = serde_json::to_vec(&body(method, prior.clone(), &lines)).unwrap();
-        let never = std::sync::atomic::AtomicBool::new(false);
+        let never = tacit::job::Stop::never();
         let a1 = tacit::job::estimate(&b, &Default::default(), &never)
             .unwrap()
             .body;

@@ -1,11 +1,11 @@
 //! Helpers: call the job functions with JSON and read answers back.
 
 use serde_json::Value;
-use std::sync::atomic::AtomicBool;
 use tacit::config::Limits;
+use tacit::job::Stop;
 use tacit::problem::Problem;
 
-static NOT_CANCELLED: AtomicBool = AtomicBool::new(false);
+static NOT_CANCELLED: Stop = Stop::never();
 
 /// Run `/v1/estimate` in-process.
 pub(super) fn estimate(body: &Value) -> Result<Value, Problem> {
@@ -36,7 +36,8 @@ pub(super) fn simulate_or_problem(body: &Value) -> Result<Value, Problem> {
 /// Run `/v1/check` in-process.
 pub(super) fn check(body: &Value) -> Result<Value, Problem> {
     let bytes = serde_json::to_vec(body).unwrap();
-    tacit::job::check(&bytes, &Limits::default()).map(|d| serde_json::from_slice(&d.body).unwrap())
+    tacit::job::check(&bytes, &Limits::default(), &NOT_CANCELLED)
+        .map(|d| serde_json::from_slice(&d.body).unwrap())
 }
 
 /// Estimate, panicking with the problem on failure.

@@ -32,15 +32,15 @@ pub fn router() -> Router<AppState> {
 }
 
 async fn estimate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job_sized(&state, "/v1/estimate", body.len(), move |limits, cancel| {
-        job::estimate_pieces(&body, limits, cancel)
+    run_job_sized(&state, "/v1/estimate", body.len(), move |limits, stop| {
+        job::estimate_pieces(&body, limits, stop)
     })
     .await
 }
 
 async fn smooth(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job_sized(&state, "/v1/smooth", body.len(), move |limits, cancel| {
-        job::smooth_pieces(&body, limits, cancel)
+    run_job_sized(&state, "/v1/smooth", body.len(), move |limits, stop| {
+        job::smooth_pieces(&body, limits, stop)
     })
     .await
 }

@@ -1,4 +1,5 @@
-//! `GET /v1/info`: version, methods and the limits in force, as the job layer reports them.
+//! `GET /v1/info`: version, methods and the limits in force, as the job layer reports them,
+//! and how long this server waits on silent streams and sockets.
 
 use super::route::{mount, Route};
 use crate::http::state::AppState;
@@ -21,5 +22,11 @@ pub fn router() -> Router<AppState> {
 }
 
 async fn info(State(state): State<AppState>) -> Json<serde_json::Value> {
-    Json(job::info(state.limits()))
+    let mut v = job::info(state.limits());
+    let c = state.config();
+    v["timeouts"] = serde_json::json!({
+        "stream_idle_secs": c.stream_idle.as_secs_f64(),
+        "socket_idle_secs": c.socket_idle.as_secs_f64(),
+    });
+    Json(v)
 }

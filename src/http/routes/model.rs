@@ -35,15 +35,15 @@ pub fn router() -> Router<AppState> {
 async fn check(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
     // Checking compiles formulas and ranks a matrix: small but not free, so it too runs
     // off the executor and under a job slot.
-    run_job_sized(&state, "/v1/check", body.len(), move |limits, _cancel| {
-        job::check(&body, limits)
+    run_job_sized(&state, "/v1/check", body.len(), move |limits, stop| {
+        job::check(&body, limits, stop)
     })
     .await
 }
 
 async fn simulate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job_sized(&state, "/v1/simulate", body.len(), move |limits, cancel| {
-        job::simulate(&body, limits, cancel)
+    run_job_sized(&state, "/v1/simulate", body.len(), move |limits, stop| {
+        job::simulate(&body, limits, stop)
     })
     .await
 }

@@ -21,7 +21,7 @@ use crate::http::middleware::StreamStats;
 use crate::http::ndjson::{LineError, LineSplitter};
 use crate::http::problem::{internal, overloaded, problem_response, public};
 use crate::http::state::AppState;
-use crate::job::StreamSession;
+use crate::job::{Stop, StreamSession};
 use crate::problem::{Problem, ProblemKind};
 use axum::body::{Body, BodyDataStream};
 use axum::extract::{Request, State};
@@ -36,6 +36,7 @@ use std::convert::Infallible;
 use std::panic::AssertUnwindSafe;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
+use std::time::Duration;
 use tokio::sync::mpsc;
 use tokio::sync::mpsc::error::TryRecvError;
 use tokio::sync::OwnedSemaphorePermit;
@@ -81,16 +82,17 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
     if let Err(p) = require_media_type(req.headers(), NDJSON_TYPES, "application/x-ndjson") {
         return problem_response(&p);
     }
-    let Some(slot) = state.try_slot() else {
+    // Shed at once when every slot is busy, but hold none while the header is awaited:
+    // a slot is held only while the header or a batch of lines is being computed.
+    if state.is_full() {
         state.metrics().record_shed("/v1/estimate/stream");
         return overloaded(state.config().retry_after_secs);
-    };
+    }
     let mut body = req.into_body().into_data_stream();
     let mut splitter = LineSplitter::new(state.limits().max_line_bytes);
     let mut pending: Vec<(u64, Bytes)> = Vec::new();
 
-    // Read up to the first non-blank line: the header. The slot is already held, so a
-    // client that never sends one is not allowed to keep it for long.
+    // Read up to the first non-blank line: the header.
     let mut ended = false;
     let read_header = async {
         while pending.is_empty() && !ended {
@@ -117,12 +119,23 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
             "the stream is empty: its first line must be the header {model, filter, prior}",
         ));
     };
+    let Some(slot) = state.try_slot() else {
+        state.metrics().record_shed("/v1/estimate/stream");
+        return overloaded(state.config().retry_after_secs);
+    };
 
+    // Set when the request body breaks off and when the response body is dropped
+    // (client gone): either way the worker stops, even inside one long gap.
+    let guard = CancelOnDrop::new();
+    let cancel = guard.flag();
+    let hangup = SetOnDrop(cancel.clone());
+    let stop = Stop::new(cancel.clone(), None);
     let span = tracing::Span::current();
     let st = state.clone();
     let started = tokio::task::spawn_blocking(move || {
         let _enter = span.enter();
-        StreamSession::start(&header_line, st.limits())
+        let _slot = slot;
+        StreamSession::start(&header_line, st.limits(), &stop)
     })
     .await;
     let session = match started {
@@ -142,23 +155,25 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
 
     let (in_tx, in_rx) = mpsc::channel::<Input>(INPUT_DEPTH);
     let (out_tx, out_rx) = mpsc::channel::<Bytes>(OUTPUT_DEPTH);
-    let guard = CancelOnDrop::new();
-    let cancel = guard.flag();
 
     let leftover: Vec<_> = pending.into_iter().collect();
-    tokio::spawn(read_lines(body, splitter, leftover, ended, in_tx, guard));
+    let idle = state.config().stream_idle;
+    tokio::spawn(read_lines(
+        body, splitter, leftover, ended, in_tx, guard, idle,
+    ));
     let span = tracing::Span::current();
     let st = state.clone();
     // Filled in by the worker at the end, read by the request's log line.
     let stats = StreamStats::default();
     let seen = stats.clone();
+    let rt = tokio::runtime::Handle::current();
     tokio::task::spawn_blocking(move || {
         let _enter = span.enter();
-        work(session, in_rx, out_tx, cancel, slot, &st, &seen);
+        work(session, in_rx, out_tx, cancel, &rt, &st, &seen);
     });
 
-    let out = futures_util::stream::unfold(out_rx, |mut rx| async move {
-        rx.recv().await.map(|b| (Ok::<_, Infallible>(b), rx))
+    let out = futures_util::stream::unfold((out_rx, hangup), |(mut rx, h)| async move {
+        rx.recv().await.map(|b| (Ok::<_, Infallible>(b), (rx, h)))
     });
     let mut res = Body::from_stream(out).into_response();
     res.extensions_mut().insert(stats);
@@ -169,9 +184,20 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
     res
 }
 
+/// Sets its flag when dropped; rides in the response body, so a client that goes away
+/// stops the worker even while it computes and writes nothing.
+struct SetOnDrop(Arc<AtomicBool>);
+
+impl Drop for SetOnDrop {
+    fn drop(&mut self) {
+        self.0.store(true, Ordering::Relaxed);
+    }
+}
+
 /// The async half: split the request body into lines and pass them on in chunk-sized
 /// batches. It owns the cancel guard, so when it stops for any reason other than a
-/// clean end, the worker sees the flag.
+/// clean end or a silence longer than `idle`, the worker sees the flag. A silence ends
+/// the stream with the last good posterior and a `stream-idle` error line.
 async fn read_lines(
     mut body: BodyDataStream,
     mut splitter: LineSplitter,
@@ -179,6 +205,7 @@ async fn read_lines(
     already_ended: bool,
     tx: mpsc::Sender<Input>,
     guard: CancelOnDrop,
+    idle: Duration,
 ) {
     if !leftover.is_empty() && tx.send(Input::Lines(leftover)).await.is_err() {
         return;
@@ -186,7 +213,14 @@ async fn read_lines(
     if !already_ended {
         loop {
             let mut lines = Vec::new();
-            match body.next().await {
+            let Ok(next) = tokio::time::timeout(idle, body.next()).await else {
+                // The worker owes the client a last good posterior and the reason.
+                if tx.send(Input::Fail(stream_idle(idle))).await.is_ok() {
+                    guard.disarm();
+                }
+                return;
+            };
+            match next {
                 Some(Ok(chunk)) => {
                     if let Err(e) = splitter.push(chunk, &mut lines) {
                         let _ = tx.send(Input::Fail(line_too_long(e))).await;
@@ -223,14 +257,19 @@ fn work(
     rx: mpsc::Receiver<Input>,
     tx: mpsc::Sender<Bytes>,
     cancel: Arc<AtomicBool>,
-    slot: OwnedSemaphorePermit,
+    rt: &tokio::runtime::Handle,
     state: &AppState,
     stats: &StreamStats,
 ) {
-    let _slot = slot;
     let mut out = Vec::with_capacity(FLUSH_BYTES * 2);
+    let slots = Slots {
+        rt,
+        state,
+        held: None,
+        holding: false,
+    };
     let result = std::panic::catch_unwind(AssertUnwindSafe(|| {
-        run_session(session, rx, &tx, &cancel, &mut out, state, stats)
+        run_session(session, rx, &tx, &cancel, &mut out, slots, stats)
     }));
     match result {
         Ok(Flow::Done) | Ok(Flow::Gone) => {}
@@ -251,20 +290,49 @@ enum Flow {
     Gone,
 }
 
+/// The worker's hold on a job slot: taken while lines are computed, given back while
+/// it waits for the next ones, so an idle stream does not count against the limit.
+struct Slots<'a> {
+    rt: &'a tokio::runtime::Handle,
+    state: &'a AppState,
+    held: Option<OwnedSemaphorePermit>,
+    holding: bool,
+}
+
+impl Slots<'_> {
+    /// Hold a slot, waiting for one if all are busy (a stream already answered 200
+    /// cannot be shed any more; it waits its turn instead).
+    fn take(&mut self) {
+        if !self.holding {
+            self.held = self.rt.block_on(self.state.slot());
+            self.holding = true;
+        }
+    }
+
+    /// Give the slot back.
+    fn release(&mut self) {
+        self.held = None;
+        self.holding = false;
+    }
+}
+
 fn run_session(
     mut session: StreamSession,
     mut rx: mpsc::Receiver<Input>,
     tx: &mpsc::Sender<Bytes>,
     cancel: &AtomicBool,
     out: &mut Vec<u8>,
-    state: &AppState,
+    mut slots: Slots<'_>,
     stats: &StreamStats,
 ) -> Flow {
+    let state = slots.state;
     loop {
         let msg = match rx.try_recv() {
             Ok(m) => m,
             Err(TryRecvError::Empty) => {
-                // Nothing waiting: send what we have now, then wait for more.
+                // Nothing waiting: send what we have now, then wait for more without
+                // holding a slot.
+                slots.release();
                 if !flush(tx, out) {
                     return Flow::Gone;
                 }
@@ -278,6 +346,7 @@ fn run_session(
         if cancel.load(Ordering::Relaxed) {
             return Flow::Gone;
         }
+        slots.take();
         match msg {
             Input::Lines(lines) => {
                 for (line_no, line) in lines {
@@ -356,6 +425,16 @@ fn header_timeout() -> Problem {
         format!(
             "no header line arrived within {} s of the request's start",
             HEADER_WAIT.as_secs()
+        ),
+    )
+}
+
+fn stream_idle(idle: Duration) -> Problem {
+    Problem::new(
+        ProblemKind::StreamIdle,
+        format!(
+            "no byte of the stream arrived for {} s after the last line; the stream ends here",
+            idle.as_secs_f64()
         ),
     )
 }
