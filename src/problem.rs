@@ -59,6 +59,8 @@ pub enum ProblemKind {
     ShuttingDown,
     /// A stream's header line did not arrive in time.
     HeaderTimeout,
+    /// The request would need more memory than one request may have.
+    OverMemoryBudget,
 }
 
 /// The description of one kind of problem: what the answer carries and what the page at
@@ -93,6 +95,7 @@ impl ProblemKind {
         Self::Internal,
         Self::ShuttingDown,
         Self::HeaderTimeout,
+        Self::OverMemoryBudget,
     ];
 
     /// The one table of problem kinds.
@@ -137,6 +140,9 @@ impl ProblemKind {
             Self::HeaderTimeout => (408, "request timeout", "header-timeout",
                 "the stream's first line (model, filter, prior) did not arrive in time",
                 "send the header line as soon as the request starts; readings may follow at any pace"),
+            Self::OverMemoryBudget => (413, "needs too much memory", "over-memory-budget",
+                "the work the request asks for (lines times states, ensemble members, simulated times, the answer's size) would need more memory than the server allows one request; nothing was run",
+                "send fewer lines per request and resume from the posterior, ask for less output (output.covariance \"std\" or \"none\"), or use the stream endpoint; GET /v1/info gives max_request_bytes"),
         };
         About {
             status,

@@ -6,6 +6,7 @@
 //! from [`OVERLAP_MIN_LINES`] on), with the same bytes as on one; a smoothed batch keeps
 //! every step for the backward pass ([`super::smooth`]). The stream is [`super::stream`].
 
+use super::budget::{self, BatchShape, Held};
 use super::plain::{stats, Lines, Predictions, Shape};
 use super::setup::{setup, Guard, Setup};
 use crate::config::Limits;
@@ -78,6 +79,11 @@ fn run_batch_overlapping(
         zone,
     } = setup(&env, limits)?;
     let lines = measurement_list(&env, limits)?;
+    let overlap = !smooth && lines.len() >= overlap_from;
+    budget::within(
+        budget::batch_bytes(&shape(&model, &cfg, &output, &lines, body, smooth, overlap)),
+        limits,
+    )?;
     let writer = Writer::new(&model, prior.mode, output.clone());
     let mut run = Run::new(model.clone(), cfg, prior, smooth)?;
     let ctx = Lines {
@@ -94,12 +100,8 @@ fn run_batch_overlapping(
         next: 0,
         buf: Vec::new(),
     };
-    let overlap = !smooth && lines.len() >= overlap_from;
-    let mut head = Vec::with_capacity(if overlap {
-        256
-    } else {
-        256 + lines.len() * ctx.shape.guess_bytes()
-    });
+    // The answer grows as it is written: nothing is reserved for lines not yet run.
+    let mut head = Vec::with_capacity(256);
     head.push(b'{');
     writer.states(&mut head);
     head.extend_from_slice(b",\"estimates\":[");
@@ -134,6 +136,38 @@ fn run_batch_overlapping(
         parts,
         stats: stats(&run),
     })
+}
+
+/// The shape the memory estimate reads.
+fn shape<'a>(
+    model: &'a crate::model::Model,
+    cfg: &'a crate::model::FilterConfig,
+    output: &'a crate::model::OutputConfig,
+    lines: &[&str],
+    body: &[u8],
+    smooth: bool,
+    overlap: bool,
+) -> BatchShape<'a> {
+    BatchShape {
+        model,
+        cfg,
+        output,
+        lines: lines.len(),
+        body: body.len(),
+        smooth,
+        answer: if overlap { Held::Pieces } else { Held::Buffer },
+    }
+}
+
+/// The memory a batch request would need at its peak, as [`run_batch`] estimates it
+/// before running (for tests and operators sizing `max_request_bytes`).
+pub(super) fn batch_need(body: &[u8], limits: &Limits, smooth: bool) -> Result<u64, Problem> {
+    let env = envelope::envelope(body)?;
+    let s = setup(&env, limits)?;
+    let lines = measurement_list(&env, limits)?;
+    let overlap = !smooth && lines.len() >= OVERLAP_MIN_LINES;
+    let shape = shape(&s.model, &s.cfg, &s.output, &lines, body, smooth, overlap);
+    Ok(budget::batch_bytes(&shape))
 }
 
 #[cfg(test)]

@@ -14,6 +14,7 @@
 //! diagnostics and dynamics; nothing below imports this module.
 
 use crate::config::Limits;
+pub mod budget;
 mod check;
 mod failure;
 mod filtering;
@@ -115,8 +116,23 @@ pub fn smooth_pieces(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Resul
     filtering::run_batch(body, limits, cancel, true)
 }
 
+/// The memory a batch request (`smooth` for `/v1/smooth`) would need at its peak, bytes:
+/// the estimate checked against `limits.max_request_bytes` before any work starts.
+pub fn batch_memory(body: &[u8], limits: &Limits, smooth: bool) -> Result<u64, Problem> {
+    filtering::batch_need(body, limits, smooth)
+}
+
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+    simulate_pieces(body, limits, cancel).map(Pieces::into_done)
+}
+
+/// [`simulate`] with the answer left in pieces (what the server sends).
+pub fn simulate_pieces(
+    body: &[u8],
+    limits: &Limits,
+    cancel: &AtomicBool,
+) -> Result<Pieces, Problem> {
     simulate::simulate(body, limits, cancel)
 }
 

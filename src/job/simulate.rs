@@ -9,9 +9,11 @@
 //! readings made outliers (`injected`) and left out (`dropped`): the marks stay off the
 //! measurement lines, which estimate refuses unknown fields on.
 
+use super::budget;
+use super::setup::Guard;
 use crate::config::Limits;
 use crate::job::write::{num, Writer};
-use crate::job::{Done, RunStats};
+use crate::job::{Pieces, RunStats};
 use crate::model::{Dynamics, LinearTime, Model, Prior};
 use crate::model::{Instant, TimeMode, Zone};
 use crate::problem::{Problem, ProblemKind};
@@ -22,7 +24,7 @@ use crate::request::reader::{
 use crate::request::validate;
 use crate::simulate::{self, Plan, Sample, Schedule, SimulateError, Sink};
 use serde_json::Value;
-use std::sync::atomic::AtomicBool;
+use std::sync::atomic::{AtomicBool, Ordering};
 
 fn probability(v: &Value, ptr: &str, errs: &mut Errors) -> Option<f64> {
     let p = number(v, ptr, errs)?;
@@ -265,8 +267,12 @@ fn grid_step(model: &Model) -> Option<f64> {
     }
 }
 
-/// `POST /v1/simulate`.
-pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
+/// `POST /v1/simulate`, the answer in pieces.
+pub(super) fn simulate(
+    body: &[u8],
+    limits: &Limits,
+    cancel: &AtomicBool,
+) -> Result<Pieces, Problem> {
     let env = envelope::envelope(body)?;
     if env.readings.is_some() {
         return Err(Problem::field(
@@ -313,13 +319,24 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
             ));
         }
     }
-    let n = model.n();
+    budget::within(
+        budget::simulate_bytes(&model, times.len(), inputs.len(), body.len()),
+        limits,
+    )?;
+    // The sink watches the deadline and the client's flag once per line, and stops the
+    // simulation through a flag of its own (polled by `simulate::run`).
+    let guard = Guard::new(limits, cancel);
+    let stop = AtomicBool::new(false);
     let mut out = Json {
         model: &model,
         writer: Writer::new(&model, mode, Default::default()),
-        truth: Vec::with_capacity(times.len() * 32 * (n + 1)),
-        meas: Vec::with_capacity(times.len() * 48),
+        // Grown as lines are made: nothing is reserved for times not yet simulated.
+        truth: Vec::new(),
+        meas: Vec::new(),
         lines: 0,
+        guard: &guard,
+        stop: &stop,
+        stopped: None,
     };
     let plan = Plan {
         model: &model,
@@ -329,7 +346,11 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         schedules: &sched,
         seed,
     };
-    simulate::run(&plan, cancel, &mut out).map_err(|e| problem(e, mode))?;
+    let ran = simulate::run(&plan, &stop, &mut out);
+    if let Some(p) = out.stopped.take() {
+        return Err(p);
+    }
+    ran.map_err(|e| problem(e, mode))?;
     let Json {
         writer,
         truth,
@@ -337,18 +358,21 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Res
         lines,
         ..
     } = out;
-    let mut buf = Vec::with_capacity(truth.len() + meas.len() + 128);
-    buf.push(b'{');
-    writer.states(&mut buf);
-    buf.extend_from_slice(b",\"seed\":");
-    buf.extend_from_slice(itoa::Buffer::new().format(seed).as_bytes());
-    buf.extend_from_slice(b",\"truth\":[");
-    buf.extend_from_slice(&truth);
-    buf.extend_from_slice(b"],\"measurements\":[");
-    buf.extend_from_slice(&meas);
-    buf.extend_from_slice(b"]}");
-    Ok(Done {
-        body: buf,
+    // The two lists go out as they are, between the pieces around them: no copy.
+    let mut head = Vec::with_capacity(128);
+    head.push(b'{');
+    writer.states(&mut head);
+    head.extend_from_slice(b",\"seed\":");
+    head.extend_from_slice(itoa::Buffer::new().format(seed).as_bytes());
+    head.extend_from_slice(b",\"truth\":[");
+    Ok(Pieces {
+        parts: vec![
+            head,
+            truth,
+            b"],\"measurements\":[".to_vec(),
+            meas,
+            b"]}".to_vec(),
+        ],
         stats: RunStats {
             filter: "",
             steps: lines,
@@ -367,6 +391,12 @@ struct Json<'a> {
     meas: Vec<u8>,
     /// Lines written so far.
     lines: u64,
+    /// The request's deadline and cancel flag.
+    guard: &'a Guard<'a>,
+    /// Set to stop the simulation at its next check.
+    stop: &'a AtomicBool,
+    /// Why the sink stopped it.
+    stopped: Option<Problem>,
 }
 
 /// `"name"` as a JSON string.
@@ -376,12 +406,19 @@ fn quoted(buf: &mut Vec<u8>, name: &str) {
 
 impl Sink for Json<'_> {
     fn sample(&mut self, s: &Sample<'_>) {
+        if self.stopped.is_none() {
+            if let Err(p) = self.guard.check(self.lines as usize) {
+                self.stopped = Some(p);
+                self.stop.store(true, Ordering::Relaxed);
+            }
+        }
         let Self {
             model,
             writer,
             truth,
             meas,
             lines,
+            ..
         } = self;
         if *lines > 0 {
             truth.push(b',');

@@ -43,7 +43,7 @@ async fn check(State(state): State<AppState>, JsonBody(body): JsonBody) -> Respo
 
 async fn simulate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
     run_job_sized(&state, "/v1/simulate", body.len(), move |limits, cancel| {
-        job::simulate(&body, limits, cancel)
+        job::simulate_pieces(&body, limits, cancel)
     })
     .await
 }
