@@ -329,7 +329,7 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
         rt.worker_threads(io_threads());
     }
     let rt = rt.enable_all().build()?;
-    rt.block_on(async move {
+    let served = rt.block_on(async move {
         let listener = tokio::net::TcpListener::bind(a.addr)
             .await
             .map_err(|e| CliError::Other(format!("cannot listen on {}: {e}", a.addr)))?;
@@ -346,7 +346,11 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
         http::serve(listener, state, http::shutdown_signal()).await?;
         tracing::info!("stopped");
         Ok(())
-    })
+    });
+    // Jobs still computing were abandoned when the grace time ended (and logged): exit
+    // now rather than wait for their threads, which dropping the runtime would do.
+    rt.shutdown_background();
+    served
 }
 
 /// Executor threads: half the cores, at least one.

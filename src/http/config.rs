@@ -19,6 +19,10 @@ pub struct ServerConfig {
     pub shutdown_grace: Duration,
     /// Seconds a shed client is told to wait (`Retry-After`).
     pub retry_after_secs: u64,
+    /// A batch estimate of 4096 lines or more whose answer is estimated at this many
+    /// bytes or more is sent as it is written (chunked, no `Content-Length`) instead of
+    /// being held whole; smaller answers keep their declared length.
+    pub stream_answer_bytes: u64,
 }
 
 impl Default for ServerConfig {
@@ -29,6 +33,7 @@ impl Default for ServerConfig {
             cors_origins: Vec::new(),
             shutdown_grace: Duration::from_secs(30),
             retry_after_secs: 1,
+            stream_answer_bytes: 64 << 20,
         }
     }
 }

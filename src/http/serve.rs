@@ -1,5 +1,8 @@
-//! The server loop: accept on a listener until a shutdown signal, then refuse new work
-//! (readiness 503, listener closed) and let running requests finish within the grace time.
+//! The server loop: accept on a listener until a shutdown signal, then drain: readiness
+//! answers 503 and new work is refused while the listener stays open (so probes see the
+//! drain), until the running jobs end; then the listener closes and open connections
+//! finish. When the grace time ends first, the loop returns anyway and logs the jobs it
+//! abandons; the caller exits without waiting for their threads.
 
 use super::app::app;
 use super::state::AppState;
@@ -29,23 +32,36 @@ pub async fn serve(
                 "shutting down: no new connections; running requests may finish"
             );
             fired.notify_one();
+            // Keep accepting while jobs run: a load balancer's readiness probe must see
+            // the 503, and new work gets a 503 rather than a refused connection.
+            while state.jobs_running() > 0 {
+                tokio::time::sleep(DRAIN_POLL).await;
+            }
         }
     };
     // Small answers should leave at once rather than wait for Nagle's timer.
     let listener = listener.tap_io(|tcp| {
         let _ = tcp.set_nodelay(true);
     });
-    let server = axum::serve(listener, app(state))
+    let server = axum::serve(listener, app(state.clone()))
         .with_graceful_shutdown(signal)
         .into_future();
     tokio::select! {
         r = server => r,
         () = async { fired.notified().await; tokio::time::sleep(grace).await } => {
-            tracing::warn!("shutdown grace time passed; cutting off the requests still running");
+            let abandoned = state.running_jobs();
+            tracing::warn!(
+                jobs = state.jobs_running(),
+                abandoned = %abandoned.join("; "),
+                "shutdown grace time passed; abandoning the requests still running"
+            );
             Ok(())
         }
     }
 }
+
+/// How often a draining server looks whether its jobs have ended.
+const DRAIN_POLL: std::time::Duration = std::time::Duration::from_millis(20);
 
 /// Resolves on SIGINT (Ctrl-C) or, on Unix, SIGTERM.
 pub async fn shutdown_signal() {

@@ -106,6 +106,42 @@ pub fn estimate_pieces(
     filtering::run_batch(body, limits, cancel, false)
 }
 
+/// Where a streamed answer's pieces go, in order.
+pub trait PieceSink: Send {
+    /// Hand over the next piece; false when nobody reads the answer any more.
+    fn send(&mut self, piece: Vec<u8>) -> bool;
+}
+
+/// A batch answer: whole, or already handed to a [`PieceSink`] piece by piece.
+#[derive(Debug)]
+pub enum BatchAnswer {
+    /// Nothing was sent: the whole answer, to be sent with its length.
+    Pieces(Pieces),
+    /// Everything was sent. `failed` is the problem that ended the answer after its head
+    /// had gone: the answer's last member is then `"error": problem` (in place of
+    /// `posterior` and `summary`), so the document stays valid JSON.
+    Sent {
+        /// Work counters.
+        stats: RunStats,
+        /// The problem written as the answer's last member, if the run failed.
+        failed: Option<Problem>,
+    },
+}
+
+/// [`estimate_pieces`], sending the answer to `sink` as it is written when it is run on
+/// three threads (4096 lines or more) and its size is estimated at `stream_from` bytes or
+/// more: memory then holds a few blocks instead of the whole answer. A problem found
+/// before the first piece is sent is returned as usual.
+pub fn estimate_streaming(
+    body: &[u8],
+    limits: &Limits,
+    cancel: &AtomicBool,
+    stream_from: u64,
+    sink: &mut dyn PieceSink,
+) -> Result<BatchAnswer, Problem> {
+    filtering::run_batch_streaming(body, limits, cancel, stream_from, sink)
+}
+
 /// `POST /v1/smooth`: same input as estimate, smoothed estimates out.
 pub fn smooth(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done, Problem> {
     smooth_pieces(body, limits, cancel).map(Pieces::into_done)
