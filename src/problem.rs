@@ -142,7 +142,7 @@ impl ProblemKind {
                 "send the header line as soon as the request starts; readings may follow at any pace"),
             Self::OverMemoryBudget => (413, "needs too much memory", "over-memory-budget",
                 "the work the request asks for (lines times states, ensemble members, simulated times, the answer's size) would need more memory than the server allows one request; nothing was run",
-                "send fewer lines per request and resume from the posterior, ask for less output (output.covariance \"std\" or \"none\"), or use the stream endpoint; GET /v1/info gives max_request_bytes"),
+                "send fewer lines per request and resume from the posterior, ask for less output (output.covariance std or none), or use the stream endpoint; GET /v1/info gives max_request_bytes"),
         };
         About {
             status,

@@ -271,6 +271,16 @@ async fn a_request_finding_no_free_slot_is_refused_before_its_body_is_read() {
     assert_ne!(a.status, 503, "{}", a.text);
 }
 
+/// A child process killed and reaped when dropped, whatever the test's path.
+struct Reaped(std::process::Child);
+
+impl Drop for Reaped {
+    fn drop(&mut self) {
+        let _ = self.0.kill();
+        let _ = self.0.wait();
+    }
+}
+
 /// A kiln's temperature relaxing towards its setpoint, integrated with a fixed step so
 /// small that one line's gap takes longer than any test: a batch that computes until it
 /// is abandoned (with no compute deadline).
@@ -294,18 +304,20 @@ async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_a
     use std::process::{Command, Stdio};
     let log = std::path::Path::new(env!("CARGO_TARGET_TMPDIR"))
         .join(format!("drain-{}.log", std::process::id()));
-    let mut child = Command::new(env!("CARGO_BIN_EXE_tacit"))
-        .args(["serve", "--addr", "127.0.0.1:0", "--deadline-secs", "0"])
-        .args(["--shutdown-grace-secs", "2", "--max-concurrency", "1"])
-        .env_remove("RUST_LOG")
-        .env_remove("TACIT_LOG_FORMAT")
-        .env_remove("TACIT_API_KEYS")
-        .env_remove("TACIT_API_KEYS_FILE")
-        .stdin(Stdio::null())
-        .stdout(Stdio::null())
-        .stderr(std::fs::File::create(&log).unwrap())
-        .spawn()
-        .unwrap();
+    let mut child = Reaped(
+        Command::new(env!("CARGO_BIN_EXE_tacit"))
+            .args(["serve", "--addr", "127.0.0.1:0", "--deadline-secs", "0"])
+            .args(["--shutdown-grace-secs", "2", "--max-concurrency", "1"])
+            .env_remove("RUST_LOG")
+            .env_remove("TACIT_LOG_FORMAT")
+            .env_remove("TACIT_API_KEYS")
+            .env_remove("TACIT_API_KEYS_FILE")
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(std::fs::File::create(&log).unwrap())
+            .spawn()
+            .unwrap(),
+    );
     let text = || std::fs::read_to_string(&log).unwrap_or_default();
     let mut base = None;
     for _ in 0..1000 {
@@ -318,7 +330,6 @@ async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_a
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
     let Some(base) = base else {
-        let _ = child.kill();
         panic!("the server did not start: {}", text());
     };
     let client = reqwest::Client::new();
@@ -355,7 +366,7 @@ async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_a
     }
     assert!(busy, "the batch never took the slot: {}", text());
     let term = Command::new("kill")
-        .args(["-TERM", &child.id().to_string()])
+        .args(["-TERM", &child.0.id().to_string()])
         .status()
         .unwrap();
     assert!(term.success());
@@ -374,15 +385,11 @@ async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_a
     // the point where the test stops waiting (the batch alone would take hours).
     let mut status = None;
     for _ in 0..3000 {
-        if let Some(st) = child.try_wait().unwrap() {
+        if let Some(st) = child.0.try_wait().unwrap() {
             status = Some(st);
             break;
         }
         tokio::time::sleep(Duration::from_millis(20)).await;
-    }
-    if status.is_none() {
-        let _ = child.kill();
-        let _ = child.wait();
     }
     let log_text = text();
     assert!(

@@ -29,7 +29,7 @@ pub async fn serve(
             state.set_ready(false);
             tracing::info!(
                 grace_secs = grace.as_secs_f64(),
-                "shutting down: no new connections; running requests may finish"
+                "shutting down: readiness 503 and no new work; running requests may finish"
             );
             fired.notify_one();
             // Keep accepting while jobs run: a load balancer's readiness probe must see
