@@ -84,6 +84,10 @@ pub struct LimitArgs {
     /// Most requests computing at once; more are answered 503 with Retry-After.
     #[arg(long, env = "TACIT_MAX_CONCURRENCY")]
     pub max_concurrency: Option<usize>,
+    /// Most memory one request may need, bytes, estimated before it runs; more is refused
+    /// with 413. Default: a quarter of the machine's memory (or of its cgroup limit).
+    #[arg(long, env = "TACIT_MAX_REQUEST_BYTES")]
+    pub max_request_bytes: Option<u64>,
 }
 
 impl LimitArgs {
@@ -118,6 +122,9 @@ impl LimitArgs {
             }
             l.deadline = (s > 0.0).then(|| Duration::from_secs_f64(s));
         }
+        l.max_request_bytes = self
+            .max_request_bytes
+            .unwrap_or_else(crate::config::machine_request_bytes);
         Ok(l)
     }
 }
@@ -347,7 +354,7 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
         rt.worker_threads(io_threads());
     }
     let rt = rt.enable_all().build()?;
-    rt.block_on(async move {
+    let served = rt.block_on(async move {
         let listener = tokio::net::TcpListener::bind(a.addr)
             .await
             .map_err(|e| CliError::Other(format!("cannot listen on {}: {e}", a.addr)))?;
@@ -364,7 +371,11 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
         http::serve(listener, state, http::shutdown_signal()).await?;
         tracing::info!("stopped");
         Ok(())
-    })
+    });
+    // Jobs still computing were abandoned when the grace time ended (and logged): exit
+    // now rather than wait for their threads, which dropping the runtime would do.
+    rt.shutdown_background();
+    served
 }
 
 /// Executor threads: half the cores, at least one.
@@ -611,6 +622,12 @@ mod tests {
         assert_eq!(l.max_states, 8);
         assert_eq!(l.deadline, None);
         assert_eq!(l.max_members, Limits::default().max_members);
+        assert_eq!(l.max_request_bytes, crate::config::machine_request_bytes());
+        let set = LimitArgs {
+            max_request_bytes: Some(12345),
+            ..LimitArgs::default()
+        };
+        assert_eq!(set.to_limits().unwrap().max_request_bytes, 12345);
         let bad = LimitArgs {
             deadline_secs: Some(-1.0),
             ..LimitArgs::default()

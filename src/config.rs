@@ -37,6 +37,44 @@ pub struct Limits {
     pub deadline: Option<Duration>,
     /// Most requests doing filter work at once; more are answered 503.
     pub max_concurrency: usize,
+    /// Most memory one request may need, bytes, as estimated from its shape before any
+    /// work starts (stored smoothing steps, ensemble, answer); more is refused with 413.
+    pub max_request_bytes: u64,
+}
+
+/// The per-request memory budget when the machine's memory cannot be read: 1 GiB.
+pub const FALLBACK_REQUEST_BYTES: u64 = 1 << 30;
+
+/// A quarter of the memory this process may use (the smaller of physical memory, from
+/// `/proc/meminfo`, and a cgroup v2 `memory.max`): what `tacit serve` and `tacit run`
+/// allow one request when `--max-request-bytes` is not given. A quarter leaves room for a
+/// few large requests at once and for the server itself; [`FALLBACK_REQUEST_BYTES`] where
+/// neither can be read.
+pub fn machine_request_bytes() -> u64 {
+    let total = std::fs::read_to_string("/proc/meminfo")
+        .ok()
+        .and_then(|t| meminfo_total(&t));
+    let cgroup = std::fs::read_to_string("/sys/fs/cgroup/memory.max")
+        .ok()
+        .and_then(|t| t.trim().parse::<u64>().ok());
+    match (total, cgroup) {
+        (Some(a), Some(b)) => a.min(b) / 4,
+        (Some(a), None) | (None, Some(a)) => a / 4,
+        (None, None) => FALLBACK_REQUEST_BYTES,
+    }
+}
+
+/// `MemTotal` of a `/proc/meminfo` text, in bytes (the file counts kibibytes).
+fn meminfo_total(text: &str) -> Option<u64> {
+    let line = text.lines().find(|l| l.starts_with("MemTotal:"))?;
+    let kib: u64 = line
+        .trim_start_matches("MemTotal:")
+        .trim()
+        .trim_end_matches("kB")
+        .trim()
+        .parse()
+        .ok()?;
+    kib.checked_mul(1024)
 }
 
 fn ser_opt_secs<S: serde::Serializer>(d: &Option<Duration>, s: S) -> Result<S::Ok, S::Error> {
@@ -61,6 +99,21 @@ impl Default for Limits {
             max_gap_steps: 10_000_000,
             deadline: Some(Duration::from_secs(60)),
             max_concurrency: 64,
+            max_request_bytes: FALLBACK_REQUEST_BYTES,
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn meminfo_total_reads_kibibytes_as_bytes() {
+        // The format of proc(5): "MemTotal:  <n> kB" on its own line.
+        let text = "MemTotal:       24683568 kB\nMemFree:         1000 kB\n";
+        assert_eq!(meminfo_total(text), Some(24_683_568 * 1024));
+        assert_eq!(meminfo_total("MemFree: 12 kB\n"), None);
+        assert!(machine_request_bytes() > 0);
     }
 }

@@ -61,6 +61,8 @@ pub enum ProblemKind {
     HeaderTimeout,
     /// A stream fell silent between two lines for longer than the server waits.
     StreamIdle,
+    /// The request would need more memory than one request may have.
+    OverMemoryBudget,
 }
 
 /// The description of one kind of problem: what the answer carries and what the page at
@@ -96,6 +98,7 @@ impl ProblemKind {
         Self::ShuttingDown,
         Self::HeaderTimeout,
         Self::StreamIdle,
+        Self::OverMemoryBudget,
     ];
 
     /// The one table of problem kinds.
@@ -143,6 +146,9 @@ impl ProblemKind {
             Self::StreamIdle => (408, "request timeout", "stream-idle",
                 "the stream sent no byte between two lines for longer than the server's idle time; the last good posterior came before this error",
                 "resume from that posterior in a new stream when readings are due again, or send lines more often than the idle time"),
+            Self::OverMemoryBudget => (413, "needs too much memory", "over-memory-budget",
+                "the work the request asks for (lines times states, ensemble members, simulated times, the answer's size) would need more memory than the server allows one request; nothing was run",
+                "send fewer lines per request and resume from the posterior, ask for less output (output.covariance std or none), or use the stream endpoint; GET /v1/info gives max_request_bytes"),
         };
         About {
             status,

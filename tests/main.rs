@@ -12,6 +12,7 @@ mod http_core;
 mod http_errors;
 mod http_hardening;
 mod http_logs;
+mod http_memory;
 mod http_simulate;
 mod http_time;
 mod no_alloc;

@@ -26,6 +26,10 @@ pub struct ServerConfig {
     /// that sends its head slowly (or never) and a kept-alive one that sits idle between
     /// requests are both closed after this.
     pub socket_idle: Duration,
+    /// A batch estimate of 4096 lines or more whose answer is estimated at this many
+    /// bytes or more is sent as it is written (chunked, no `Content-Length`) instead of
+    /// being held whole; smaller answers keep their declared length.
+    pub stream_answer_bytes: u64,
 }
 
 impl Default for ServerConfig {
@@ -38,6 +42,7 @@ impl Default for ServerConfig {
             retry_after_secs: 1,
             stream_idle: Duration::from_secs(60),
             socket_idle: Duration::from_secs(10),
+            stream_answer_bytes: 64 << 20,
         }
     }
 }

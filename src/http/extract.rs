@@ -6,27 +6,42 @@
 //! request, so a syntax error (400) comes from the same parser that reports field errors
 //! (422). Parsing twice would cost a measurable share of a large batch's time.
 
-use super::state::AppState;
+use super::jobs::take_slot;
+use super::problem::problem_response;
+use super::state::{AppState, JobSlot};
 use crate::problem::{Problem, ProblemKind};
 use axum::body::Body;
 use axum::extract::{FromRequest, Request};
 use axum::http::{header, HeaderMap};
+use axum::response::Response;
 use bytes::{Bytes, BytesMut};
 use futures_util::StreamExt;
 
-/// A request body of media type `application/json`, read whole within the body limit.
-#[derive(Debug, Clone)]
-pub struct JsonBody(pub Bytes);
+/// A request body of media type `application/json`, read whole within the body limit,
+/// and the job slot it runs under. The slot is taken first: when none is free (or the
+/// server is shutting down) the 503 goes out before a byte of the body is read, so
+/// turned-away uploads cost neither memory nor bandwidth.
+#[derive(Debug)]
+pub struct JsonBody(pub Bytes, pub JobSlot);
 
 impl FromRequest<AppState> for JsonBody {
-    type Rejection = super::ProblemResponse;
+    type Rejection = Response;
 
     async fn from_request(req: Request, state: &AppState) -> Result<Self, Self::Rejection> {
-        require_media_type(req.headers(), &["application/json"], "application/json")?;
+        require_media_type(req.headers(), &["application/json"], "application/json")
+            .map_err(|p| problem_response(&p))?;
+        let route = req.uri().path().to_string();
+        let id = req
+            .headers()
+            .get(super::app::REQUEST_ID)
+            .and_then(|v| v.to_str().ok());
+        let slot = take_slot(state, &route, id).map_err(|r| *r)?;
         let limit = state.limits().max_body_bytes;
         let declared = content_length(req.headers());
-        let bytes = read_limited(req.into_body(), limit, declared).await?;
-        Ok(Self(bytes))
+        let bytes = read_limited(req.into_body(), limit, declared)
+            .await
+            .map_err(|p| problem_response(&p))?;
+        Ok(Self(bytes, slot))
     }
 }
 

@@ -5,10 +5,10 @@
 
 use super::lane::SMALL_BODY;
 use super::problem::{internal, overloaded, problem_response, public};
-use super::state::AppState;
+use super::state::{AppState, JobSlot};
 use crate::config::Limits;
 use crate::job::{Done, Pieces, RunStats, Stop};
-use crate::problem::Problem;
+use crate::problem::{Problem, ProblemKind};
 use axum::body::Body;
 use axum::http::{header, HeaderValue};
 use axum::response::{IntoResponse, Response};
@@ -98,9 +98,9 @@ where
 /// Like [`run_job`], for a request of `body_len` bytes: a small one runs on the app's
 /// compute lane (cheaper to hand over than `spawn_blocking`) unless the lane is stuck on
 /// slow jobs. Either way the work runs off the executor, under the same slot, cancel flag
-/// and deadline. The deadline counts from this call (the request's arrival at its
-/// handler), not from when a compute thread picks the job up, so a job that waited in
-/// the lane's queue past its deadline stops at its first look.
+/// and deadline. The deadline counts from the slot being taken (the request's arrival,
+/// before its body is read), not from when a compute thread picks the job up, so a job
+/// that waited in the lane's queue past its deadline stops at its first look.
 pub async fn run_job_sized<T, F>(
     state: &AppState,
     route: &str,
@@ -111,12 +111,47 @@ where
     T: Answer,
     F: FnOnce(&Limits, &Stop) -> Result<T, Problem> + Send + 'static,
 {
-    let arrived = std::time::Instant::now();
-    let Some(slot) = state.try_slot() else {
+    match take_slot(state, route, None) {
+        Ok(slot) => run_job_in(state, slot, body_len, work).await,
+        Err(res) => *res,
+    }
+}
+
+/// A job slot for a request to `route` (with its request id, for the log of a shutdown
+/// that abandons it), or the answer to give instead: 503 shutting-down once a shutdown
+/// has begun, 503 overloaded with Retry-After when every slot is busy. Taken before the
+/// body is read, so a request that would be turned away is not uploaded first.
+pub(super) fn take_slot(
+    state: &AppState,
+    route: &str,
+    request_id: Option<&str>,
+) -> Result<JobSlot, Box<Response>> {
+    if !state.is_ready() {
         state.metrics().record_shed(route);
-        return overloaded(state.config().retry_after_secs);
+        return Err(Box::new(problem_response(&Problem::new(
+            ProblemKind::ShuttingDown,
+            "the server is shutting down and takes no new work",
+        ))));
+    }
+    let what = match request_id {
+        Some(id) => format!("{route} request {id}"),
+        None => route.to_string(),
     };
+    state.try_job_slot(what).ok_or_else(|| {
+        state.metrics().record_shed(route);
+        Box::new(overloaded(state.config().retry_after_secs))
+    })
+}
+
+/// [`run_job_sized`] under a slot already taken (by [`super::JsonBody`], before reading
+/// the body).
+pub async fn run_job_in<T, F>(state: &AppState, slot: JobSlot, body_len: usize, work: F) -> Response
+where
+    T: Answer,
+    F: FnOnce(&Limits, &Stop) -> Result<T, Problem> + Send + 'static,
+{
     let guard = CancelOnDrop::new();
+    let arrived = slot.arrived();
     let stop = Stop::new(guard.flag(), state.limits().deadline.map(|d| arrived + d));
     let st = state.clone();
     // The request's span goes with the work to its thread, so a log line written there
@@ -144,6 +179,14 @@ where
             }
         };
     drop(guard);
+    finish(state, joined)
+}
+
+/// The response to a job's end: its answer, its problem, or a logged 500 for a panic.
+pub(super) fn finish<T: Answer>(
+    state: &AppState,
+    joined: Result<Result<T, Problem>, String>,
+) -> Response {
     match joined {
         Ok(Ok(done)) => {
             let stats = *done.stats();

@@ -6,8 +6,10 @@ use super::keys::ApiKeys;
 use super::lane::Lane;
 use super::metrics::Metrics;
 use crate::config::Limits;
-use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::Arc;
+use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::Instant;
 use tokio::sync::{OwnedSemaphorePermit, Semaphore};
 
 /// Shared state of one app; several apps may live in one process (tests do).
@@ -23,6 +25,44 @@ struct Inner {
     metrics: Metrics,
     ready: AtomicBool,
     lane: Lane,
+    running: Arc<Running>,
+}
+
+/// The jobs holding a slot, so a shutdown that gives up on them can name them.
+#[derive(Default)]
+struct Running {
+    next: AtomicU64,
+    jobs: Mutex<BTreeMap<u64, (String, Instant)>>,
+}
+
+/// A job slot: while held, one job runs under the concurrency limit; dropping it frees
+/// the slot and forgets the job.
+pub struct JobSlot {
+    _permit: OwnedSemaphorePermit,
+    running: Arc<Running>,
+    key: u64,
+    arrived: std::time::Instant,
+}
+
+impl JobSlot {
+    /// When the request took its slot (before its body was read): the compute deadline
+    /// counts from here.
+    pub fn arrived(&self) -> std::time::Instant {
+        self.arrived
+    }
+}
+
+impl Drop for JobSlot {
+    fn drop(&mut self) {
+        let mut jobs = self.running.jobs.lock().unwrap_or_else(|p| p.into_inner());
+        jobs.remove(&self.key);
+    }
+}
+
+impl std::fmt::Debug for JobSlot {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("JobSlot").field("key", &self.key).finish()
+    }
 }
 
 impl AppState {
@@ -37,6 +77,7 @@ impl AppState {
                 metrics: Metrics::new(),
                 ready: AtomicBool::new(true),
                 lane: Lane::new(lane_threads()),
+                running: Arc::new(Running::default()),
                 config,
             }),
         }
@@ -64,7 +105,11 @@ impl AppState {
 
     /// A job slot if one is free now; `None` means the caller sheds the request with 503
     /// rather than queue it (a queue would only grow under sustained overload).
+    /// None too once a shutdown has begun: a draining server takes no new work.
     pub fn try_slot(&self) -> Option<OwnedSemaphorePermit> {
+        if !self.is_ready() {
+            return None;
+        }
         self.inner.slots.clone().try_acquire_owned().ok()
     }
 
@@ -78,6 +123,41 @@ impl AppState {
     /// `None` only if the slots were closed, which they never are.
     pub async fn slot(&self) -> Option<OwnedSemaphorePermit> {
         self.inner.slots.clone().acquire_owned().await.ok()
+    }
+
+    /// [`AppState::try_slot`], remembering the job as `what` (route and request id)
+    /// until the slot is dropped.
+    pub fn try_job_slot(&self, what: String) -> Option<JobSlot> {
+        let permit = self.try_slot()?;
+        let running = self.inner.running.clone();
+        let key = running.next.fetch_add(1, Ordering::Relaxed);
+        let mut jobs = running.jobs.lock().unwrap_or_else(|p| p.into_inner());
+        jobs.insert(key, (what, Instant::now()));
+        drop(jobs);
+        Some(JobSlot {
+            _permit: permit,
+            running,
+            key,
+            arrived: std::time::Instant::now(),
+        })
+    }
+
+    /// Jobs holding a slot now (the stream's included), whether named or not.
+    pub fn jobs_running(&self) -> usize {
+        self.inner.config.limits.max_concurrency - self.inner.slots.available_permits()
+    }
+
+    /// The named jobs still running, each as `what (running N s)`, oldest first.
+    pub fn running_jobs(&self) -> Vec<String> {
+        let jobs = self
+            .inner
+            .running
+            .jobs
+            .lock()
+            .unwrap_or_else(|p| p.into_inner());
+        jobs.values()
+            .map(|(what, since)| format!("{what} (running {:.1} s)", since.elapsed().as_secs_f64()))
+            .collect()
     }
 
     /// The compute threads for small jobs.

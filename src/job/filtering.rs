@@ -6,14 +6,15 @@
 //! from [`OVERLAP_MIN_LINES`] on), with the same bytes as on one; a smoothed batch keeps
 //! every step for the backward pass ([`super::smooth`]). The stream is [`super::stream`].
 
+use super::budget::{self, BatchShape, Held};
 use super::plain::{stats, Lines, Predictions, Shape};
 use super::setup::{setup, Guard, Setup};
 use crate::config::Limits;
 use crate::filter::run::Run;
 use crate::job::write::Writer;
-use crate::job::Pieces;
+use crate::job::{BatchAnswer, PieceSink, Pieces};
 use crate::model::Stop;
-use crate::problem::Problem;
+use crate::problem::{Problem, ProblemKind};
 use crate::request::envelope::{self, Envelope};
 use crate::request::reading::ReadingParser;
 use serde_json::value::RawValue;
@@ -61,6 +62,22 @@ pub(super) fn run_batch(
     run_batch_overlapping(body, limits, stop, smooth, OVERLAP_MIN_LINES)
 }
 
+/// `POST /v1/estimate`, its answer sent to `sink` as it is written when it is large
+/// (see [`super::estimate_streaming`]).
+pub(super) fn run_batch_streaming(
+    body: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+    stream_from: u64,
+    sink: &mut dyn PieceSink,
+) -> Result<BatchAnswer, Problem> {
+    let out = Streaming {
+        from: stream_from,
+        sink,
+    };
+    run_batch_to(body, limits, stop, false, OVERLAP_MIN_LINES, Some(out))
+}
+
 /// [`run_batch`], writing on a second thread from `overlap_from` lines on.
 fn run_batch_overlapping(
     body: &[u8],
@@ -69,6 +86,52 @@ fn run_batch_overlapping(
     smooth: bool,
     overlap_from: usize,
 ) -> Result<Pieces, Problem> {
+    match run_batch_to(body, limits, stop, smooth, overlap_from, None)? {
+        BatchAnswer::Pieces(p) => Ok(p),
+        BatchAnswer::Sent { .. } => Err(Problem::new(
+            ProblemKind::Internal,
+            "an answer was streamed without a sink",
+        )),
+    }
+}
+
+/// Where a large answer may be streamed, and from which estimated size on.
+struct Streaming<'s> {
+    from: u64,
+    sink: &'s mut dyn PieceSink,
+}
+
+/// A sink that puts the answer's head before its first piece and notes whether anything
+/// has gone: until then a problem is still an ordinary error answer.
+struct Headed<'s> {
+    head: Option<Vec<u8>>,
+    sink: &'s mut dyn PieceSink,
+    sent: bool,
+}
+
+impl PieceSink for Headed<'_> {
+    fn send(&mut self, piece: Vec<u8>) -> bool {
+        let piece = match self.head.take() {
+            Some(mut head) => {
+                head.extend_from_slice(&piece);
+                head
+            }
+            None => piece,
+        };
+        self.sent = true;
+        self.sink.send(piece)
+    }
+}
+
+/// [`run_batch_overlapping`], streaming the answer to `out` when it qualifies.
+fn run_batch_to(
+    body: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+    smooth: bool,
+    overlap_from: usize,
+    out: Option<Streaming<'_>>,
+) -> Result<BatchAnswer, Problem> {
     let env = envelope::envelope(body)?;
     let Setup {
         model,
@@ -78,6 +141,14 @@ fn run_batch_overlapping(
         zone,
     } = setup(&env, limits)?;
     let lines = measurement_list(&env, limits)?;
+    let overlap = !smooth && lines.len() >= overlap_from;
+    let answer_bytes = lines.len() as u64 * budget::estimate_line_bytes(&model, &output);
+    let out = out.filter(|o| overlap && answer_bytes >= o.from);
+    let mut need = shape(&model, &cfg, &output, &lines, body, smooth, overlap);
+    if out.is_some() {
+        need.answer = Held::Streamed;
+    }
+    budget::within(budget::batch_bytes(&need), limits)?;
     let writer = Writer::new(&model, prior.mode, output.clone());
     let mut run = Run::new(model.clone(), cfg, prior, smooth)?;
     let ctx = Lines {
@@ -96,20 +167,45 @@ fn run_batch_overlapping(
         next: 0,
         buf: Vec::new(),
     };
-    let overlap = !smooth && lines.len() >= overlap_from;
-    let mut head = Vec::with_capacity(if overlap {
-        256
-    } else {
-        256 + lines.len() * ctx.shape.guess_bytes()
-    });
+    // The answer grows as it is written: nothing is reserved for lines not yet run.
+    let mut head = Vec::with_capacity(256);
     head.push(b'{');
     writer.states(&mut head);
     head.extend_from_slice(b",\"estimates\":[");
+    if let Some(out) = out {
+        let mut headed = Headed {
+            head: Some(head),
+            sink: out.sink,
+            sent: false,
+        };
+        let ran = ctx
+            .filter_overlapped(&mut run, &mut preds, Some(&mut headed))
+            .and_then(|_| preds.write(&run, &writer, None));
+        let mut tail = headed.head.take().unwrap_or_default();
+        let failed = match ran {
+            Err(p) if !headed.sent => return Err(p),
+            Err(p) => {
+                tail.extend_from_slice(b"],\"error\":");
+                tail.extend_from_slice(&public_problem(&p).to_json());
+                tail.push(b'}');
+                Some(p)
+            }
+            Ok(()) => {
+                finish(&mut tail, &writer, &run, &output, &preds);
+                None
+            }
+        };
+        headed.send(tail);
+        return Ok(BatchAnswer::Sent {
+            stats: stats(&run),
+            failed,
+        });
+    }
     let mut parts = Vec::new();
     if smooth {
         ctx.smooth(&mut run, &mut preds, &mut head)?;
     } else if overlap {
-        parts = ctx.filter_overlapped(&mut run, &mut preds)?;
+        parts = ctx.filter_overlapped(&mut run, &mut preds, None)?;
     } else {
         ctx.filter_plain(&mut run, &mut preds, &mut head)?;
     }
@@ -120,6 +216,22 @@ fn run_batch_overlapping(
         parts.insert(0, head);
         Vec::with_capacity(1024 + preds.buf.len())
     };
+    finish(&mut tail, &writer, &run, &output, &preds);
+    parts.push(tail);
+    Ok(BatchAnswer::Pieces(Pieces {
+        parts,
+        stats: stats(&run),
+    }))
+}
+
+/// The end of a batch answer after its estimates: predictions, posterior, summary.
+fn finish(
+    tail: &mut Vec<u8>,
+    writer: &Writer,
+    run: &Run,
+    output: &crate::model::OutputConfig,
+    preds: &Predictions<'_>,
+) {
     tail.push(b']');
     if !output.at.is_empty() {
         tail.extend_from_slice(b",\"predictions\":[");
@@ -127,15 +239,54 @@ fn run_batch_overlapping(
         tail.push(b']');
     }
     tail.push(b',');
-    writer.posterior(&mut tail, &run);
+    writer.posterior(tail, run);
     tail.push(b',');
-    writer.summary(&mut tail, &run);
+    writer.summary(tail, run);
     tail.push(b'}');
-    parts.push(tail);
-    Ok(Pieces {
-        parts,
-        stats: stats(&run),
-    })
+}
+
+/// A problem as a client may read it: the words of an internal error stay in the log.
+fn public_problem(p: &Problem) -> Problem {
+    if p.status >= 500 && p.type_uri == Problem::new(ProblemKind::Internal, "").type_uri {
+        Problem::new(
+            ProblemKind::Internal,
+            "an internal error occurred; it has been logged with this request's id",
+        )
+    } else {
+        p.clone()
+    }
+}
+
+/// The shape the memory estimate reads.
+fn shape<'a>(
+    model: &'a crate::model::Model,
+    cfg: &'a crate::model::FilterConfig,
+    output: &'a crate::model::OutputConfig,
+    lines: &[&str],
+    body: &[u8],
+    smooth: bool,
+    overlap: bool,
+) -> BatchShape<'a> {
+    BatchShape {
+        model,
+        cfg,
+        output,
+        lines: lines.len(),
+        body: body.len(),
+        smooth,
+        answer: if overlap { Held::Pieces } else { Held::Buffer },
+    }
+}
+
+/// The memory a batch request would need at its peak, as [`run_batch`] estimates it
+/// before running (for tests and operators sizing `max_request_bytes`).
+pub(super) fn batch_need(body: &[u8], limits: &Limits, smooth: bool) -> Result<u64, Problem> {
+    let env = envelope::envelope(body)?;
+    let s = setup(&env, limits)?;
+    let lines = measurement_list(&env, limits)?;
+    let overlap = !smooth && lines.len() >= OVERLAP_MIN_LINES;
+    let shape = shape(&s.model, &s.cfg, &s.output, &lines, body, smooth, overlap);
+    Ok(budget::batch_bytes(&shape))
 }
 
 #[cfg(test)]

@@ -14,6 +14,7 @@
 //! diagnostics and dynamics; nothing below imports this module.
 
 use crate::config::Limits;
+pub mod budget;
 mod check;
 mod failure;
 mod filtering;
@@ -103,6 +104,42 @@ pub fn estimate_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Piec
     filtering::run_batch(body, limits, stop, false)
 }
 
+/// Where a streamed answer's pieces go, in order.
+pub trait PieceSink: Send {
+    /// Hand over the next piece; false when nobody reads the answer any more.
+    fn send(&mut self, piece: Vec<u8>) -> bool;
+}
+
+/// A batch answer: whole, or already handed to a [`PieceSink`] piece by piece.
+#[derive(Debug)]
+pub enum BatchAnswer {
+    /// Nothing was sent: the whole answer, to be sent with its length.
+    Pieces(Pieces),
+    /// Everything was sent. `failed` is the problem that ended the answer after its head
+    /// had gone: the answer's last member is then `"error": problem` (in place of
+    /// `posterior` and `summary`), so the document stays valid JSON.
+    Sent {
+        /// Work counters.
+        stats: RunStats,
+        /// The problem written as the answer's last member, if the run failed.
+        failed: Option<Problem>,
+    },
+}
+
+/// [`estimate_pieces`], sending the answer to `sink` as it is written when it is run on
+/// three threads (4096 lines or more) and its size is estimated at `stream_from` bytes or
+/// more: memory then holds a few blocks instead of the whole answer. A problem found
+/// before the first piece is sent is returned as usual.
+pub fn estimate_streaming(
+    body: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+    stream_from: u64,
+    sink: &mut dyn PieceSink,
+) -> Result<BatchAnswer, Problem> {
+    filtering::run_batch_streaming(body, limits, stop, stream_from, sink)
+}
+
 /// `POST /v1/smooth`: same input as estimate, smoothed estimates out.
 pub fn smooth(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     smooth_pieces(body, limits, stop).map(Pieces::into_done)
@@ -113,8 +150,23 @@ pub fn smooth_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Pieces
     filtering::run_batch(body, limits, stop, true)
 }
 
+/// The memory a batch request (`smooth` for `/v1/smooth`) would need at its peak, bytes:
+/// the estimate checked against `limits.max_request_bytes` before any work starts.
+pub fn batch_memory(body: &[u8], limits: &Limits, smooth: bool) -> Result<u64, Problem> {
+    filtering::batch_need(body, limits, smooth)
+}
+
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+    simulate_pieces(body, limits, stop).map(Pieces::into_done)
+}
+
+/// [`simulate`] with the answer left in pieces (what the server sends).
+pub fn simulate_pieces(
+    body: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+) -> Result<Pieces, Problem> {
     simulate::simulate(body, limits, stop)
 }
 

@@ -6,6 +6,7 @@ use super::plain::{Lines, Predictions, Shape, Source};
 use crate::filter::run::Run;
 use crate::job::records::Records;
 use crate::job::write::Writer;
+use crate::job::PieceSink;
 use crate::model::Reading;
 use crate::problem::{Problem, ProblemKind};
 use std::sync::mpsc;
@@ -23,10 +24,15 @@ impl Lines<'_> {
     /// channel with emptied blocks coming back, so nothing is allocated per line. Nothing
     /// is answered before the whole run has succeeded: on a failure the pieces are
     /// dropped, and the first failing line is the one reported, as on one thread.
+    ///
+    /// With `out`, each piece goes there as soon as it is written (and none comes back);
+    /// when `out` refuses one (nobody reads the answer any more), the writing stops and
+    /// the run fails at its next hand-over.
     pub(super) fn filter_overlapped(
         &self,
         run: &mut Run,
         preds: &mut Predictions<'_>,
+        out: Option<&mut dyn PieceSink>,
     ) -> Result<Vec<Vec<u8>>, Problem> {
         let shape = self.shape;
         let writer = self.writer;
@@ -38,7 +44,9 @@ impl Lines<'_> {
             }
             let written = std::thread::Builder::new()
                 .name("tacit-writer".into())
-                .spawn_scoped(s, move || write_blocks(writer, shape, full_rx, empty_tx))
+                .spawn_scoped(s, move || {
+                    write_blocks(writer, shape, full_rx, empty_tx, out)
+                })
                 .map_err(|e| thread_failed("writing", e))?;
             let (parsed_tx, parsed_rx) = mpsc::sync_channel::<ReadingBlock>(BLOCKS_IN_FLIGHT);
             let (spent_tx, spent_rx) = mpsc::channel::<ReadingBlock>();
@@ -112,15 +120,27 @@ fn write_blocks(
     shape: Shape,
     full: mpsc::Receiver<Records>,
     empty: mpsc::Sender<Records>,
+    mut out: Option<&mut dyn PieceSink>,
 ) -> Vec<Vec<u8>> {
     let mut parts = Vec::new();
     let mut per_step = shape.guess_bytes();
+    let mut first = true;
     for mut block in full {
         let mut buf = Vec::with_capacity(64 + per_step * block.len());
-        block.write(writer, &mut buf, parts.is_empty());
+        block.write(writer, &mut buf, first);
+        first = false;
         // A quarter more than the largest seen: the numbers' lengths vary a little.
         per_step = per_step.max(buf.len().div_ceil(block.len()) * 5 / 4);
-        parts.push(buf);
+        match out.as_mut() {
+            Some(o) => {
+                if !o.send(buf) {
+                    // Nobody reads the answer: stop; the filtering thread's next
+                    // hand-over fails.
+                    return parts;
+                }
+            }
+            None => parts.push(buf),
+        }
         block.clear();
         // The filtering thread may have stopped (a failed line); then the block is dropped.
         let _ = empty.send(block);

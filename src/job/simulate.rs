@@ -9,9 +9,10 @@
 //! readings made outliers (`injected`) and left out (`dropped`): the marks stay off the
 //! measurement lines, which estimate refuses unknown fields on.
 
+use super::budget;
 use crate::config::Limits;
 use crate::job::write::{num, Writer};
-use crate::job::{Done, RunStats};
+use crate::job::{Pieces, RunStats};
 use crate::model::{Dynamics, LinearTime, Model, Prior};
 use crate::model::{Halt, Instant, Stop, TimeMode, Zone};
 use crate::problem::{Problem, ProblemKind};
@@ -290,8 +291,8 @@ fn grid_step(model: &Model) -> Option<f64> {
     }
 }
 
-/// `POST /v1/simulate`.
-pub(super) fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+/// `POST /v1/simulate`, the answer in pieces.
+pub(super) fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Pieces, Problem> {
     let env = envelope::envelope(body)?;
     if env.readings.is_some() {
         return Err(Problem::field(
@@ -339,12 +340,16 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done
         }
     }
     refuse_long_gaps(&model, &prior, &times, limits)?;
-    let n = model.n();
+    budget::within(
+        budget::simulate_bytes(&model, times.len(), inputs.len(), body.len()),
+        limits,
+    )?;
     let mut out = Json {
         model: &model,
         writer: Writer::new(&model, mode, Default::default()),
-        truth: Vec::with_capacity(times.len() * 32 * (n + 1)),
-        meas: Vec::with_capacity(times.len() * 48),
+        // Grown as lines are made: nothing is reserved for times not yet simulated.
+        truth: Vec::new(),
+        meas: Vec::new(),
         lines: 0,
     };
     let plan = Plan {
@@ -363,18 +368,21 @@ pub(super) fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done
         lines,
         ..
     } = out;
-    let mut buf = Vec::with_capacity(truth.len() + meas.len() + 128);
-    buf.push(b'{');
-    writer.states(&mut buf);
-    buf.extend_from_slice(b",\"seed\":");
-    buf.extend_from_slice(itoa::Buffer::new().format(seed).as_bytes());
-    buf.extend_from_slice(b",\"truth\":[");
-    buf.extend_from_slice(&truth);
-    buf.extend_from_slice(b"],\"measurements\":[");
-    buf.extend_from_slice(&meas);
-    buf.extend_from_slice(b"]}");
-    Ok(Done {
-        body: buf,
+    // The two lists go out as they are, between the pieces around them: no copy.
+    let mut head = Vec::with_capacity(128);
+    head.push(b'{');
+    writer.states(&mut head);
+    head.extend_from_slice(b",\"seed\":");
+    head.extend_from_slice(itoa::Buffer::new().format(seed).as_bytes());
+    head.extend_from_slice(b",\"truth\":[");
+    Ok(Pieces {
+        parts: vec![
+            head,
+            truth,
+            b"],\"measurements\":[".to_vec(),
+            meas,
+            b"]}".to_vec(),
+        ],
         stats: RunStats {
             filter: "",
             steps: lines,

@@ -20,8 +20,9 @@ impl Lines<'_> {
         buf: &mut Vec<u8>,
     ) -> Result<(), Problem> {
         let mut reading = Reading::default();
-        let mut stored: Vec<Stored> = Vec::with_capacity(self.lines.len());
-        let mut times = Vec::with_capacity(self.lines.len());
+        // Grown as lines go through: a line that fails early has not earned room for all.
+        let mut stored: Vec<Stored> = Vec::new();
+        let mut times = Vec::new();
         for (i, raw) in self.lines.iter().enumerate() {
             self.guard.check(i)?;
             self.parser

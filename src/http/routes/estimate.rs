@@ -2,8 +2,10 @@
 
 use super::route::{mount, Route};
 use crate::http::extract::JsonBody;
-use crate::http::jobs::run_job_sized;
+use crate::http::jobs::run_job_in;
+use crate::http::lane::SMALL_BODY;
 use crate::http::state::AppState;
+use crate::http::streamed::run_streaming_job;
 use crate::job;
 use axum::extract::State;
 use axum::response::Response;
@@ -31,15 +33,24 @@ pub fn router() -> Router<AppState> {
     mount(ROUTES)
 }
 
-async fn estimate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job_sized(&state, "/v1/estimate", body.len(), move |limits, stop| {
-        job::estimate_pieces(&body, limits, stop)
+async fn estimate(State(state): State<AppState>, JsonBody(body, slot): JsonBody) -> Response {
+    // A body on the compute lane is too small to need streaming (and the budget has
+    // counted its whole answer); a larger one may send its answer as it is written.
+    if body.len() <= SMALL_BODY {
+        return run_job_in(&state, slot, body.len(), move |limits, stop| {
+            job::estimate_pieces(&body, limits, stop)
+        })
+        .await;
+    }
+    let from = state.config().stream_answer_bytes;
+    run_streaming_job(&state, slot, move |limits, stop, sink| {
+        job::estimate_streaming(&body, limits, stop, from, sink)
     })
     .await
 }
 
-async fn smooth(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job_sized(&state, "/v1/smooth", body.len(), move |limits, stop| {
+async fn smooth(State(state): State<AppState>, JsonBody(body, slot): JsonBody) -> Response {
+    run_job_in(&state, slot, body.len(), move |limits, stop| {
         job::smooth_pieces(&body, limits, stop)
     })
     .await

@@ -3,7 +3,7 @@
 
 use super::route::{mount, Route};
 use crate::http::extract::JsonBody;
-use crate::http::jobs::run_job_sized;
+use crate::http::jobs::run_job_in;
 use crate::http::state::AppState;
 use crate::job;
 use axum::extract::State;
@@ -32,18 +32,18 @@ pub fn router() -> Router<AppState> {
     mount(ROUTES)
 }
 
-async fn check(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
+async fn check(State(state): State<AppState>, JsonBody(body, slot): JsonBody) -> Response {
     // Checking compiles formulas and ranks a matrix: small but not free, so it too runs
     // off the executor and under a job slot.
-    run_job_sized(&state, "/v1/check", body.len(), move |limits, stop| {
+    run_job_in(&state, slot, body.len(), move |limits, stop| {
         job::check(&body, limits, stop)
     })
     .await
 }
 
-async fn simulate(State(state): State<AppState>, JsonBody(body): JsonBody) -> Response {
-    run_job_sized(&state, "/v1/simulate", body.len(), move |limits, stop| {
-        job::simulate(&body, limits, stop)
+async fn simulate(State(state): State<AppState>, JsonBody(body, slot): JsonBody) -> Response {
+    run_job_in(&state, slot, body.len(), move |limits, stop| {
+        job::simulate_pieces(&body, limits, stop)
     })
     .await
 }

@@ -1,0 +1,219 @@
+//! How much memory a request will need, estimated from its shape once it has been parsed
+//! and checked, before anything is reserved or run; a request over the per-request
+//! budget (`Limits::max_request_bytes`) is refused with a plain 413 instead of being
+//! allowed to take the process down.
+//!
+//! The estimates are upper bounds of what is held at once: the body, what the run keeps
+//! per line (the smoother's stored steps), the ensemble's workspace, and the answer's
+//! bytes, counting each number at its longest shortest-round-trip form (24 bytes) plus a
+//! separator, and a buffer that grows by doubling at twice its contents. The test
+//! `the_memory_estimate_bounds_what_a_request_allocates` holds them to the bytes a
+//! counting allocator measures.
+
+use crate::config::Limits;
+use crate::model::{CovarianceOutput, FilterConfig, Method, Model, OutputConfig};
+use crate::problem::{Problem, ProblemKind};
+
+/// Bytes of one number in an answer: the longest shortest-round-trip `f64`
+/// (`-1.2345678901234567e-100`, 24 bytes) and a comma.
+const NUM: u64 = 25;
+
+/// Bytes of one time in an answer: a timestamp with nanoseconds and an offset, quoted.
+const TIME: u64 = 40;
+
+/// Bytes of one `f64`.
+const F64: u64 = 8;
+
+/// What one batch request (`/v1/estimate`, `/v1/smooth`) asks for.
+#[derive(Debug, Clone, Copy)]
+pub struct BatchShape<'a> {
+    /// The checked model.
+    pub model: &'a Model,
+    /// The filter settings.
+    pub cfg: &'a FilterConfig,
+    /// The response options.
+    pub output: &'a OutputConfig,
+    /// Measurement lines.
+    pub lines: usize,
+    /// Bytes of the request body (held while the request runs).
+    pub body: usize,
+    /// Whether every step is kept for the backward pass.
+    pub smooth: bool,
+    /// How the answer is held.
+    pub answer: Held,
+}
+
+/// How a batch answer is held while it is written.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Held {
+    /// One buffer growing by doubling: up to twice its contents.
+    Buffer,
+    /// Pieces of one block each, sized a quarter over the bytes seen per line.
+    Pieces,
+    /// Sent as it is written: only the pieces in flight are held.
+    Streamed,
+}
+
+/// `"name":` as the writer puts a key.
+fn key(name: &str) -> u64 {
+    name.len() as u64 + 3
+}
+
+/// `{"a":x,"b":y}` over `names`.
+fn object(names: impl Iterator<Item = u64>) -> u64 {
+    2 + names.map(|k| k + NUM).sum::<u64>()
+}
+
+/// Upper bound of one estimate object's bytes, with every sensor's innovations when they
+/// are asked for (a line reads at most every sensor once).
+pub fn estimate_line_bytes(model: &Model, output: &OutputConfig) -> u64 {
+    let n = model.n() as u64;
+    let means = object(model.states.iter().map(|s| key(s)));
+    let mut b = 8 + TIME + 8 + means;
+    if output.covariance != CovarianceOutput::None {
+        b += 7 + means;
+    }
+    if output.covariance == CovarianceOutput::Full {
+        b += 15 + n * (n * NUM + 3);
+    }
+    if output.innovations {
+        b += 17;
+        for s in &model.sensors {
+            let list = 2 + s.dim as u64 * NUM;
+            b += key(&s.name) + 15 + list + 19 + list + 7 + NUM + 18;
+        }
+    }
+    b
+}
+
+/// The ensemble filter's members and workspace (members × states, members², readings ×
+/// members), or a Gaussian filter's covariance-sized buffers; per request, not per line.
+fn filter_bytes(model: &Model, cfg: &FilterConfig) -> u64 {
+    let n = model.n() as u64;
+    let m: u64 = model.sensors.iter().map(|s| s.dim as u64).sum();
+    let gaussian = F64 * (24 * n * n + 8 * m * m + 16 * n * m + 64 * n);
+    match cfg.method {
+        Method::Enkf => {
+            let e = cfg.ensemble.members as u64;
+            gaussian + F64 * (4 * e * e + 6 * e * n + 4 * e * m + 8 * e)
+        }
+        _ => gaussian,
+    }
+}
+
+/// Bytes a batch request will hold at its peak.
+pub fn batch_bytes(s: &BatchShape<'_>) -> u64 {
+    let n = s.model.n() as u64;
+    let lines = s.lines as u64;
+    let line = estimate_line_bytes(s.model, s.output);
+    // The body, and the list of each line's text (a slice is 16 bytes).
+    let mut b = s.body as u64 + 16 * lines;
+    b += filter_bytes(s.model, s.cfg);
+    // Blocks of records between the filtering and writing threads (four of at most half
+    // a megabyte of numbers, or 16 steps of a large model).
+    let block = block_steps(n).min(lines.max(1));
+    b += 4 * F64 * block * (1 + n + n * n);
+    // Predictions at `output.at`, gathered apart.
+    b += 2 * s.output.at.len() as u64 * line;
+    if s.smooth {
+        // Per stored step: the predicted mean, covariance and cross covariance, and the
+        // filtered mean and covariance (five heap blocks), plus the line's innovation text.
+        b += lines * (F64 * (3 * n * n + 2 * n) + 5 * 32 + 96);
+        if s.output.innovations {
+            b += lines * (line - estimate_line_bytes_without_innovations(s.model, s.output));
+        }
+    }
+    b += match s.answer {
+        Held::Buffer => 2 * lines * line,
+        Held::Pieces => lines * line * 5 / 4 + 2 * line,
+        // Pieces in the channels towards the socket and the one being written.
+        Held::Streamed => 8 * block * line * 5 / 4,
+    };
+    b
+}
+
+/// Steps in one block of records for `n` states, as `Records::block_steps` without
+/// reading rows (a lower bound on the rows only makes the block larger).
+fn block_steps(n: u64) -> u64 {
+    (65_536 / (1 + n + n * n)).clamp(16, 4096)
+}
+
+fn estimate_line_bytes_without_innovations(model: &Model, output: &OutputConfig) -> u64 {
+    let plain = OutputConfig {
+        innovations: false,
+        ..output.clone()
+    };
+    estimate_line_bytes(model, &plain)
+}
+
+/// Bytes a `/v1/simulate` request will hold at its peak: `times` sampling times and
+/// `changes` input changes (each a line of truth and one of measurements), the parsed
+/// times, and the body.
+pub fn simulate_bytes(model: &Model, times: usize, changes: usize, body: usize) -> u64 {
+    let lines = (times + changes) as u64;
+    let states = object(model.states.iter().map(|s| key(s)));
+    let marks: u64 = model.sensors.iter().map(|s| 2 * (key(&s.name) + 10)).sum();
+    let truth = 6 + TIME + 10 + states + marks + 2;
+    let values: u64 = model
+        .sensors
+        .iter()
+        .map(|s| key(&s.name) + 2 + s.dim as u64 * NUM)
+        .sum();
+    let inputs = object(model.inputs.iter().map(|s| key(s)));
+    let meas = 6 + TIME + 11 + values + 10 + inputs + 2;
+    // Two answer lists growing by doubling; each time parsed as a JSON value (32 bytes)
+    // and kept as an instant (32 bytes).
+    body as u64 + 2 * lines * (truth + meas) + 64 * times as u64
+}
+
+/// Refuse `need` bytes over the budget, with both in the detail.
+pub fn within(need: u64, limits: &Limits) -> Result<(), Problem> {
+    if need <= limits.max_request_bytes {
+        return Ok(());
+    }
+    Err(Problem::new(
+        ProblemKind::OverMemoryBudget,
+        format!(
+            "this request needs about {} of memory; the limit is {} per request \
+             (max_request_bytes in GET /v1/info); send fewer lines and resume from the \
+             posterior, ask for less output, or use the stream endpoint",
+            size(need),
+            size(limits.max_request_bytes)
+        ),
+    ))
+}
+
+/// Bytes for people: `25.4 GB`, `512 MB`, `900 kB`, `12 bytes` (powers of 1000).
+pub fn size(b: u64) -> String {
+    const UNITS: [(u64, &str); 4] = [
+        (1_000_000_000_000, "TB"),
+        (1_000_000_000, "GB"),
+        (1_000_000, "MB"),
+        (1_000, "kB"),
+    ];
+    for (unit, name) in UNITS {
+        if b >= unit {
+            let x = b as f64 / unit as f64;
+            return if x < 10.0 {
+                format!("{x:.1} {name}")
+            } else {
+                format!("{x:.0} {name}")
+            };
+        }
+    }
+    format!("{b} bytes")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sizes_read_in_powers_of_a_thousand() {
+        // SI prefixes (common practice): 1 GB = 10^9 bytes.
+        assert_eq!(size(25_431_808_256), "25 GB");
+        assert_eq!(size(6_170_000_000), "6.2 GB");
+        assert_eq!(size(999), "999 bytes");
+        assert_eq!(size(1_500), "1.5 kB");
+    }
+}
