@@ -14,6 +14,7 @@
 //! diagnostics and dynamics; nothing below imports this module.
 
 use crate::config::Limits;
+mod calibrate;
 mod check;
 mod failure;
 mod filtering;
@@ -113,6 +114,18 @@ pub fn smooth(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Done,
 /// [`smooth`] with the answer left in pieces.
 pub fn smooth_pieces(body: &[u8], limits: &Limits, cancel: &AtomicBool) -> Result<Pieces, Problem> {
     filtering::run_batch(body, limits, cancel, true)
+}
+
+/// `POST /v1/calibrate`: an estimate request plus `free` (JSON Pointers of the numbers to
+/// fit), `likelihood` and `search`; the fitted values with their uncertainty and the
+/// request with them substituted. `progress` hears of every filter run.
+pub fn calibrate(
+    body: &[u8],
+    limits: &Limits,
+    cancel: &AtomicBool,
+    progress: &(dyn Fn(u64, Option<f64>) + Sync),
+) -> Result<Done, Problem> {
+    calibrate::calibrate(body, limits, cancel, progress)
 }
 
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
