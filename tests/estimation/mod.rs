@@ -4,6 +4,7 @@
 
 mod affine_sensor;
 mod bounds;
+mod calibrate;
 mod edges;
 mod errors;
 mod properties;
