@@ -125,6 +125,12 @@ pub(crate) fn errors(h: &DMatrix<f64>, maps: &[Map], u: &[f64]) -> Errors {
             }
         }
     }
+    // The sums above run in different orders for (a, b) and (b, a): make it symmetric.
+    for a in 0..n {
+        for b in 0..a {
+            cov_u[(a, b)] = cov_u[(b, a)];
+        }
+    }
     let spread = (0..n)
         .map(|i| {
             if flat[i] || !(cov_u[(i, i)] > 0.0) {
