@@ -320,7 +320,7 @@ pub(crate) fn settings(
     let mut s = Settings::default();
     let mut errors = Vec::new();
     let fields = |v: Option<&Value>, name: &str, known: &[&str], errors: &mut Vec<FieldError>| {
-        let Some(v) = v else { return None };
+        let v = v?;
         let Some(o) = v.as_object() else {
             errors.push(FieldError::new(format!("/{name}"), "expected an object"));
             return None;
