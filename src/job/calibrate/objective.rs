@@ -101,10 +101,17 @@ impl<'a> Objective<'a> {
                 .map_err(|e| line_problem(e.under(&line_pointer(i))))?;
             readings.push(r);
         }
-        let mut head = req.clone();
-        if let Some(o) = head.as_object_mut() {
-            o.remove("measurements");
-        }
+        // Everything but the readings (which can be millions of lines), once.
+        let head = Value::Object(
+            req.as_object()
+                .map(|o| {
+                    o.iter()
+                        .filter(|(k, _)| k.as_str() != "measurements")
+                        .map(|(k, v)| (k.clone(), v.clone()))
+                        .collect()
+                })
+                .unwrap_or_default(),
+        );
         Ok(Self {
             head,
             frees,
