@@ -125,3 +125,24 @@ fn the_ensemble_objective_is_deterministic_with_its_seed_fixed() {
     assert_eq!(a["free"], b["free"]);
     assert_eq!(a["log_likelihood"], b["log_likelihood"]);
 }
+
+#[test]
+fn the_compute_deadline_stops_a_calibration_with_its_problem() {
+    use std::sync::atomic::AtomicBool;
+    let limits = tacit::config::Limits {
+        deadline: Some(std::time::Duration::from_nanos(1)),
+        ..Default::default()
+    };
+    let body = serde_json::to_vec(&cart_request(9, 2000, 0.5, 0.2)).unwrap();
+    let p = tacit::job::calibrate(&body, &limits, &AtomicBool::new(false), &|_, _| {}).unwrap_err();
+    assert!(p.type_uri.ends_with("deadline-exceeded"), "{p:?}");
+    // A cancelled request stops the same way.
+    let p = tacit::job::calibrate(
+        &body,
+        &Default::default(),
+        &AtomicBool::new(true),
+        &|_, _| {},
+    )
+    .unwrap_err();
+    assert!(p.detail.contains("cancelled"), "{p:?}");
+}

@@ -131,7 +131,13 @@ impl<'a> Objective<'a> {
     pub(crate) fn substituted(&self, base: &Value, x: &[f64], gated: bool) -> Option<Value> {
         let mut v = base.clone();
         for (f, &xi) in self.frees.iter().zip(x) {
-            *v.pointer_mut(&f.pointer)? = Value::from(serde_json::Number::from_f64(xi)?);
+            let n = Value::from(serde_json::Number::from_f64(xi)?);
+            if let Some(m) = &f.mirror {
+                if let Some(slot) = v.pointer_mut(m) {
+                    *slot = n.clone();
+                }
+            }
+            *v.pointer_mut(&f.pointer)? = n;
         }
         if !gated {
             if let Some(filter) = v.get_mut("filter").and_then(Value::as_object_mut) {

@@ -74,6 +74,9 @@ pub(crate) struct Free {
     pub map: Map,
     /// The request's value.
     pub start: f64,
+    /// For an entry off the diagonal of a covariance matrix, its mirror entry, which
+    /// gets the same value so that the matrix stays symmetric.
+    pub mirror: Option<String>,
 }
 
 /// The `likelihood` and `search` settings.
@@ -305,7 +308,26 @@ fn one(pointer: &str, bounds: &Value, req: &Value, at: &str) -> Result<Free, Fie
         pointer: pointer.to_string(),
         map,
         start,
+        mirror: mirror(pointer),
     })
+}
+
+/// The mirror of an entry off the diagonal of a covariance or density matrix
+/// (`…/covariance/0/1` → `…/covariance/1/0`).
+fn mirror(pointer: &str) -> Option<String> {
+    let segs: Vec<&str> = pointer.split('/').skip(1).collect();
+    let matrix = match segs.as_slice() {
+        ["model", "process_noise", "density_matrix" | "covariance", ..]
+        | ["model", "sensors", _, "covariance", ..]
+        | ["prior", "covariance", ..] => true,
+        _ => false,
+    };
+    match segs.as_slice() {
+        [head @ .., i, j] if matrix && i != j && head.len() >= 2 => {
+            Some(format!("/{}/{j}/{i}", head.join("/")))
+        }
+        _ => None,
+    }
 }
 
 fn fmt_bound(b: Option<f64>) -> String {
@@ -436,6 +458,12 @@ mod tests {
             assert_eq!(e.errors[0].pointer, p);
             assert!(e.errors[0].detail.contains(what), "{}", e.errors[0].detail);
         }
+        assert_eq!(
+            mirror("/model/process_noise/covariance/0/1").as_deref(),
+            Some("/model/process_noise/covariance/1/0")
+        );
+        assert_eq!(mirror("/prior/covariance/1/1"), None);
+        assert_eq!(mirror("/model/sensors/gauge/std"), None);
         let e = free(&json!({"/model/sensors/gauge/std": {"min": 3}}), &req).unwrap_err();
         assert!(e.errors[0].detail.contains("inside its bounds"));
     }
