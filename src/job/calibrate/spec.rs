@@ -316,12 +316,16 @@ fn one(pointer: &str, bounds: &Value, req: &Value, at: &str) -> Result<Free, Fie
 /// (`…/covariance/0/1` → `…/covariance/1/0`).
 fn mirror(pointer: &str) -> Option<String> {
     let segs: Vec<&str> = pointer.split('/').skip(1).collect();
-    let matrix = match segs.as_slice() {
-        ["model", "process_noise", "density_matrix" | "covariance", ..]
-        | ["model", "sensors", _, "covariance", ..]
-        | ["prior", "covariance", ..] => true,
-        _ => false,
-    };
+    let matrix = matches!(
+        segs.as_slice(),
+        [
+            "model",
+            "process_noise",
+            "density_matrix" | "covariance",
+            ..
+        ] | ["model", "sensors", _, "covariance", ..]
+            | ["prior", "covariance", ..]
+    );
     match segs.as_slice() {
         [head @ .., i, j] if matrix && i != j && head.len() >= 2 => {
             Some(format!("/{}/{j}/{i}", head.join("/")))
