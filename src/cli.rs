@@ -33,6 +33,10 @@ pub enum Command {
     Check(FileArgs),
     /// Simulate truth and readings (JSON as for POST /v1/simulate).
     Simulate(FileArgs),
+    /// Fit noise settings and parameters to the readings of a request (JSON as for POST
+    /// /v1/calibrate) and print the answer; a progress bar on standard error when it is a
+    /// terminal.
+    Calibrate(FileArgs),
     /// Run the invented demo plants (crane, water tower, kiln) end to end against the
     /// service started in-process on a free loopback port, and print what was recovered.
     Demo(DemoArgs),
@@ -266,8 +270,44 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
             let stop = Stop::within(limits.deadline);
             print_body(&job::simulate(&body, &limits, &stop)?.body)
         }
+        Command::Calibrate(a) => calibrate(&a),
         Command::Demo(a) => demo(&a),
     }
+}
+
+/// `tacit calibrate FILE`: the job with a spinner showing the run count and the best
+/// log-likelihood so far, on standard error when that is a terminal.
+fn calibrate(a: &FileArgs) -> Result<(), CliError> {
+    use std::io::IsTerminal;
+    let limits = a.limits.to_limits().map_err(CliError::Other)?;
+    let body = read_all(&a.file)?;
+    let stop = Stop::within(limits.deadline);
+    let bar = std::io::stderr().is_terminal().then(|| {
+        let b = indicatif::ProgressBar::new_spinner();
+        if let Ok(style) =
+            indicatif::ProgressStyle::with_template("{spinner} {elapsed} run {pos}  {msg}")
+        {
+            b.set_style(style);
+        }
+        b.enable_steady_tick(Duration::from_millis(120));
+        b
+    });
+    let best = std::sync::Mutex::new(f64::NEG_INFINITY);
+    let progress = |k: u64, ll: Option<f64>| {
+        let Some(b) = &bar else { return };
+        if let (Some(ll), Ok(mut best)) = (ll, best.lock()) {
+            if ll > *best {
+                *best = ll;
+                b.set_message(format!("best log-likelihood {ll:.6}"));
+            }
+        }
+        b.set_position(k);
+    };
+    let done = job::calibrate(&body, &limits, &stop, &progress);
+    if let Some(b) = &bar {
+        b.finish_and_clear();
+    }
+    print_body(&done?.body)
 }
 
 /// The server configuration `serve` would use, keys and CORS included.

@@ -12,7 +12,7 @@ fn help_lists_the_subcommands_without_demo() {
     let out = tacit().arg("--help").output().unwrap();
     assert!(out.status.success());
     let text = String::from_utf8_lossy(&out.stdout);
-    for cmd in ["serve", "run", "check", "simulate"] {
+    for cmd in ["serve", "run", "check", "simulate", "calibrate"] {
         assert!(text.contains(cmd), "{cmd} in {text}");
     }
     let out = tacit().args(["serve", "--help"]).output().unwrap();
@@ -75,4 +75,32 @@ fn bad_limit_flags_are_refused() {
         .unwrap();
     assert!(!out.status.success());
     assert!(String::from_utf8_lossy(&out.stderr).contains("--deadline-secs"));
+}
+
+#[test]
+fn calibrate_reads_a_file_prints_the_answer_and_draws_no_bar_off_a_terminal() {
+    let dir = std::env::temp_dir().join(format!("tacit-cli-cal-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("tower.json");
+    std::fs::write(
+        &path,
+        crate::support::cart_request(3, 100, 0.5, 0.2).to_string(),
+    )
+    .unwrap();
+    let out = tacit().arg("calibrate").arg(&path).output().unwrap();
+    let _ = std::fs::remove_dir_all(&dir);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let a: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(a["free"]["/model/sensors/encoder/std"]["value"].is_number());
+    assert!(a["request"]["measurements"].as_array().unwrap().len() == 100);
+    // Standard error is a pipe here, not a terminal: no progress bar on it.
+    assert!(
+        out.stderr.is_empty(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }

@@ -7,10 +7,10 @@
 
 use crate::support::{assert_problem, post, start, Server};
 use serde_json::{json, Value};
-use tacit::job::Stop;
 use std::time::Duration;
 use tacit::config::Limits;
 use tacit::http::ServerConfig;
+use tacit::job::Stop;
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
 fn config_with(f: impl FnOnce(&mut ServerConfig)) -> ServerConfig {

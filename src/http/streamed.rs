@@ -30,9 +30,7 @@ impl PieceSink for ChannelSink {
 /// Run a batch job that may stream its answer (see the file's doc), under `slot`.
 pub async fn run_streaming_job<F>(state: &AppState, slot: JobSlot, work: F) -> Response
 where
-    F: FnOnce(&Limits, &Stop, &mut dyn PieceSink) -> Result<BatchAnswer, Problem>
-        + Send
-        + 'static,
+    F: FnOnce(&Limits, &Stop, &mut dyn PieceSink) -> Result<BatchAnswer, Problem> + Send + 'static,
 {
     let guard = CancelOnDrop::new();
     let arrived = slot.arrived();

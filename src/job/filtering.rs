@@ -22,7 +22,10 @@ use serde_json::value::RawValue;
 /// The measurement array as the text of each element. The envelope parse has checked the
 /// section's syntax, so a byte scan finds the elements; anything it does not take for an
 /// array goes through serde_json, which reports what is wrong.
-fn measurement_list<'a>(env: &Envelope<'a>, limits: &Limits) -> Result<Vec<&'a str>, Problem> {
+pub(super) fn measurement_list<'a>(
+    env: &Envelope<'a>,
+    limits: &Limits,
+) -> Result<Vec<&'a str>, Problem> {
     let raw = env
         .measurements
         .ok_or_else(|| Problem::field("/measurements", "missing required field 'measurements'"))?;

@@ -15,6 +15,7 @@
 
 use crate::config::Limits;
 pub mod budget;
+mod calibrate;
 mod check;
 mod failure;
 mod filtering;
@@ -156,17 +157,25 @@ pub fn batch_memory(body: &[u8], limits: &Limits, smooth: bool) -> Result<u64, P
     filtering::batch_need(body, limits, smooth)
 }
 
+/// `POST /v1/calibrate`: an estimate request plus `free` (JSON Pointers of the numbers to
+/// fit), `likelihood` and `search`; the fitted values with their uncertainty and the
+/// request with them substituted. `progress` hears of every filter run.
+pub fn calibrate(
+    body: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+    progress: &(dyn Fn(u64, Option<f64>) + Sync),
+) -> Result<Done, Problem> {
+    calibrate::calibrate(body, limits, stop, progress)
+}
+
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     simulate_pieces(body, limits, stop).map(Pieces::into_done)
 }
 
 /// [`simulate`] with the answer left in pieces (what the server sends).
-pub fn simulate_pieces(
-    body: &[u8],
-    limits: &Limits,
-    stop: &Stop,
-) -> Result<Pieces, Problem> {
+pub fn simulate_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Pieces, Problem> {
     simulate::simulate(body, limits, stop)
 }
 

@@ -4,10 +4,12 @@
 
 mod affine_sensor;
 mod bounds;
+mod calibrate;
 mod edges;
 mod errors;
 mod properties;
 mod r10_integration;
+mod r11_nile;
 mod r15_long_gaps;
 mod r2_alpha_beta;
 mod r3_riccati;

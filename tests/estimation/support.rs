@@ -71,3 +71,10 @@ pub(super) fn matrix(v: &Value) -> Vec<Vec<f64>> {
 pub(super) fn rel(a: f64, b: f64, floor: f64) -> f64 {
     (a - b).abs() / a.abs().max(b.abs()).max(floor)
 }
+
+/// Run `/v1/calibrate` in-process (no progress).
+pub(super) fn calibrate(body: &Value) -> Result<Value, Problem> {
+    let bytes = serde_json::to_vec(body).unwrap();
+    tacit::job::calibrate(&bytes, &Limits::default(), &NOT_CANCELLED, &|_, _| {})
+        .map(|d| serde_json::from_slice(&d.body).unwrap())
+}

@@ -190,3 +190,40 @@ pub(crate) async fn post_json(s: &Server, path: &str, body: &serde_json::Value) 
 pub(crate) async fn post_raw(s: &Server, path: &str, body: impl Into<reqwest::Body>) -> Answer {
     post(s, path, "application/json", body).await
 }
+
+/// A calibration request on a simulated cart whose velocity is a random walk (our own
+/// plant): position read every `dt` = 0.1 s with std `r`, velocity density `q`; the data
+/// are drawn exactly from the discretised model (Q = q[[dt³/3, dt²/2], [dt²/2, dt]],
+/// common practice) with a seeded ChaCha stream. `free` fits both noise settings,
+/// starting from twice and half the truth.
+pub(crate) fn cart_request(seed: u64, n: usize, q: f64, r: f64) -> serde_json::Value {
+    use rand::SeedableRng;
+    use rand_distr::{Distribution, StandardNormal};
+    let mut rng = rand_chacha::ChaCha20Rng::seed_from_u64(seed);
+    let mut z = || -> f64 { StandardNormal.sample(&mut rng) };
+    let dt: f64 = 0.1;
+    let (q11, q12, q22) = (q * dt.powi(3) / 3.0, q * dt * dt / 2.0, q * dt);
+    // Cholesky factor of Q.
+    let l11 = q11.sqrt();
+    let l21 = q12 / l11;
+    let l22 = (q22 - l21 * l21).sqrt();
+    let (mut pos, mut vel) = (0.0, 1.0);
+    let mut lines = Vec::with_capacity(n);
+    for k in 1..=n {
+        let (a, b) = (z(), z());
+        pos += vel * dt + l11 * a;
+        vel += l21 * a + l22 * b;
+        let t = k as f64 * dt;
+        lines.push(serde_json::json!({"t": t, "values": {"encoder": pos + r * z()}}));
+    }
+    serde_json::json!({
+        "model": {"states": ["pos", "vel"],
+                  "dynamics": {"rates": {"pos": "vel", "vel": "0"}},
+                  "process_noise": {"density": {"vel": 2.0 * q}},
+                  "sensors": {"encoder": {"measures": "pos", "std": 0.5 * r}}},
+        "filter": {"method": "ekf"},
+        "prior": {"t": 0, "mean": {"pos": 0.0, "vel": 1.0}, "std": {"pos": 1e-3, "vel": 1e-3}},
+        "measurements": lines,
+        "free": {"/model/process_noise/density/vel": {}, "/model/sensors/encoder/std": {}}
+    })
+}

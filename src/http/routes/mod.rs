@@ -1,6 +1,7 @@
 //! One module per route group, each exporting its `ROUTES` and `router()`; [`ALL`] is the
 //! single list the app is built from and the OpenAPI test checks against.
 
+mod calibrate;
 mod estimate;
 mod health;
 mod info;
@@ -17,6 +18,7 @@ pub use table::{all, ALL};
 
 /// The route groups by name, for callers that want one group's router alone.
 pub mod groups {
+    pub use super::calibrate::router as calibrate;
     pub use super::estimate::router as estimate;
     pub use super::health::router as health;
     pub use super::info::router as info;

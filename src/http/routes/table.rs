@@ -4,7 +4,7 @@
 //! route cannot be served without being documented, nor documented without being served.
 
 use super::route::Route;
-use super::{estimate, health, info, metrics, model, openapi, problems, stream};
+use super::{calibrate, estimate, health, info, metrics, model, openapi, problems, stream};
 
 /// Every route group of the service.
 pub const ALL: &[&[Route]] = &[
@@ -15,6 +15,7 @@ pub const ALL: &[&[Route]] = &[
     info::ROUTES,
     estimate::ROUTES,
     stream::ROUTES,
+    calibrate::ROUTES,
     model::ROUTES,
 ];
 

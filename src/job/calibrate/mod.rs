@@ -1,0 +1,173 @@
+//! `POST /v1/calibrate`: fit numbers of an estimate request (noise settings, sensor
+//! spreads, parameters, prior spreads), named by JSON Pointer in `free`, to the request's
+//! own readings by maximum likelihood.
+//!
+//! `spec.rs` reads `free`, `likelihood` and `search`; `objective.rs` parses the request
+//! once and runs the filter for given values (the log-likelihood by the prediction-error
+//! decomposition); `search.rs` is the quasi-Newton search with its derivative-free
+//! fallback; `stats.rs` turns the curvature at the optimum into standard errors,
+//! intervals, correlations and identifiability warnings. The answer carries the whole
+//! request with the fitted values substituted, ready for /v1/estimate.
+
+mod objective;
+mod search;
+mod spec;
+mod stats;
+
+use crate::config::Limits;
+use crate::job::{Done, RunStats};
+use crate::model::Stop as RequestStop;
+use crate::problem::Problem;
+use crate::request::envelope;
+use objective::{Objective, Progress, Stop};
+use serde_json::{json, Map as JsonMap, Value};
+
+/// Take an optional top-level section out of the request.
+fn take(req: &mut Value, key: &str) -> Option<Value> {
+    req.as_object_mut().and_then(|o| o.remove(key))
+}
+
+/// The summary object a run wrote (`"summary":{...}`) as JSON.
+fn summary_value(bytes: &[u8]) -> Value {
+    let body = bytes.strip_prefix(b"\"summary\":").unwrap_or(bytes);
+    serde_json::from_slice(body).unwrap_or(Value::Null)
+}
+
+/// A number, or null when it is not finite (never NaN in an answer).
+fn num(x: f64) -> Value {
+    serde_json::Number::from_f64(x).map_or(Value::Null, Value::Number)
+}
+
+/// `POST /v1/calibrate`. `progress` hears of every run (its number from 1 and its
+/// log-likelihood, None for a run that failed).
+pub(super) fn calibrate(
+    body: &[u8],
+    limits: &Limits,
+    stop: &RequestStop,
+    progress: Progress<'_>,
+) -> Result<Done, Problem> {
+    let mut req: Value = serde_json::from_slice(body).map_err(envelope::json_problem)?;
+    if !req.is_object() {
+        return Err(Problem::field("", "the request is a JSON object"));
+    }
+    let free_v = take(&mut req, "free")
+        .ok_or_else(|| Problem::field("/free", "missing required field 'free'"))?;
+    let likelihood = take(&mut req, "likelihood");
+    let search_v = take(&mut req, "search");
+    let settings = spec::settings(likelihood.as_ref(), search_v.as_ref())?;
+    let frees = spec::free(&free_v, &req)?;
+    let maps: Vec<spec::Map> = frees.iter().map(|f| f.map).collect();
+    let obj = Objective::new(
+        &req,
+        &frees,
+        settings.skip,
+        settings.max_runs,
+        limits,
+        stop,
+        progress,
+    )?;
+    let x0: Vec<f64> = frees.iter().map(|f| f.start).collect();
+    let u0: Vec<f64> = frees.iter().map(|f| f.map.u(f.start)).collect();
+    // The starting values must give a likelihood: their failure is the request's.
+    let start = obj.run(&x0, false, false)?;
+    if !start.ll.is_finite() {
+        return Err(Problem::new(
+            crate::problem::ProblemKind::NumericalFailure,
+            "the log-likelihood at the starting values is not finite",
+        ));
+    }
+    obj.eval(&x0, true).map_err(fatal)?;
+    let ended = search::search(
+        &obj,
+        &maps,
+        &u0,
+        start.ll,
+        settings.tolerance,
+        settings.starts,
+    )?;
+    let (best_ll, best_x) = obj.best().unwrap_or((start.ll, x0.clone()));
+    let best_u: Vec<f64> = maps.iter().zip(&best_x).map(|(m, &x)| m.u(x)).collect();
+    let h = stats::curvature(&obj, &maps, &best_u, -best_ll).map_err(fatal)?;
+    let errs = stats::errors(&h, &maps, &best_u);
+    let before = obj.run(&x0, true, true)?;
+    let after = obj.run(&best_x, true, true)?;
+    let fitted = obj
+        .substituted(&req, &best_x, true)
+        .ok_or_else(|| Problem::field("/free", "a fitted value is not a finite number"))?;
+
+    let mut free_out = JsonMap::new();
+    for (i, f) in frees.iter().enumerate() {
+        let mut o = JsonMap::new();
+        o.insert("value".into(), num(best_x[i]));
+        o.insert("start".into(), num(f.start));
+        match errs.spread[i] {
+            Some(s) => {
+                o.insert("std_error".into(), num(s.std_error));
+                o.insert("lower_95".into(), num(s.lower));
+                o.insert("upper_95".into(), num(s.upper));
+            }
+            None => {
+                for k in ["std_error", "lower_95", "upper_95"] {
+                    o.insert(k.into(), Value::Null);
+                }
+            }
+        }
+        free_out.insert(f.pointer.clone(), Value::Object(o));
+    }
+    let k = frees.len() as f64;
+    let n = after.readings.max(1) as f64;
+    let mut warnings = Vec::new();
+    if !errs.flat.is_empty() {
+        let names: Vec<&str> = errs
+            .flat
+            .iter()
+            .map(|&i| frees[i].pointer.as_str())
+            .collect();
+        warnings.push(json!({
+            "kind": "not_identifiable",
+            "quantities": names,
+            "detail": format!("the readings cannot tell {} apart: the log-likelihood is flat or nearly so along a combination of them, so only that combination is determined and their standard errors are left out; fix all but one of them from outside knowledge, or add readings that separate them", names.join(", ")),
+        }));
+    }
+    let correlation: Vec<Vec<Value>> = errs
+        .correlation
+        .iter()
+        .map(|row| row.iter().map(|c| c.map_or(Value::Null, num)).collect())
+        .collect();
+    let answer = json!({
+        "free": free_out,
+        "log_likelihood": {"start": num(start.ll), "best": num(best_ll)},
+        "aic": num(2.0 * k - 2.0 * best_ll),
+        "bic": num(k * n.ln() - 2.0 * best_ll),
+        "readings": after.readings,
+        "runs": obj.runs(),
+        "converged": ended.converged,
+        "detail": ended.detail,
+        "correlation": correlation,
+        "warnings": warnings,
+        "request": fitted,
+        "summary_before": summary_value(&before.summary),
+        "summary_after": summary_value(&after.summary),
+    });
+    let body = serde_json::to_vec(&answer).map_err(|e| Problem::field("", e.to_string()))?;
+    Ok(Done {
+        body,
+        stats: RunStats {
+            filter: "",
+            steps: obj.runs(),
+            updates: 0,
+            rejected: 0,
+        },
+    })
+}
+
+/// A stop outside the search: the budget does not apply there, so it is fatal.
+fn fatal(s: Stop) -> Problem {
+    match s {
+        Stop::Fatal(p) => p,
+        Stop::Budget => Problem::new(
+            crate::problem::ProblemKind::Internal,
+            "the run budget stopped a run outside the search",
+        ),
+    }
+}
