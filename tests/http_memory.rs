@@ -2,10 +2,12 @@
 //! request is refused with a plain 413 before it reserves what it asks for, the estimate
 //! behind that refusal bounds what a request really allocates, a request finding no free
 //! job slot is answered 503 before its body is read, and a SIGTERM with a batch computing
-//! keeps answering `/readyz` 503 through the drain, then exits at the end of the grace
-//! time naming the job it abandoned.
+//! and a stream waiting for input ends the stream with its last posterior, keeps
+//! answering `/readyz` 503 through the drain, then exits at the end of the grace time
+//! naming the job it abandoned.
 
 use crate::support::{assert_problem, post, start, Server};
+use futures_util::StreamExt;
 use serde_json::{json, Value};
 use std::time::Duration;
 use tacit::config::Limits;
@@ -303,7 +305,8 @@ fn endless_batch() -> Vec<u8> {
 }
 
 #[tokio::test]
-async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_abandoned_job() {
+async fn sigterm_ends_a_waiting_stream_with_its_last_posterior_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_abandoned_job(
+) {
     use std::process::{Command, Stdio};
     let log = std::path::Path::new(env!("CARGO_TARGET_TMPDIR"))
         .join(format!("drain-{}.log", std::process::id()));
@@ -337,6 +340,47 @@ async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_a
         panic!("the server did not start: {}", text());
     };
     let client = reqwest::Client::new();
+    // A stream (a kiln read once) that then waits for its next line, holding no slot.
+    let (tx, rx) = tokio::sync::mpsc::channel::<Result<bytes::Bytes, std::io::Error>>(4);
+    let stream_body =
+        reqwest::Body::wrap_stream(futures_util::stream::unfold(rx, |mut rx| async {
+            rx.recv().await.map(|x| (x, rx))
+        }));
+    let header = json!({
+        "model": {
+            "states": ["temp"],
+            "dynamics": {"rates": {"temp": "-0.01*(temp - 900)"}},
+            "process_noise": {"density": {"temp": 0.1}},
+            "sensors": {"thermocouple": {"measures": "temp", "std": 2}}
+        },
+        "filter": {"method": "ekf"},
+        "prior": {"t": 0, "mean": {"temp": 850}, "std": {"temp": 20}}
+    });
+    tx.send(Ok(format!(
+        "{header}\n{}\n",
+        r#"{"t": 1, "values": {"thermocouple": 880}}"#
+    )
+    .into()))
+        .await
+        .unwrap();
+    let res = client
+        .post(format!("{base}/v1/estimate/stream"))
+        .header("content-type", "application/x-ndjson")
+        .body(stream_body)
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(res.status(), 200, "{}", text());
+    let mut chunks = res.bytes_stream();
+    let mut streamed = Vec::new();
+    while !streamed.contains(&b'\n') {
+        let chunk = tokio::time::timeout(Duration::from_secs(20), chunks.next())
+            .await
+            .expect("the stream's first estimate never came")
+            .expect("the stream ended before its first estimate")
+            .unwrap();
+        streamed.extend_from_slice(&chunk);
+    }
     let send = || {
         tokio::spawn(
             client
@@ -374,6 +418,36 @@ async fn sigterm_drains_with_readyz_503_and_exits_at_the_grace_time_naming_the_a
         .status()
         .unwrap();
     assert!(term.success());
+    // The waiting stream ends at once with the posterior of its last line and the reason.
+    let rest = tokio::time::timeout(Duration::from_secs(20), async {
+        while let Some(chunk) = chunks.next().await {
+            streamed.extend_from_slice(&chunk.unwrap());
+        }
+    })
+    .await;
+    assert!(
+        rest.is_ok(),
+        "the stream did not end on the shutdown: {}",
+        text()
+    );
+    let streamed = String::from_utf8(streamed).unwrap();
+    let lines: Vec<Value> = streamed
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(lines.len(), 3, "{streamed}");
+    assert_eq!(lines[0]["t"], 1.0, "{streamed}");
+    assert_eq!(lines[1]["posterior"]["t"], 1.0, "{streamed}");
+    assert_eq!(
+        lines[1]["posterior"]["mean"], lines[0]["mean"],
+        "{streamed}"
+    );
+    assert_eq!(lines[1]["summary"]["steps"], 1, "{streamed}");
+    assert_eq!(
+        lines[2]["error"]["type"], "/problems/shutting-down",
+        "{streamed}"
+    );
+    drop(tx);
     // During the drain the probe answers 503 (the listener is still open).
     let mut saw_503 = false;
     for _ in 0..200 {

@@ -24,6 +24,8 @@ struct Inner {
     slots: Arc<Semaphore>,
     metrics: Metrics,
     ready: AtomicBool,
+    /// `true` once a shutdown has begun; streams waiting for input watch it.
+    draining: tokio::sync::watch::Sender<bool>,
     lane: Lane,
     running: Arc<Running>,
 }
@@ -76,6 +78,7 @@ impl AppState {
                 slots,
                 metrics: Metrics::new(),
                 ready: AtomicBool::new(true),
+                draining: tokio::sync::watch::Sender::new(false),
                 lane: Lane::new(lane_threads()),
                 running: Arc::new(Running::default()),
                 config,
@@ -173,6 +176,13 @@ impl AppState {
     /// Flip readiness; called once a shutdown signal arrives.
     pub fn set_ready(&self, ready: bool) {
         self.inner.ready.store(ready, Ordering::Relaxed);
+        self.inner.draining.send_replace(!ready);
+    }
+
+    /// A watch that turns `true` when a shutdown begins (readiness flipped off): a stream
+    /// waiting for its next line ends then with its last good posterior.
+    pub fn draining(&self) -> tokio::sync::watch::Receiver<bool> {
+        self.inner.draining.subscribe()
     }
 }
 

@@ -158,8 +158,12 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
 
     let leftover: Vec<_> = pending.into_iter().collect();
     let idle = state.config().stream_idle;
+    let waits = Waits {
+        idle,
+        draining: state.draining(),
+    };
     tokio::spawn(read_lines(
-        body, splitter, leftover, ended, in_tx, guard, idle,
+        body, splitter, leftover, ended, in_tx, guard, waits,
     ));
     let span = tracing::Span::current();
     let st = state.clone();
@@ -197,7 +201,8 @@ impl Drop for SetOnDrop {
 /// The async half: split the request body into lines and pass them on in chunk-sized
 /// batches. It owns the cancel guard, so when it stops for any reason other than a
 /// clean end or a silence longer than `idle`, the worker sees the flag. A silence ends
-/// the stream with the last good posterior and a `stream-idle` error line.
+/// the stream with the last good posterior and a `stream-idle` error line; so does a
+/// shutdown that begins while the stream waits for input (`shutting-down`).
 async fn read_lines(
     mut body: BodyDataStream,
     mut splitter: LineSplitter,
@@ -205,15 +210,27 @@ async fn read_lines(
     already_ended: bool,
     tx: mpsc::Sender<Input>,
     guard: CancelOnDrop,
-    idle: Duration,
+    waits: Waits,
 ) {
+    let Waits { idle, mut draining } = waits;
     if !leftover.is_empty() && tx.send(Input::Lines(leftover)).await.is_err() {
         return;
     }
     if !already_ended {
         loop {
             let mut lines = Vec::new();
-            let Ok(next) = tokio::time::timeout(idle, body.next()).await else {
+            let waited = tokio::select! {
+                waited = tokio::time::timeout(idle, body.next()) => waited,
+                () = shutdown_begins(&mut draining) => {
+                    // The server is going away: end with the last good posterior now,
+                    // before the grace time cuts the connection.
+                    if tx.send(Input::Fail(shutting_down())).await.is_ok() {
+                        guard.disarm();
+                    }
+                    return;
+                }
+            };
+            let Ok(next) = waited else {
                 // The worker owes the client a last good posterior and the reason.
                 if tx.send(Input::Fail(stream_idle(idle))).await.is_ok() {
                     guard.disarm();
@@ -249,6 +266,20 @@ async fn read_lines(
     let _ = tx.send(Input::End).await;
     // A clean end: the worker must finish, so the guard may not fire now.
     guard.disarm();
+}
+
+/// Resolves when a shutdown begins (never, should the server's state be gone first).
+async fn shutdown_begins(draining: &mut tokio::sync::watch::Receiver<bool>) {
+    if draining.wait_for(|d| *d).await.is_err() {
+        std::future::pending::<()>().await;
+    }
+}
+
+/// What the reader waits for besides the next bytes: the silence that ends a stream, and
+/// the start of a shutdown.
+struct Waits {
+    idle: Duration,
+    draining: tokio::sync::watch::Receiver<bool>,
 }
 
 /// The blocking half: run the session over the lines and send answers out.
@@ -346,7 +377,11 @@ fn run_session(
         if cancel.load(Ordering::Relaxed) {
             return Flow::Gone;
         }
-        slots.take();
+        // Ending with the last good posterior needs no slot (a draining server may have
+        // none to give until its grace time ends).
+        if !matches!(msg, Input::Fail(_)) {
+            slots.take();
+        }
         match msg {
             Input::Lines(lines) => {
                 for (line_no, line) in lines {
@@ -436,6 +471,13 @@ fn stream_idle(idle: Duration) -> Problem {
             "no byte of the stream arrived for {} s after the last line; the stream ends here",
             idle.as_secs_f64()
         ),
+    )
+}
+
+fn shutting_down() -> Problem {
+    Problem::new(
+        ProblemKind::ShuttingDown,
+        "the server is shutting down; the stream ends with its last good posterior",
     )
 }
 
