@@ -23,7 +23,7 @@ fn config_with(f: impl FnOnce(&mut ServerConfig)) -> ServerConfig {
 
 /// A plant of `n` states (each decaying on its own, with process noise), one gauge on
 /// the first state: the smallest valid model of that size.
-fn plant(n: usize) -> Value {
+pub(crate) fn plant(n: usize) -> Value {
     let names: Vec<String> = (0..n).map(|i| format!("x{i}")).collect();
     let rates: serde_json::Map<String, Value> = names
         .iter()
@@ -46,7 +46,7 @@ fn plant(n: usize) -> Value {
 
 /// The request body: `plant(n)` with `lines` lines, every `every`th carrying a reading
 /// (0: none, the "empty lines").
-fn batch(n: usize, lines: usize, every: usize) -> Vec<u8> {
+pub(crate) fn batch(n: usize, lines: usize, every: usize) -> Vec<u8> {
     let mut v = plant(n);
     let list: Vec<Value> = (1..=lines)
         .map(|k| {
@@ -277,7 +277,7 @@ async fn a_request_finding_no_free_slot_is_refused_before_its_body_is_read() {
 }
 
 /// A child process killed and reaped when dropped, whatever the test's path.
-struct Reaped(std::process::Child);
+pub(crate) struct Reaped(pub(crate) std::process::Child);
 
 impl Drop for Reaped {
     fn drop(&mut self) {

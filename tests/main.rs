@@ -8,6 +8,7 @@ mod demo;
 mod deploy;
 mod estimation;
 mod http_api;
+mod http_bomb;
 mod http_calibrate;
 mod http_core;
 mod http_errors;
