@@ -83,3 +83,25 @@ fn simulate_grid_past_the_range_of_times_is_a_422_at_step() {
         );
     }
 }
+
+/// Found by the request fuzzer: an unknown top-level member's pointer was its name
+/// unescaped (`/~eed` for the key `~eed`), not an RFC 6901 pointer (RFC 6901 §3: `~` is
+/// written `~0`, `/` is written `~1`); a name holding a backquote was cut at it.
+#[test]
+fn unknown_top_level_member_pointer_is_escaped_per_rfc_6901() {
+    let (_, text) = corpus("request")
+        .into_iter()
+        .find(|(n, _)| n.starts_with("estimate-crane"))
+        .expect("an estimate request in the corpus");
+    let base: Value = serde_json::from_str(&text).unwrap();
+    for (key, pointer) in [("~eed", "/~0eed"), ("a/b", "/a~1b"), ("a`b", "/a`b")] {
+        let mut req = base.clone();
+        req[key] = json!(1);
+        let body = serde_json::to_vec(&req).unwrap();
+        let p =
+            tacit::job::estimate(&body, &Limits::default(), &Stop::never()).expect_err("refused");
+        assert_eq!(p.status, 422, "{key}: {p}");
+        let at: Vec<&str> = p.errors.iter().map(|e| e.pointer.as_str()).collect();
+        assert_eq!(at, [pointer], "{key}: {p}");
+    }
+}

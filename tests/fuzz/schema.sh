@@ -7,15 +7,17 @@
 # Usage: tests/fuzz/schema.sh [path/to/tacit]
 #   Without an argument, builds with `cargo build --release --locked`.
 #   Environment: SCHEMATHESIS (the `schemathesis` command; default: a venv made under
-#   $TACIT_FUZZ_VENV, default target/fuzz-venv, with the pinned version below),
-#   FUZZ_EXAMPLES (examples per operation, default 200), FUZZ_SEED (default 15).
+#   $TACIT_FUZZ_VENV, default target/fuzz-venv, with SCHEMATHESIS_VERSION, by default the
+#   version pinned in .ci/run),
+#   FUZZ_EXAMPLES (examples per operation, default 200). Generation is deterministic.
 set -euo pipefail
-
-# Pinned: the version CI installs. Change it here only.
-SCHEMATHESIS_VERSION=4.32.5
 
 root="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
 cd "$root"
+
+# The pin lives in .ci/run (`schemathesis_version=`); change it there only.
+version="${SCHEMATHESIS_VERSION:-$(sed -n 's/^schemathesis_version=//p' .ci/run)}"
+[[ -n "$version" ]] || { echo "no schemathesis version pinned in .ci/run" >&2; exit 1; }
 
 target="${CARGO_TARGET_DIR:-target}"
 [[ "$target" = /* ]] || target="$root/$target"
@@ -29,9 +31,9 @@ fi
 st="${SCHEMATHESIS:-}"
 if [[ -z "$st" ]]; then
     venv="${TACIT_FUZZ_VENV:-$target/fuzz-venv}"
-    if ! "$venv/bin/schemathesis" --version 2>/dev/null | grep -q "$SCHEMATHESIS_VERSION"; then
+    if ! "$venv/bin/schemathesis" --version 2>/dev/null | grep -q "$version"; then
         python3 -m venv "$venv"
-        "$venv/bin/pip" install --quiet --disable-pip-version-check "schemathesis==$SCHEMATHESIS_VERSION"
+        "$venv/bin/pip" install --quiet --disable-pip-version-check "schemathesis==$version"
     fi
     st="$venv/bin/schemathesis"
 fi
@@ -71,13 +73,14 @@ for _ in range(200):
 sys.exit(f"{url} did not answer within 20 s")
 PY
 
-# Deterministic generation with a fixed seed, so a failure in CI reproduces locally;
+# The hooks (tests/fuzz/hooks.py) send the stream's generated line as NDJSON.
+# Deterministic generation (no random seed), so a failure in CI reproduces locally;
 # deterministic mode also keeps no example database, so earlier runs do not change this one.
+SCHEMATHESIS_HOOKS=hooks PYTHONPATH="$root/tests/fuzz${PYTHONPATH:+:$PYTHONPATH}" \
 "$st" run openapi/openapi.yaml \
     --url "http://127.0.0.1:$port" \
     --checks not_a_server_error,content_type_conformance,response_schema_conformance \
     --max-examples "${FUZZ_EXAMPLES:-200}" \
-    --seed "${FUZZ_SEED:-15}" \
     --generation-deterministic \
     --phases examples,coverage,fuzzing \
     --workers 2 \
