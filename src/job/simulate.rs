@@ -144,9 +144,8 @@ fn times(
             // a float past it would saturate and the sum overflow. The grid rises, so its
             // first and last times bound the rest.
             let fits = |x: f64| x.abs() < i128::MAX as f64;
-            let last = i128::try_from(count.saturating_sub(1))
-                .ok()
-                .and_then(|k| k.checked_mul(step_ns))
+            let last = i128::from(count.saturating_sub(1))
+                .checked_mul(step_ns)
                 .and_then(|d| d.checked_add(start_ns));
             let seconds = matches!(mode.unwrap_or(TimeMode::Seconds), TimeMode::Seconds);
             if seconds && !fits(start.secs * 1e9) {
