@@ -5,26 +5,29 @@ use serde_json::{json, Value};
 use tacit::config::Limits;
 use tacit::job::Stop;
 
-/// Whether some object member outside `measurements` is `null`; its pointer if so.
+/// The pointer of some object member that is `null`, if any.
 fn null_member(v: &Value, at: &str) -> Option<String> {
     match v {
         Value::Object(o) => o.iter().find_map(|(k, x)| {
             let p = format!("{at}/{k}");
-            if k == "measurements" && at.is_empty() {
-                None
-            } else if x.is_null() {
+            if x.is_null() {
                 Some(p)
             } else {
                 null_member(x, &p)
             }
         }),
+        Value::Array(a) => a
+            .iter()
+            .enumerate()
+            .find_map(|(i, x)| null_member(x, &format!("{at}/{i}"))),
         _ => None,
     }
 }
 
 /// Found by `tests/fuzz/schema.sh`: `/v1/calibrate` echoed an optional field sent as `null`
 /// (which counts as absent) in its `request`, which the schema's `EstimateRequest` refuses
-/// (`output.innovations` is a boolean). The echo now leaves such members out.
+/// (`output.innovations` is a boolean, a reading's `noise_std` an object). The echo now
+/// leaves such members out.
 #[test]
 fn calibrate_echo_leaves_out_optional_fields_sent_as_null() {
     let (_, text) = corpus("request")
@@ -34,6 +37,8 @@ fn calibrate_echo_leaves_out_optional_fields_sent_as_null() {
     let mut req: Value = serde_json::from_str(&text).unwrap();
     req["output"] = json!({"innovations": null, "covariance": null});
     req["filter"]["max_gap"] = Value::Null;
+    let sent = req["measurements"].clone();
+    req["measurements"][0]["noise_std"] = Value::Null;
     let body = serde_json::to_vec(&req).unwrap();
     let done = tacit::job::calibrate(&body, &Limits::default(), &Stop::never(), &|_, _| {})
         .unwrap_or_else(|p| panic!("calibrate refused: {p}"));
@@ -42,8 +47,8 @@ fn calibrate_echo_leaves_out_optional_fields_sent_as_null() {
     assert_eq!(null_member(echoed, ""), None, "{echoed}");
     assert!(echoed["output"].as_object().is_some_and(|o| o.is_empty()));
     assert!(echoed["filter"].get("max_gap").is_none());
-    // The readings are echoed as sent.
-    assert_eq!(echoed["measurements"], req["measurements"]);
+    // The readings are echoed as sent, less the null member.
+    assert_eq!(echoed["measurements"], sent);
 }
 
 /// Found by the request fuzzer: a `/v1/simulate` grid whose `step` (or `start`) runs past

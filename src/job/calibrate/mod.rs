@@ -162,15 +162,21 @@ pub(super) fn calibrate(
     })
 }
 
-/// Remove the `null` members of every object outside `measurements`: an optional field
-/// given as `null` counts as absent, and the echoed request must read as the schema's
-/// `EstimateRequest`, whose optional fields are not nullable. (A reading's `null` value
-/// means something, so `measurements` is left as sent.)
+/// Remove the `null` members of every object (an optional field given as `null` counts as
+/// absent): the echoed request must read as the schema's `EstimateRequest`, whose optional
+/// fields are not nullable. Each reading line loses its own `null` members (`noise_std`,
+/// `inputs`) but keeps its `values` and `inputs` maps as sent.
 fn drop_absent(v: &mut Value) {
     if let Value::Object(o) = v {
-        o.retain(|k, x| k == "measurements" || !x.is_null());
+        o.retain(|_, x| !x.is_null());
         for (k, x) in o.iter_mut() {
-            if k != "measurements" {
+            if k == "measurements" {
+                for line in x.as_array_mut().into_iter().flatten() {
+                    if let Value::Object(l) = line {
+                        l.retain(|_, y| !y.is_null());
+                    }
+                }
+            } else {
                 drop_absent(x);
             }
         }
