@@ -5,14 +5,8 @@ is sent as one JSON document and a newline, which is what the stream reads.
 """
 
 import json
-import sys
 
 import schemathesis
-
-# Describing a deeply nested generation strategy (for a request schema as deep as ours)
-# came close to Python's default recursion limit of 1000 and failed inside the tool
-# ("AST constructor recursion depth mismatch") at random; give it room.
-sys.setrecursionlimit(20000)
 
 
 @schemathesis.serializer("application/x-ndjson")

@@ -74,6 +74,10 @@ sys.exit(f"{url} did not answer within 20 s")
 PY
 
 # The hooks (tests/fuzz/hooks.py) send the stream's generated line as NDJSON.
+# No "examples" phase: the documented examples are checked against live answers by
+# tests/openapi.rs, and schemathesis 4.32.5 on Python 3.11 failed inside itself at random
+# while turning our deep example schemas into strategies ("AST constructor recursion depth
+# mismatch"), which a recursion limit does not cure.
 # Deterministic generation (no random seed), so a failure in CI reproduces locally;
 # deterministic mode also keeps no example database, so earlier runs do not change this one.
 SCHEMATHESIS_HOOKS=hooks PYTHONPATH="$root/tests/fuzz${PYTHONPATH:+:$PYTHONPATH}" \
@@ -82,7 +86,7 @@ SCHEMATHESIS_HOOKS=hooks PYTHONPATH="$root/tests/fuzz${PYTHONPATH:+:$PYTHONPATH}
     --checks not_a_server_error,content_type_conformance,response_schema_conformance \
     --max-examples "${FUZZ_EXAMPLES:-200}" \
     --generation-deterministic \
-    --phases examples,coverage,fuzzing \
+    --phases coverage,fuzzing \
     --workers 2 \
     --request-timeout 30 \
     --no-color
