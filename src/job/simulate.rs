@@ -140,6 +140,22 @@ fn times(
                 TimeMode::Seconds => (start.secs * 1e9).round() as i128,
                 TimeMode::Stamp => start.nanos,
             };
+            // Every grid time must fit in i128 nanoseconds (2^127 ns, about 5e21 years):
+            // a float past it would saturate and the sum overflow. The grid rises, so its
+            // first and last times bound the rest.
+            let fits = |x: f64| x.abs() < i128::MAX as f64;
+            let last = i128::from(count.saturating_sub(1))
+                .checked_mul(step_ns)
+                .and_then(|d| d.checked_add(start_ns));
+            let seconds = matches!(mode.unwrap_or(TimeMode::Seconds), TimeMode::Seconds);
+            if seconds && !fits(start.secs * 1e9) {
+                errs.push(&o.at("start"), PAST_RANGE);
+                return Vec::new();
+            }
+            if last.is_none() || !fits(step * 1e9) {
+                errs.push(&o.at("step"), PAST_RANGE);
+                return Vec::new();
+            }
             (0..count as i128)
                 .map(|k| match mode.unwrap_or(TimeMode::Seconds) {
                     TimeMode::Seconds => Instant::seconds((start_ns + k * step_ns) as f64 / 1e9),
@@ -155,6 +171,10 @@ fn times(
         }
     }
 }
+
+/// Why a grid is refused whose times do not fit in i128 nanoseconds.
+const PAST_RANGE: &str =
+    "the grid's times run past the range of times (2^127 ns, about 5e21 years)";
 
 /// A time as messages show it: seconds, or the RFC 3339 form.
 fn show(t: &Instant, mode: TimeMode) -> String {

@@ -93,9 +93,16 @@ pub fn json_problem(e: serde_json::Error) -> Problem {
             let msg = clean_message(&e);
             // serde's derive names a top-level key it does not know, or one given twice,
             // in backquotes; the pointer is that key's.
+            // The key ends at the backquote before ", expected" (unknown) or at the last
+            // one (repeated), so a key holding a backquote is named whole.
             let named = |prefix: &str| {
                 msg.strip_prefix(prefix)
-                    .and_then(|r| r.split('`').next())
+                    .and_then(|r| {
+                        r.split_once("`, expected")
+                            .map(|(k, _)| k)
+                            .or_else(|| r.strip_suffix('`'))
+                            .or_else(|| r.split('`').next())
+                    })
                     .map(str::to_string)
             };
             if let Some(key) = named("duplicate field `") {
@@ -105,7 +112,7 @@ pub fn json_problem(e: serde_json::Error) -> Problem {
                 )]);
             }
             let pointer = named("unknown field `")
-                .map(|f| format!("/{f}"))
+                .map(|f| format!("/{}", escape_token(&f)))
                 .unwrap_or_default();
             Problem::invalid(vec![FieldError::new(pointer, msg)])
         }

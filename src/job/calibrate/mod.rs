@@ -91,9 +91,10 @@ pub(super) fn calibrate(
     let errs = stats::errors(&h, &maps, &best_u);
     let before = obj.run(&x0, true, true)?;
     let after = obj.run(&best_x, true, true)?;
-    let fitted = obj
+    let mut fitted = obj
         .substituted(&req, &best_x, true)
         .ok_or_else(|| Problem::field("/free", "a fitted value is not a finite number"))?;
+    drop_absent(&mut fitted);
 
     let mut free_out = JsonMap::new();
     for (i, f) in frees.iter().enumerate() {
@@ -159,6 +160,27 @@ pub(super) fn calibrate(
             rejected: 0,
         },
     })
+}
+
+/// Remove the `null` members of every object (an optional field given as `null` counts as
+/// absent): the echoed request must read as the schema's `EstimateRequest`, whose optional
+/// fields are not nullable. Each reading line loses its own `null` members (`noise_std`,
+/// `inputs`) but keeps its `values` and `inputs` maps as sent.
+fn drop_absent(v: &mut Value) {
+    if let Value::Object(o) = v {
+        o.retain(|_, x| !x.is_null());
+        for (k, x) in o.iter_mut() {
+            if k == "measurements" {
+                for line in x.as_array_mut().into_iter().flatten() {
+                    if let Value::Object(l) = line {
+                        l.retain(|_, y| !y.is_null());
+                    }
+                }
+            } else {
+                drop_absent(x);
+            }
+        }
+    }
 }
 
 /// A stop outside the search: the budget does not apply there, so it is fatal.
