@@ -44,6 +44,7 @@ mod affine;
 mod builder;
 mod error;
 mod eval;
+mod family;
 mod instr;
 mod lexer;
 mod parser;
@@ -54,6 +55,7 @@ mod tests;
 pub use affine::AffineForm;
 pub use error::FormulaError;
 pub use eval::{BatchWorkspace, Workspace};
+pub use family::{Boundary, FamilyKernel, FamilySet, FamilyShape, FamilyWorkspace, Load};
 pub use parser::MAX_DEPTH_CEILING;
 pub use program::{FormulaLimits, Program, Source};
 
