@@ -111,6 +111,11 @@ struct Scratch {
     b: Vec<f64>,
     u: Vec<f64>,
     p: Vec<f64>,
+    /// Readings in reach and their weights (the small form, fewer than `N − 1`).
+    sel: Vec<(usize, f64)>,
+    /// `B`, then the `v_k`, `N × N` each (the small form).
+    bm: Vec<f64>,
+    vm: Vec<f64>,
 }
 
 /// Inputs every state's analysis reads.
@@ -181,6 +186,9 @@ impl LocalTransform {
             b: vec![0.0; nn],
             u: vec![0.0; nn],
             p: vec![0.0; nn],
+            sel: vec![(0, 0.0); nn],
+            bm: vec![0.0; nn * nn],
+            vm: vec![0.0; nn * nn],
         };
         LocalTransform {
             n,
@@ -301,23 +309,9 @@ fn accumulate(sh: &Shared<'_>, l: usize, w: f64, a: &mut [f64], b: &mut [f64]) {
     }
 }
 
-/// The analysis of state `s` (the equations of the module doc) into `xa` (its `N`
-/// member values); false when the transform matrix is not positive definite.
-fn analyse_state(sh: &Shared<'_>, s: usize, sc: &mut Scratch, xa: &mut [f64]) -> bool {
-    let (nn, n) = (sh.nn, sh.n);
-    let nf = nn as f64;
-    let i = s % sh.size;
-    let mut mean = 0.0;
-    for j in 0..nn {
-        mean += sh.ens[j * n + s];
-    }
-    mean /= nf;
-    for j in 0..nn {
-        sc.u[j] = sh.ens[j * n + s] - mean;
-    }
-    sc.a.fill(0.0);
-    sc.b.fill(0.0);
-    let mut used = 0usize;
+/// Call `f(l, w)` for every reading `l` with a positive weight `w` in the analysis of
+/// element `i`, in a fixed order (by offset, then reading order).
+fn visit(sh: &Shared<'_>, i: usize, mut f: impl FnMut(usize, f64)) {
     let window = sh.weights.len();
     let whole = sh.settings.radius.is_none() || (sh.periodic && 2 * window > sh.size);
     if whole {
@@ -331,8 +325,7 @@ fn analyse_state(sh: &Shared<'_>, s: usize, sc: &mut Scratch, xa: &mut [f64]) ->
                 Some(_) => 0.0,
             };
             if w > 0.0 {
-                accumulate(sh, l, w, &mut sc.a, &mut sc.b);
-                used += 1;
+                f(l, w);
             }
         }
     } else if window > 0 {
@@ -351,11 +344,42 @@ fn analyse_state(sh: &Shared<'_>, s: usize, sc: &mut Scratch, xa: &mut [f64]) ->
                 continue;
             }
             for &l in &sh.order[sh.start[loc]..sh.start[loc + 1]] {
-                accumulate(sh, l, w, &mut sc.a, &mut sc.b);
-                used += 1;
+                f(l, w);
             }
         }
     }
+}
+
+/// The analysis of state `s` (the equations of the module doc) into `xa` (its `N`
+/// member values); false when the transform matrix is not positive definite.
+///
+/// With `L < N − 1` readings in reach, `A = c I + BᵀB` (`B = (ρ/σ²)^{1/2} Y'`, `L × N`,
+/// `c = (N−1)/λ`) is decomposed through the small `B Bᵀ = U Σ Uᵀ` instead: its
+/// eigenvectors are `v_k = Bᵀ u_k / σ_k^{1/2}` with eigenvalues `c + σ_k`, every other
+/// direction has `c` (Hunt et al. 2007, §2.3 notes the same choice of the smaller
+/// space; here directions with `σ_k ≤ 1e-13 σ_max` are counted with the rest). Then
+/// `x_a^(j) = x̄ + Σ_k p_k σ_k^{1/2} (u_k·d̃)/(c+σ_k) + λ^{1/2} X'_j + Σ_k p_k (g_k − λ^{1/2}) v_kj`
+/// with `p_k = v_k·X'`, `d̃ = (ρ/σ²)^{1/2} d` and `g_k = ((N−1)/(c+σ_k))^{1/2}`.
+fn analyse_state(sh: &Shared<'_>, s: usize, sc: &mut Scratch, xa: &mut [f64]) -> bool {
+    let (nn, n) = (sh.nn, sh.n);
+    let nf = nn as f64;
+    let i = s % sh.size;
+    let mut mean = 0.0;
+    for j in 0..nn {
+        mean += sh.ens[j * n + s];
+    }
+    mean /= nf;
+    for j in 0..nn {
+        sc.u[j] = sh.ens[j * n + s] - mean;
+    }
+    let cap = nn.saturating_sub(1);
+    let mut used = 0usize;
+    visit(sh, i, |l, w| {
+        if used < cap {
+            sc.sel[used] = (l, w);
+        }
+        used += 1;
+    });
     let lam = sh.settings.inflation;
     if used == 0 {
         let g = lam.sqrt();
@@ -364,6 +388,12 @@ fn analyse_state(sh: &Shared<'_>, s: usize, sc: &mut Scratch, xa: &mut [f64]) ->
         }
         return true;
     }
+    if used < cap {
+        return low_rank(sh, used, mean, sc, xa);
+    }
+    sc.a.fill(0.0);
+    sc.b.fill(0.0);
+    visit(sh, i, |l, w| accumulate(sh, l, w, &mut sc.a, &mut sc.b));
     let shift = (nf - 1.0) / lam;
     for c in 0..nn {
         sc.a[c * nn + c] += shift;
@@ -396,6 +426,83 @@ fn analyse_state(sh: &Shared<'_>, s: usize, sc: &mut Scratch, xa: &mut [f64]) ->
         *x = centre + t;
     }
     true
+}
+
+/// The small form of [`analyse_state`] over the `ll` readings in `sc.sel`.
+fn low_rank(sh: &Shared<'_>, ll: usize, mean: f64, sc: &mut Scratch, xa: &mut [f64]) -> bool {
+    let nn = sh.nn;
+    let nf = nn as f64;
+    // B (row k at bm[k * N ..]) and d̃.
+    for k in 0..ll {
+        let (l, w) = sc.sel[k];
+        let r = (w * sh.inv_var[l]).sqrt();
+        let y = &sh.yp[l * nn..(l + 1) * nn];
+        for (d, &v) in sc.bm[k * nn..(k + 1) * nn].iter_mut().zip(y) {
+            *d = r * v;
+        }
+        sc.b[k] = r * sh.innov[l];
+    }
+    // G = B Bᵀ (ll × ll, column-major) into `a`.
+    for c in 0..ll {
+        for r in 0..=c {
+            let (x, y) = (&sc.bm[r * nn..(r + 1) * nn], &sc.bm[c * nn..(c + 1) * nn]);
+            let mut t = 0.0;
+            for j in 0..nn {
+                t += x[j] * y[j];
+            }
+            sc.a[r + c * ll] = t;
+            sc.a[c + r * ll] = t;
+        }
+    }
+    if !symmetric_eigen(
+        &mut sc.a[..ll * ll],
+        &mut sc.eig[..ll],
+        &mut sc.es[..3 * ll],
+        ll,
+    ) {
+        return false;
+    }
+    let lam = sh.settings.inflation;
+    let c = (nf - 1.0) / lam;
+    let g0 = lam.sqrt();
+    let top = sc.eig[ll - 1].max(0.0);
+    let mut incr = 0.0;
+    let mut kept = 0;
+    for k in 0..ll {
+        let sig = sc.eig[k];
+        if !(sig > 1e-13 * top) {
+            continue;
+        }
+        let uk = &sc.a[k * ll..(k + 1) * ll];
+        let root = sig.sqrt();
+        // v = Bᵀ u_k / σ^{1/2}, p = v·X', u_k·d̃.
+        let v = &mut sc.vm[kept * nn..(kept + 1) * nn];
+        v.fill(0.0);
+        let mut ud = 0.0;
+        for r in 0..ll {
+            let f = uk[r] / root;
+            ud += uk[r] * sc.b[r];
+            for (d, &bv) in v.iter_mut().zip(&sc.bm[r * nn..(r + 1) * nn]) {
+                *d += f * bv;
+            }
+        }
+        let mut p = 0.0;
+        for (a, b) in v.iter().zip(&sc.u) {
+            p += a * b;
+        }
+        incr += p * root * ud / (c + sig);
+        sc.p[kept] = p * (((nf - 1.0) / (c + sig)).sqrt() - g0);
+        kept += 1;
+    }
+    let centre = mean + incr;
+    for (j, x) in xa.iter_mut().enumerate() {
+        let mut t = g0 * sc.u[j];
+        for k in 0..kept {
+            t += sc.p[k] * sc.vm[k * nn + j];
+        }
+        *x = centre + t;
+    }
+    xa.iter().all(|x| x.is_finite())
 }
 
 #[cfg(test)]
