@@ -49,7 +49,8 @@ pub enum FilterError {
     /// The request's compute deadline passed (or its client went away) inside one
     /// prediction.
     Deadline,
-    /// An update moved the mean of model state `state` (an index; the job layer names it)
+    /// An update moved the mean of state `state` (an index among all states, estimated
+    /// parameters included; the job layer names it)
     /// by `change`, so far that rounding the move to double precision (about
     /// `f64::EPSILON · |change|`) exceeds the posterior spread `spread` it ended with: the
     /// estimate would be noise of the arithmetic ([`check_resolution`]).
@@ -108,8 +109,7 @@ pub fn ensure_finite(a: &[f64], b: &[f64], what: &'static str) -> Result<(), Fil
 /// where Δxᵢ is the update's change of the mean (`change(i)`), σᵢ⁺ the posterior standard
 /// deviation (`variance_below(i, b)` gives the variance when it is below `b = (ε·|Δxᵢ|)²`,
 /// else `None`, so a filter may stop summing as soon as the spread is clearly wide enough)
-/// and ε = 2⁻⁵² the unit roundoff of IEEE 754
-/// binary64 (common practice). Adding Δx to the forecast and forming Δx from an innovation
+/// and ε = 2⁻⁵² the machine epsilon of IEEE 754 binary64 (common practice). Adding Δx to the forecast and forming Δx from an innovation
 /// of the same size each round at about ε·|Δx| (Higham 2002, *Accuracy and Stability of
 /// Numerical Algorithms*, §2.2, from memory), so past this point the mean is off by more than
 /// the spread the answer states. A state the update did not move (Δxᵢ = 0) always passes, so

@@ -48,6 +48,7 @@ impl FilterCore {
     /// The end of every update: make the covariance symmetric, `(P + Pᵀ)/2` (the array
     /// updates' `L Lᵀ` already is, so this changes nothing there), and refuse a non-finite
     /// mean or covariance.
+    ///
     /// `dx` is the change the update made to the mean: it must stay resolvable at the
     /// posterior spread ([`check_resolution`]).
     pub fn finish_update(&mut self, dx: &[f64]) -> Result<(), FilterError> {
