@@ -164,7 +164,7 @@ impl Library {
 const BATCH: usize = 512;
 
 /// Evaluate every output of `prog` (over the series' slots) at every sample, output `k`
-/// of sample `i` into `out[k * m + i]`; batches of [`BATCH`] samples, `stop` between them.
+/// of sample `i` into `out[k * m + i]`; batches of 512 samples (`BATCH`), `stop` between them.
 pub fn evaluate(
     prog: &Program,
     series: &Series,

@@ -11,8 +11,10 @@
 //! Rates are never taken from finite differences of the data. The regression uses the
 //! integral form of the model over windows of `w` sample intervals,
 //! x(t_{k+w}) − x(t_k) = ∫ f(x, u) dt ≈ Σ (Δt/2)(θ(t_i) + θ(t_{i+1})) ξ (trapezoid rule),
-//! which handles irregular sampling and does not amplify reading noise: the noise of the
-//! two end readings enters the left side once, with the same weight whatever `w`, while
+//! where an input keeps its value from its sample to the next (as `/v1/estimate` holds
+//! a line's inputs), so the right end of an interval reads the new states with the old
+//! inputs. The integral form handles irregular sampling and does not amplify reading
+//! noise: the noise of the two end readings enters the left side once, with the same weight whatever `w`, while
 //! the signal grows with the window (the integral or "weak" formulation, Schaeffer &
 //! McCalla 2017, Phys. Rev. E 96; common practice). Its limits: the trapezoid rule is
 //! exact only to O(Δt²) per interval, so sampling must resolve the fastest dynamics
@@ -59,6 +61,28 @@ impl Series {
     pub fn slot(&self, s: usize) -> &[f64] {
         let m = self.len();
         &self.values[s * m..(s + 1) * m]
+    }
+
+    /// The series seen from the end of each interval with the inputs held: states of
+    /// samples 1..m, inputs of samples 0..m−1 (`None` without inputs).
+    pub fn held(&self) -> Option<Series> {
+        let m = self.len();
+        if self.inputs == 0 || m < 2 {
+            return None;
+        }
+        let mut values = Vec::with_capacity((self.states + self.inputs) * (m - 1));
+        for s in 0..self.states {
+            values.extend_from_slice(&self.slot(s)[1..]);
+        }
+        for s in self.states..self.states + self.inputs {
+            values.extend_from_slice(&self.slot(s)[..m - 1]);
+        }
+        Some(Series {
+            t: self.t[1..].to_vec(),
+            values,
+            states: self.states,
+            inputs: self.inputs,
+        })
     }
 
     /// Whether every gap between samples equals the first within `rel` (relative).

@@ -33,19 +33,31 @@ pub struct Design {
     pub span: Vec<f64>,
 }
 
+/// Columns of terms (or known rates) over the samples: `at[j * m + i]` at sample i, and
+/// `held[j * (m − 1) + i]` at the states of sample i + 1 with the inputs of sample i (the
+/// right end of interval i under inputs held from one sample to the next; empty when
+/// there are no inputs, as it then equals `at` at sample i + 1).
+#[derive(Debug, Clone, Default)]
+pub struct Columns {
+    /// At each sample.
+    pub at: Vec<f64>,
+    /// At the end of each interval, inputs held.
+    pub held: Vec<f64>,
+}
+
 /// Rows of the integral form over samples `a..b` in windows of `w` intervals. `cols` are
 /// the library columns (term-major, `series.len()` each), `known` the known rates
 /// (state-major) or empty.
 pub fn integral(
     series: &Series,
-    cols: &[f64],
-    known: &[f64],
+    cols: &Columns,
+    known: &Columns,
     (a, b): (usize, usize),
     w: usize,
     stop: &Stop,
 ) -> Result<Design, IdentifyError> {
     let m = series.len();
-    let terms = cols.len() / m.max(1);
+    let terms = cols.at.len() / m.max(1);
     let n = series.states;
     let starts: Vec<usize> = (a..b).step_by(w.max(1)).filter(|&k| k + w < b).collect();
     let rows = starts.len();
@@ -58,18 +70,24 @@ pub fn integral(
             .map(|&k| series.t[k + w] - series.t[k])
             .collect(),
     };
-    let trapezoid = |col: &[f64], k: usize| -> f64 {
+    // The right end of interval i is the term at (x(t_{i+1}), u(t_i)): inputs hold.
+    let trapezoid = |c: &Columns, j: usize, k: usize| -> f64 {
+        let col = &c.at[j * m..(j + 1) * m];
         let mut acc = 0.0;
         for i in k..k + w {
-            acc += 0.5 * (series.t[i + 1] - series.t[i]) * (col[i] + col[i + 1]);
+            let right = if c.held.is_empty() {
+                col[i + 1]
+            } else {
+                c.held[j * (m - 1) + i]
+            };
+            acc += 0.5 * (series.t[i + 1] - series.t[i]) * (col[i] + right);
         }
         acc
     };
     for j in 0..terms {
         halt(stop)?;
-        let col = &cols[j * m..(j + 1) * m];
         for (r, &k) in starts.iter().enumerate() {
-            d.phi[j * rows + r] = trapezoid(col, k);
+            d.phi[j * rows + r] = trapezoid(cols, j, k);
         }
     }
     for s in 0..n {
@@ -77,8 +95,8 @@ pub fn integral(
         let x = series.slot(s);
         for (r, &k) in starts.iter().enumerate() {
             let mut v = x[k + w] - x[k];
-            if !known.is_empty() {
-                v -= trapezoid(&known[s * m..(s + 1) * m], k);
+            if !known.at.is_empty() {
+                v -= trapezoid(known, s, k);
             }
             d.y[s * rows + r] = v;
         }
@@ -88,7 +106,8 @@ pub fn integral(
 
 /// Rows of a discrete map over samples `a..b`: each sample's terms against the next
 /// sample's states.
-pub fn discrete(series: &Series, cols: &[f64], (a, b): (usize, usize)) -> Design {
+pub fn discrete(series: &Series, cols: &Columns, (a, b): (usize, usize)) -> Design {
+    let cols = &cols.at[..];
     let m = series.len();
     let terms = cols.len() / m.max(1);
     let n = series.states;

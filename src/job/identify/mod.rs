@@ -13,10 +13,11 @@ mod parse;
 use super::setup::cancelled;
 use super::{Done, RunStats};
 use crate::config::Limits;
+use crate::formula::Program;
 use crate::identify::library::{evaluate, Library};
 use crate::identify::noise::{mean, mean_square, split, Spread};
-use crate::identify::regress::{discrete, integral, residual_rms, residuals, stlsq};
-use crate::identify::{moving_inputs, Coefficients, Fit, IdentifyError};
+use crate::identify::regress::{discrete, integral, residual_rms, residuals, stlsq, Columns};
+use crate::identify::{moving_inputs, Coefficients, Fit, IdentifyError, Series};
 use crate::model::{Halt, Stop};
 use crate::problem::{Problem, ProblemKind};
 use parse::{Form, Request};
@@ -96,16 +97,19 @@ fn fit(req: &Request, stop: &Stop) -> Result<Fitted, IdentifyError> {
             req.sparsity,
         ),
     };
-    let cols = lib.columns(s, stop)?;
-    let mut known = Vec::new();
+    let held = s.held();
+    let cols = Columns {
+        at: lib.columns(s, stop)?,
+        held: match &held {
+            Some(h) => lib.columns(h, stop)?,
+            None => Vec::new(),
+        },
+    };
+    let mut known = Columns::default();
     if let Some((prog, _)) = &req.known {
-        known = vec![0.0; n * m];
-        evaluate(prog, s, stop, &mut known)?;
-        if let Some(i) = known.iter().position(|v| !v.is_finite()) {
-            return Err(IdentifyError::NotFinite {
-                what: format!("known rate of {}", req.states[i / m]),
-                sample: i % m,
-            });
+        known.at = known_rates(prog, s, &req.states, stop)?;
+        if let Some(h) = &held {
+            known.held = known_rates(prog, h, &req.states, stop)?;
         }
     }
     let cut = ((m as f64) * (1.0 - req.holdout)).round() as usize;
@@ -163,6 +167,25 @@ fn fit(req: &Request, stop: &Stop) -> Result<Fitted, IdentifyError> {
         step_covariance: Vec::new(),
         dt: 0.0,
     })
+}
+
+/// The known rates (one program output per state) at every sample of `s`, state-major.
+fn known_rates(
+    prog: &Program,
+    s: &Series,
+    states: &[String],
+    stop: &Stop,
+) -> Result<Vec<f64>, IdentifyError> {
+    let m = s.len();
+    let mut out = vec![0.0; states.len() * m];
+    evaluate(prog, s, stop, &mut out)?;
+    if let Some(i) = out.iter().position(|v| !v.is_finite()) {
+        return Err(IdentifyError::NotFinite {
+            what: format!("the known rate of {}", states[i / m]),
+            sample: i % m,
+        });
+    }
+    Ok(out)
 }
 
 /// A refusal of the core as a problem at the field it concerns.
