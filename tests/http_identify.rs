@@ -328,3 +328,115 @@ async fn known_form_fits_the_outlet_loss_and_its_model_recovers_the_draw_off() {
     );
     s.shutdown().await.unwrap();
 }
+
+/// Drive force (N) of the conveyor scenario at time `t`: 500, −300, 0 in turns of 20 s.
+fn drive(t: f64) -> f64 {
+    [500.0, -300.0, 0.0][((t / 20.0).floor() as usize) % 3]
+}
+
+/// An invented bottling-conveyor carriage (mass 850 kg, rolling drag `drag` N·s/m),
+/// position read by an encoder, speed not measured.
+fn conveyor(drag: f64) -> Value {
+    json!({
+        "states": ["pos", "vel"],
+        "inputs": ["drive"],
+        "dynamics": {"rates": {"pos": "vel", "vel": format!("(drive - {drag:e}*vel)/850")}},
+        "process_noise": {"density": {"vel": 0.0004}},
+        "sensors": {"encoder": {"measures": "pos", "std": 0.002}}
+    })
+}
+
+fn vel_rmse(est: &Answer, truth: &[(f64, f64)]) -> f64 {
+    assert_eq!(est.status, 200, "{}", est.text);
+    let e = est.body["estimates"].as_array().unwrap();
+    let sum: f64 = e
+        .iter()
+        .zip(truth)
+        .map(|(l, (_, v))| (l["mean"]["vel"].as_f64().unwrap() - v).powi(2))
+        .sum();
+    (sum / e.len() as f64).sqrt()
+}
+
+/// The workflow for a partly measured plant (README "Getting a model"): smooth under a
+/// rough model to recover the unmeasured speed, identify the drag from the smoothed states
+/// with the `known` form, calibrate the identified model's noise, and estimate with it.
+/// The true drag (120) is the scenario's own; the checks compare with it and with the
+/// rough model (drag 60), not with an outside figure.
+#[tokio::test]
+async fn smooth_then_identify_then_calibrate_improves_a_rough_model() {
+    let s = start_default().await;
+    let changes: Vec<Value> = (1..15)
+        .map(|i| json!({"t": i as f64 * 20.0, "inputs": {"drive": drive(i as f64 * 20.0)}}))
+        .collect();
+    let prior = json!({"t": 0, "mean": {"pos": 0.0, "vel": 0.0},
+                       "std": {"pos": 0.01, "vel": 0.1}, "inputs": {"drive": 500.0}});
+    let sim = json!({"model": conveyor(120.0), "prior": prior.clone(),
+                     "times": {"start": 0.1, "step": 0.1, "count": 3000},
+                     "inputs": changes, "seed": 3});
+    let sim = post_json(&s, "/v1/simulate", &sim).await;
+    assert_eq!(sim.status, 200, "{}", sim.text);
+    let truth: Vec<(f64, f64)> = sim.body["truth"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| {
+            (
+                l["t"].as_f64().unwrap(),
+                l["state"]["vel"].as_f64().unwrap(),
+            )
+        })
+        .collect();
+    let meas = sim.body["measurements"].clone();
+    let run = |model: Value| {
+        json!({"model": model, "filter": {"method": "ekf"}, "prior": prior.clone(),
+               "measurements": meas.clone()})
+    };
+
+    // 1. Smooth under the rough model: the speed, never measured, comes back.
+    let sm = post_json(&s, "/v1/smooth", &run(conveyor(60.0))).await;
+    assert_eq!(sm.status, 200, "{}", sm.text);
+    let mut series: Vec<Value> = Vec::new();
+    let mut last = f64::NEG_INFINITY;
+    for e in sm.body["estimates"].as_array().unwrap() {
+        let t = e["t"].as_f64().unwrap();
+        if t > last {
+            series
+                .push(json!({"t": t, "values": e["mean"].clone(), "inputs": {"drive": drive(t)}}));
+            last = t;
+        }
+    }
+
+    // 2. Identify the drag: the force balance is known, the drag is the remainder.
+    let id = json!({"form": "known", "states": ["pos", "vel"], "inputs": ["drive"],
+                    "series": series,
+                    "known": {"rates": {"pos": "vel", "vel": "drive/850"}},
+                    "library": {"degree": 1}, "sparsity": 0.01});
+    let a = post_json(&s, "/v1/identify", &id).await;
+    assert_eq!(a.status, 200, "{}", a.text);
+    let c = coefficient(&a, "vel", "vel").expect("the drag term survives");
+    let (truth_c, rough_c) = (-120.0 / 850.0, -60.0 / 850.0);
+    assert!(
+        (c - truth_c).abs() < 0.1 * truth_c.abs()
+            && (c - truth_c).abs() < (rough_c - truth_c).abs(),
+        "drag coefficient {c}: true {truth_c}, rough {rough_c}: {}",
+        a.text
+    );
+
+    // 3. Calibrate the identified model's noise on the original readings.
+    let mut found = a.body["model"].clone();
+    found["sensors"] = json!({"encoder": {"measures": "pos", "std": 0.01}});
+    let mut cal = run(found);
+    cal["free"] = json!({"/model/process_noise/density/vel": {}, "/model/sensors/encoder/std": {}});
+    let cal = post_json(&s, "/v1/calibrate", &cal).await;
+    assert_eq!(cal.status, 200, "{}", cal.text);
+
+    // 4. The calibrated, identified model tracks the unmeasured speed better than the rough one.
+    let tuned = post_json(&s, "/v1/estimate", &cal.body["request"]).await;
+    let rough = post_json(&s, "/v1/estimate", &run(conveyor(60.0))).await;
+    let (rt, rr) = (vel_rmse(&tuned, &truth), vel_rmse(&rough, &truth));
+    assert!(
+        rt < rr,
+        "speed RMSE: identified and calibrated {rt}, rough {rr}"
+    );
+    s.shutdown().await.unwrap();
+}
