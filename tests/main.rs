@@ -14,6 +14,7 @@ mod http_calibrate;
 mod http_core;
 mod http_errors;
 mod http_hardening;
+mod http_identify;
 mod http_logs;
 mod http_memory;
 mod http_simulate;
