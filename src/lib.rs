@@ -54,6 +54,7 @@ pub mod dynamics;
 pub mod filter;
 pub mod formula;
 pub mod http;
+pub mod identify;
 pub mod job;
 pub mod linalg;
 pub mod model;
