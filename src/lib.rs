@@ -10,7 +10,7 @@
 //! map from a request to a filter step.
 //!
 //! Imports point down: [`http`], [`cli`] → [`job`] → the estimation core ([`filter`],
-//! [`diagnostics`], [`dynamics`], [`simulate`]) → [`formula`], [`request`], [`model`],
+//! [`diagnostics`], [`dynamics`], [`simulate`], [`identify`]) → [`formula`], [`request`], [`model`],
 //! [`linalg`]. The web layer knows no filter, the estimation core knows no request bytes,
 //! and [`problem`] is the one error shape the request side shares.
 //!

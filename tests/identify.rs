@@ -3,7 +3,7 @@
 //! - R13 (docs/references.md): `subspace` on a chosen 4th-order, 2-input, 2-output
 //!   discrete plant; poles and frequency response compared with `scipy.signal`
 //!   (tests/data/r13_fixtures.json, made by tests/data/make_r13_fixtures.py);
-//! - `reduced` (dynamic mode decomposition) on a heat-diffusion rod of 200 nodes with
+//! - R16: `reduced` (dynamic mode decomposition) on a heat-diffusion rod of 200 nodes with
 //!   fixed ends, whose rates are the eigenvalues of the discrete Laplacian in closed form;
 //! - both fits written as v1 model sections and posted to `/v1/estimate` (200).
 
@@ -221,8 +221,9 @@ fn dmd_of_a_200_node_heat_rod_gives_the_leading_closed_form_decay_rates_within_o
     for k in 1..=5 {
         let (re, im) = fit.rates[k - 1];
         let want = closed_form_rate(k, 200, 1.0);
-        // Closed-form eigenvalues of the discrete Laplacian with fixed ends (common
-        // practice): each leading rate within 1 %, and no oscillation.
+        // R16 (docs/references.md): closed-form eigenvalues of the discrete Laplacian with
+        // fixed ends (common practice); DMD per Tu et al. 2014, Alg. 2: each leading rate
+        // within 1 %, and no oscillation.
         assert!(
             ((re - want) / want).abs() < 0.01,
             "mode {k}: rate {re} vs {want}"
