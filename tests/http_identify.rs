@@ -187,13 +187,13 @@ async fn refusals_name_their_field() {
     assert_pointer(&a, "/library");
     assert!(a.text.contains("x*y"), "{}", a.text);
 
-    // The forms of the other kernels are checked, then refused at /form.
+    // Two samples are far too few for a subspace fit: refused at the series.
     let sub = json!({"form": "subspace", "outputs": ["y1"], "inputs": ["u"], "order": "auto",
                      "series": [{"t": 0, "values": [1.0], "inputs": [0.0]},
                                 {"t": 1, "values": [2.0], "inputs": [1.0]}]});
     let a = post_json(&s, "/v1/identify", &sub).await;
     assert_problem(&a, 422);
-    assert_pointer(&a, "/form");
+    assert_pointer(&a, "/series");
     s.shutdown().await.unwrap();
 }
 

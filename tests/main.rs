@@ -19,6 +19,7 @@ mod http_logs;
 mod http_memory;
 mod http_simulate;
 mod http_time;
+mod identify;
 mod no_alloc;
 mod openapi;
 mod request_keys;

@@ -22,13 +22,30 @@
 //! also fed into the terms (errors in variables), a bias of the order of the noise
 //! variance over the state variance.
 //!
+//! Two more forms need no state series, only plain matrices:
+//!
+//! - [`subspace`]: a linear state-space model in innovation form from input and output
+//!   series (N4SID oblique projection, Van Overschee & De Moor 1994);
+//! - [`reduced`]: a rank-r linear model over a few mode amplitudes from many-state
+//!   snapshots (dynamic mode decomposition, Schmid 2010; Tu et al. 2014).
+//!
+//! Those two kernels take a [`Stop`](crate::model::Stop) for the deadline and cancel flag
+//! and answer a fit or a [`KernelError`]: a refusal that names the request field at fault,
+//! or the halt that stopped it; [`section`] writes their fits as v1 model sections.
+//!
 //! `library.rs` builds and evaluates the candidate terms, `regress.rs` the windows and
 //! the thresholded least squares, `noise.rs` the noise figures of the fitted model.
 //! Nothing here knows request bytes.
 
 pub mod library;
 pub mod noise;
+pub mod reduced;
+pub mod refusal;
 pub mod regress;
+pub mod section;
+pub mod subspace;
+
+pub use refusal::{IdentifyRefusal, KernelError};
 
 use crate::model::Halt;
 

@@ -3,11 +3,11 @@
 //!
 //! `parse.rs` reads the request into checked types; this file runs the form over
 //! [`crate::identify`] and turns its refusals into problems at the request's fields;
-//! `answer.rs` writes the model, the terms and the fit. The forms `subspace` and
-//! `reduced` are parsed in full and answered by [`answer_subspace`] and
-//! [`answer_reduced`].
+//! `answer.rs` writes the model, the terms and the fit; `modal.rs` runs and answers the
+//! `subspace` and `reduced` forms.
 
 mod answer;
+mod modal;
 mod parse;
 
 use super::setup::cancelled;
@@ -26,8 +26,8 @@ use parse::{Form, Request};
 pub(crate) fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     let req = parse::request(body, limits)?;
     let body = match req.form {
-        Form::Subspace => answer_subspace(&req)?,
-        Form::Reduced => answer_reduced(&req)?,
+        Form::Subspace => return modal::answer_subspace(&req, stop),
+        Form::Reduced => return modal::answer_reduced(&req, stop),
         Form::Linear { .. } | Form::Sparse | Form::Known => {
             let fitted = fit(&req, stop).map_err(|e| problem(e, &req))?;
             answer::write(&req, &fitted)
@@ -37,30 +37,6 @@ pub(crate) fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done
         body,
         stats: RunStats::default(),
     })
-}
-
-/// The `subspace` form: not in this build (its request is fully checked first).
-fn answer_subspace(req: &Request) -> Result<Vec<u8>, Problem> {
-    Err(Problem::field(
-        "/form",
-        format!(
-            "the subspace form is not available in this build ({} outputs, order {:?})",
-            req.outputs.len(),
-            req.order
-        ),
-    ))
-}
-
-/// The `reduced` form: not in this build (its request is fully checked first).
-fn answer_reduced(req: &Request) -> Result<Vec<u8>, Problem> {
-    Err(Problem::field(
-        "/form",
-        format!(
-            "the reduced form is not available in this build ({} states, order {:?})",
-            req.states.len(),
-            req.order
-        ),
-    ))
 }
 
 /// What a fitted form gives the answer.

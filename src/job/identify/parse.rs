@@ -28,9 +28,9 @@ pub(crate) enum Form {
     Sparse,
     /// Known rates plus a sparse remainder.
     Known,
-    /// Linear state space from inputs and outputs (answered elsewhere).
+    /// Linear state space from inputs and outputs (answered in `modal.rs`).
     Subspace,
-    /// Few-mode linear model of many states (answered elsewhere).
+    /// Few-mode linear model of many states (answered in `modal.rs`).
     Reduced,
 }
 
@@ -65,6 +65,10 @@ pub(crate) struct Request {
     pub(crate) order: Order,
 }
 
+/// The most states a `reduced` request may name (its snapshots are also bounded by the
+/// body size and `max_identify_samples`).
+pub(crate) const REDUCED_MAX_STATES: usize = 100_000;
+
 const FIELDS: &[&str] = &[
     "form", "states", "inputs", "outputs", "series", "known", "library", "sparsity", "order",
     "holdout", "time", "window",
@@ -93,9 +97,29 @@ pub(crate) fn request(body: &[u8], limits: &Limits) -> Result<Request, Problem> 
         .required("form", &mut errs)
         .and_then(|v| form(v, &top, &mut errs));
     let subspace = form == Some(Form::Subspace);
-    let states = names(&top, "states", !subspace, limits, &mut errs);
-    let inputs = names(&top, "inputs", false, limits, &mut errs);
-    let outputs = names(&top, "outputs", subspace, limits, &mut errs);
+    // A reduced model is for plants of many states: its names are bounded by the body
+    // and by REDUCED_MAX_STATES, not by the filters' max_states.
+    let state_cap = if form == Some(Form::Reduced) {
+        REDUCED_MAX_STATES
+    } else {
+        limits.max_states
+    };
+    let states = names(&top, "states", !subspace, state_cap, &mut errs);
+    let inputs = names(&top, "inputs", false, limits.max_states, &mut errs);
+    let outputs = names(&top, "outputs", subspace, state_cap, &mut errs);
+    if form == Some(Form::Reduced) {
+        for (i, o) in outputs.iter().enumerate() {
+            if !states.contains(o) {
+                errs.push(
+                    &index(&top.at("outputs"), i),
+                    format!(
+                        "'{o}' is not among the states; a reduced model's outputs name the \
+                         states its sensors read"
+                    ),
+                );
+            }
+        }
+    }
     let valued = if subspace { &outputs } else { &states };
     let series = top
         .required("series", &mut errs)
@@ -204,13 +228,7 @@ fn form(v: &Value, top: &Obj<'_>, errs: &mut Errors) -> Option<Form> {
 }
 
 /// A list of distinct, non-empty names (required or not).
-fn names(
-    top: &Obj<'_>,
-    key: &str,
-    required: bool,
-    limits: &Limits,
-    errs: &mut Errors,
-) -> Vec<String> {
+fn names(top: &Obj<'_>, key: &str, required: bool, cap: usize, errs: &mut Errors) -> Vec<String> {
     let ptr = top.at(key);
     let v = if required {
         top.required(key, errs)
@@ -220,14 +238,10 @@ fn names(
     let Some(items) = v.and_then(|v| array(v, &ptr, errs)) else {
         return Vec::new();
     };
-    if items.len() > limits.max_states {
+    if items.len() > cap {
         errs.push(
             &ptr,
-            format!(
-                "{} names exceed the limit of {}",
-                items.len(),
-                limits.max_states
-            ),
+            format!("{} names exceed the limit of {cap}", items.len()),
         );
         return Vec::new();
     }
