@@ -37,6 +37,9 @@ pub enum Command {
     /// /v1/calibrate) and print the answer; a progress bar on standard error when it is a
     /// terminal.
     Calibrate(FileArgs),
+    /// Build a model from recorded history (JSON as for POST /v1/identify) and print
+    /// the answer: its `model` is a model section the other commands accept.
+    Identify(FileArgs),
     /// Run the invented demo plants (crane, water tower, kiln) end to end against the
     /// service started in-process on a free loopback port, and print what was recovered.
     Demo(DemoArgs),
@@ -271,6 +274,12 @@ pub fn dispatch(cli: Cli) -> Result<(), CliError> {
             print_body(&job::simulate(&body, &limits, &stop)?.body)
         }
         Command::Calibrate(a) => calibrate(&a),
+        Command::Identify(a) => {
+            let limits = a.limits.to_limits().map_err(CliError::Other)?;
+            let body = read_all(&a.file)?;
+            let stop = Stop::within(limits.deadline);
+            print_body(&job::identify(&body, &limits, &stop)?.body)
+        }
         Command::Demo(a) => demo(&a),
     }
 }

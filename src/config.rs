@@ -23,6 +23,10 @@ pub struct Limits {
     pub max_lines: usize,
     /// Most simulated times in one simulate request.
     pub max_sim_times: usize,
+    /// Most samples in one identify request's `series`.
+    pub max_identify_samples: usize,
+    /// Most candidate terms in one identify request's library.
+    pub max_identify_terms: usize,
     /// Longest formula, characters.
     pub max_formula_len: usize,
     /// Deepest nesting of a formula (parentheses, calls, unary operators).
@@ -94,6 +98,8 @@ impl Default for Limits {
             max_members: 4096,
             max_lines: 5_000_000,
             max_sim_times: 1_000_000,
+            max_identify_samples: 1_000_000,
+            max_identify_terms: 200,
             max_formula_len: 4096,
             max_formula_depth: 64,
             max_gap_steps: 10_000_000,

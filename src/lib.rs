@@ -10,9 +10,9 @@
 //! map from a request to a filter step.
 //!
 //! Imports point down: [`http`], [`cli`] → [`job`] → the estimation core ([`filter`],
-//! [`diagnostics`], [`dynamics`], [`simulate`]) → [`formula`], [`request`], [`model`],
-//! [`linalg`]. The web layer knows no filter, the estimation core knows no request bytes,
-//! and [`problem`] is the one error shape the request side shares.
+//! [`diagnostics`], [`dynamics`], [`simulate`], [`identify`]) → [`formula`], [`request`],
+//! [`model`], [`linalg`]. The web layer knows no filter, the estimation core knows no
+//! request bytes, and [`problem`] is the one error shape the request side shares.
 //!
 //! # Example
 //!
@@ -54,6 +54,7 @@ pub mod dynamics;
 pub mod filter;
 pub mod formula;
 pub mod http;
+pub mod identify;
 pub mod job;
 pub mod linalg;
 pub mod model;

@@ -21,7 +21,7 @@ const LONG_FILES: &[(&str, &str)] = &[];
 const LAYERS: &[&[&str]] = &[
     &["http", "cli", "demo"],
     &["job"],
-    &["filter", "diagnostics", "dynamics", "simulate"],
+    &["filter", "diagnostics", "dynamics", "simulate", "identify"],
     &["formula", "request", "model", "linalg", "problem", "config"],
 ];
 

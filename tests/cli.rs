@@ -12,7 +12,7 @@ fn help_lists_the_subcommands_without_demo() {
     let out = tacit().arg("--help").output().unwrap();
     assert!(out.status.success());
     let text = String::from_utf8_lossy(&out.stdout);
-    for cmd in ["serve", "run", "check", "simulate", "calibrate"] {
+    for cmd in ["serve", "run", "check", "simulate", "calibrate", "identify"] {
         assert!(text.contains(cmd), "{cmd} in {text}");
     }
     let out = tacit().args(["serve", "--help"]).output().unwrap();

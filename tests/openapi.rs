@@ -565,6 +565,7 @@ async fn every_example_answer_is_the_live_answer_to_its_example_request() {
         "POST /v1/smooth kiln",
         "POST /v1/simulate crane_trolley",
         "POST /v1/check crane_trolley",
+        "POST /v1/identify kiln",
         "POST /v1/calibrate water_tower",
         "GET /v1/info defaults",
         "GET /healthz ok",

@@ -126,7 +126,7 @@ impl Ekf {
             log_det += out.s.ln();
         }
         self.arr.covariance(self.core.cov.as_mut_slice());
-        self.core.finish_update()?;
+        self.core.finish_update(&self.dx)?;
         Ok((nis, log_det))
     }
 
@@ -161,7 +161,7 @@ impl Ekf {
             *x += d;
         }
         self.arr.covariance(self.core.cov.as_mut_slice());
-        self.core.finish_update()?;
+        self.core.finish_update(&self.dx)?;
         Ok((nis, log_det))
     }
 }

@@ -23,7 +23,7 @@ use observe::ObsSpace;
 use shared::FilterCore;
 
 /// Why a filter step could not go on. The run loop adds the step and time.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq)]
 #[non_exhaustive]
 pub enum FilterError {
     /// A non-finite value appeared in the named quantity.
@@ -49,6 +49,19 @@ pub enum FilterError {
     /// The request's compute deadline passed (or its client went away) inside one
     /// prediction.
     Deadline,
+    /// An update moved the mean of state `state` (an index among all states, estimated
+    /// parameters included; the job layer names it)
+    /// by `change`, so far that rounding the move to double precision (about
+    /// `f64::EPSILON · |change|`) exceeds the posterior spread `spread` it ended with: the
+    /// estimate would be noise of the arithmetic ([`check_resolution`]).
+    LostPrecision {
+        /// Index of the state among all states.
+        state: usize,
+        /// The update's change of the state's mean.
+        change: f64,
+        /// The state's posterior standard deviation.
+        spread: f64,
+    },
 }
 
 impl std::fmt::Display for FilterError {
@@ -68,6 +81,15 @@ impl std::fmt::Display for FilterError {
             }
             FilterError::Integration(why) => write!(f, "integration failed: {why}"),
             FilterError::Deadline => write!(f, "the compute deadline passed during a prediction"),
+            FilterError::LostPrecision {
+                state,
+                change,
+                spread,
+            } => write!(
+                f,
+                "the update moved state #{state} by {change:e} to a spread of {spread:e}; rounding a move that large to double precision costs about {:e}, more than the spread, so the estimate would be noise of the arithmetic (the forecast ran far from the readings: a long gap on growing dynamics, or a prior far from the readings; shorten the gap, start from a prior near the readings, or shift the state's origin)",
+                f64::EPSILON * change.abs()
+            ),
         }
     }
 }
@@ -80,6 +102,37 @@ pub fn ensure_finite(a: &[f64], b: &[f64], what: &'static str) -> Result<(), Fil
     } else {
         Err(FilterError::NonFinite(what))
     }
+}
+
+/// Refuse an update that moved the mean further than double precision can resolve at its
+/// result: for each state i, `ε·|Δxᵢ| > σᵢ⁺` fails with [`FilterError::LostPrecision`],
+/// where Δxᵢ is the update's change of the mean (`change(i)`), σᵢ⁺ the posterior standard
+/// deviation (`variance_below(i, b)` gives the variance when it is below `b = (ε·|Δxᵢ|)²`,
+/// else `None`, so a filter may stop summing as soon as the spread is clearly wide enough)
+/// and ε = 2⁻⁵² the machine epsilon of IEEE 754 binary64 (common practice). Adding Δx to the forecast and forming Δx from an innovation
+/// of the same size each round at about ε·|Δx| (Higham 2002, *Accuracy and Stability of
+/// Numerical Algorithms*, §2.2, from memory), so past this point the mean is off by more than
+/// the spread the answer states. A state the update did not move (Δxᵢ = 0) always passes, so
+/// a collapsed spread alone never fails here.
+pub fn check_resolution(
+    n: usize,
+    change: impl Fn(usize) -> f64,
+    variance_below: impl Fn(usize, f64) -> Option<f64>,
+) -> Result<(), FilterError> {
+    for i in 0..n {
+        let rounding = f64::EPSILON * change(i).abs();
+        if rounding == 0.0 {
+            continue;
+        }
+        if let Some(variance) = variance_below(i, rounding * rounding) {
+            return Err(FilterError::LostPrecision {
+                state: i,
+                change: change(i),
+                spread: variance.max(0.0).sqrt(),
+            });
+        }
+    }
+    Ok(())
 }
 
 /// One filter's belief and its two steps. Implementations preallocate everything in their
@@ -170,4 +223,35 @@ pub trait Estimator: Send {
 
     /// A copy for side predictions (`output.at`), which must not disturb the main run.
     fn clone_box(&self) -> Box<dyn Estimator>;
+}
+
+#[cfg(test)]
+mod resolution_tests {
+    use super::*;
+
+    #[test]
+    fn a_move_is_refused_exactly_when_its_rounding_exceeds_the_spread() {
+        // ε = 2⁻⁵² (IEEE 754 binary64, common practice): a move of 2⁵³ rounds at about 2,
+        // a move of 2⁵¹ at about 0.5, against a posterior spread of 1.
+        let var = |v: f64| move |_: usize, b: f64| (v < b).then_some(v);
+        assert_eq!(f64::EPSILON, 2f64.powi(-52));
+        let e = check_resolution(1, |_| -(2f64.powi(53)), var(1.0)).unwrap_err();
+        assert_eq!(
+            e,
+            FilterError::LostPrecision {
+                state: 0,
+                change: -(2f64.powi(53)),
+                spread: 1.0
+            }
+        );
+        assert!(check_resolution(1, |_| 2f64.powi(51), var(1.0)).is_ok());
+        // A state the update did not move passes whatever its spread (a collapsed spread
+        // is a warning elsewhere, not a refusal); a moved state with no spread fails.
+        assert!(check_resolution(1, |_| 0.0, var(0.0)).is_ok());
+        assert!(check_resolution(1, |_| 1.0, var(0.0)).is_err());
+        // The first offending state is named.
+        let moves = [0.0, 1.0, 2f64.powi(60)];
+        let e = check_resolution(3, |i| moves[i], var(1.0)).unwrap_err();
+        assert!(matches!(e, FilterError::LostPrecision { state: 2, .. }));
+    }
 }

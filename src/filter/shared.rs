@@ -5,7 +5,7 @@
 
 use crate::filter::observe::ObsSpace;
 use crate::filter::predict::Predictor;
-use crate::filter::{ensure_finite, FilterError};
+use crate::filter::{check_resolution, ensure_finite, FilterError};
 use crate::linalg::symmetrize;
 use crate::model::{Integration, Model};
 use nalgebra::{DMatrix, DVector};
@@ -48,8 +48,16 @@ impl FilterCore {
     /// The end of every update: make the covariance symmetric, `(P + Pᵀ)/2` (the array
     /// updates' `L Lᵀ` already is, so this changes nothing there), and refuse a non-finite
     /// mean or covariance.
-    pub fn finish_update(&mut self) -> Result<(), FilterError> {
+    ///
+    /// `dx` is the change the update made to the mean: it must stay resolvable at the
+    /// posterior spread ([`check_resolution`]).
+    pub fn finish_update(&mut self, dx: &[f64]) -> Result<(), FilterError> {
         symmetrize(&mut self.cov);
-        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")
+        ensure_finite(self.mean.as_slice(), self.cov.as_slice(), "updated state")?;
+        check_resolution(
+            self.mean.len(),
+            |i| dx[i],
+            |i, bound| (self.cov[(i, i)] < bound).then_some(self.cov[(i, i)]),
+        )
     }
 }

@@ -343,7 +343,7 @@ impl Estimator for Ukf {
         self.arr.covariance(self.core.cov.as_mut_slice());
         self.core.obs.joint_nis = nis;
         self.core.obs.log_det_s = log_det;
-        self.core.finish_update()?;
+        self.core.finish_update(&self.dx)?;
         Ok(true)
     }
 

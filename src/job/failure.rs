@@ -38,6 +38,10 @@ pub(super) fn step_problem(e: RunError, model: &Model) -> Problem {
                 format!("a non-finite value appeared in the rate formula of state \"{name}\" during integration"),
             )
         }),
+        RunError::Step {
+            cause: FilterError::LostPrecision { state, .. },
+            ..
+        } => model.states.get(*state).map(|name| (format!("state #{state} "), format!("state \"{name}\" "))),
         _ => None,
     };
     let mut p = Problem::from(e);

@@ -19,6 +19,7 @@ mod calibrate;
 mod check;
 mod failure;
 mod filtering;
+mod identify;
 mod pipeline;
 mod plain;
 pub mod records;
@@ -177,6 +178,12 @@ pub fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Probl
 /// [`simulate`] with the answer left in pieces (what the server sends).
 pub fn simulate_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Pieces, Problem> {
     simulate::simulate(body, limits, stop)
+}
+
+/// `POST /v1/identify`: `{form, states, inputs?, series, ...}`; a model section that
+/// `/v1/estimate` accepts, the fitted terms and the fit on a held-out tail.
+pub fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
+    identify::identify(body, limits, stop)
 }
 
 /// `POST /v1/check`: `{model, prior?}`.

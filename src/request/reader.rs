@@ -27,6 +27,11 @@ impl Errors {
         self.list.is_empty()
     }
 
+    /// How many errors were collected.
+    pub fn len(&self) -> usize {
+        self.list.len()
+    }
+
     /// The collected errors.
     pub fn into_vec(self) -> Vec<FieldError> {
         self.list

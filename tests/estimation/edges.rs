@@ -173,3 +173,60 @@ fn an_overflowing_prediction_is_a_422_naming_the_step() {
         assert!(var > 0.0 && var.is_finite(), "{method}: {var}");
     }
 }
+
+/// Item 12, the update: the same runaway zone at k = 100, now read once at t = 1 (1 ± 0.5
+/// against a forecast of e^100 ± e^100). The exact posterior is near the reading, but the
+/// update must move the mean by about −e^100 ≈ −2.69e43, and rounding that move to binary64
+/// costs about ε·e^100 ≈ 6e27 (ε = 2⁻⁵², IEEE 754, common practice), far more than the
+/// posterior spread of about 0.5: before, ekf and ukf answered 0 ± 0.5 and enkf ~1e26 ±
+/// 1e27. Every method now refuses with a 422 naming step 1 and the state.
+#[test]
+fn an_update_whose_move_is_lost_to_rounding_is_a_422_naming_the_state() {
+    for method in ["ekf", "ukf", "enkf"] {
+        let body = json!({
+            "model": {"states": ["zone"], "dynamics": {"rates": {"zone": "100*zone"}},
+                      "sensors": {"tc": {"measures": "zone", "std": 0.5}}},
+            "filter": {"method": method},
+            "prior": {"t": 0.0, "mean": {"zone": 1.0}, "std": {"zone": 1.0}},
+            "measurements": [{"t": 1.0, "values": {"tc": 1.0}}]
+        });
+        let p = estimate(&body).expect_err("a move lost to rounding must be refused");
+        assert_eq!(p.status, 422, "{method}: {p}");
+        assert!(p.type_uri.ends_with("/numerical-failure"), "{method}: {p}");
+        assert!(
+            p.detail.contains("step 1") && p.detail.contains("state \"zone\""),
+            "{method}: {p}"
+        );
+        // The move the detail reports is the forecast's distance from the reading: for the
+        // Gaussian filters the forecast mean e^100 exactly (the ensemble's is a sample mean).
+        let moved: f64 = p
+            .detail
+            .split(" by ")
+            .nth(1)
+            .unwrap()
+            .split(' ')
+            .next()
+            .unwrap()
+            .parse()
+            .unwrap();
+        if method != "enkf" {
+            assert!(
+                (moved / -(100f64.exp()) - 1.0).abs() < 1e-9,
+                "{method}: {moved}"
+            );
+        } else {
+            assert!(moved < -1e42, "{method}: {moved}");
+        }
+    }
+    // The same reading after a short gap (x grows by e^0.01 only) is answered near it.
+    let body = json!({
+        "model": {"states": ["zone"], "dynamics": {"rates": {"zone": "100*zone"}},
+                  "sensors": {"tc": {"measures": "zone", "std": 0.5}}},
+        "filter": {"method": "ekf"},
+        "prior": {"t": 0.0, "mean": {"zone": 1.0}, "std": {"zone": 1.0}},
+        "measurements": [{"t": 1e-4, "values": {"tc": 1.0}}]
+    });
+    let out = estimate(&body).unwrap();
+    let x = out["estimates"][0]["mean"]["zone"].as_f64().unwrap();
+    assert!((x - 1.0).abs() < 0.02, "{x}");
+}

@@ -14,6 +14,8 @@ set -euo pipefail
 
 root="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
 cd "$root"
+# shellcheck source=../support/serve.sh
+. "$root/tests/support/serve.sh"
 
 # The pin lives in .ci/run (`schemathesis_version=`); change it there only.
 version="${SCHEMATHESIS_VERSION:-$(sed -n 's/^schemathesis_version=//p' .ci/run)}"
@@ -42,6 +44,7 @@ log="$(mktemp)"
 pid=""
 cleanup() {
     local status=$?
+    pid="${TACIT_PID:-$pid}"
     if [[ -n "$pid" ]]; then
         kill "$pid" 2>/dev/null || true
         wait "$pid" 2>/dev/null || true
@@ -56,22 +59,8 @@ cleanup() {
 trap cleanup EXIT
 trap 'exit 130' INT TERM
 
-port="$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')"
-env -u TACIT_API_KEYS -u TACIT_API_KEYS_FILE "$bin" serve --addr "127.0.0.1:$port" >"$log" 2>&1 &
-pid=$!
-
-python3 - "$port" <<'PY'
-import sys, time, urllib.request
-url = f"http://127.0.0.1:{sys.argv[1]}/healthz"
-for _ in range(200):
-    try:
-        with urllib.request.urlopen(url, timeout=1) as r:
-            if r.status == 200:
-                sys.exit(0)
-    except OSError:
-        time.sleep(0.1)
-sys.exit(f"{url} did not answer within 20 s")
-PY
+tacit_start "$bin" "$log"
+port="$TACIT_PORT"
 
 # The hooks (tests/fuzz/hooks.py) send the stream's generated line as NDJSON.
 # No "examples" phase: the documented examples are checked against live answers by

@@ -16,7 +16,7 @@
 //! the members kept a positive definite spread.
 
 use super::members::Enkf;
-use crate::filter::FilterError;
+use crate::filter::{check_resolution, FilterError};
 use crate::linalg::{all_finite, cholesky};
 use crate::model::Reading;
 use crate::model::{EnsembleUpdate, Model};
@@ -45,6 +45,9 @@ impl Enkf {
             self.refresh_mean();
         }
         self.note_forecast_spread(model);
+        self.ws
+            .forecast_mean
+            .copy_from_slice(self.core.mean.as_slice());
         self.core.obs.begin(model, reading);
         self.pobs
             .eval(model, &self.core.obs.checks, &self.ensemble, u, t);
@@ -189,6 +192,33 @@ impl Enkf {
             return Err(FilterError::NonFinite("analysis members"));
         }
         self.keep_spread(self.cfg.update == EnsembleUpdate::Perturbed)?;
+        self.check_mean_resolution()?;
         Ok(true)
+    }
+
+    /// [`check_resolution`] of the analysis: the change of the ensemble mean against the
+    /// members' sample variance (divisor N − 1), summed only until it reaches the bound.
+    fn check_mean_resolution(&self) -> Result<(), FilterError> {
+        let nn = self.ensemble.nrows();
+        let (xs, mean, before) = (
+            self.ensemble.as_slice(),
+            self.core.mean.as_slice(),
+            &self.ws.forecast_mean,
+        );
+        check_resolution(
+            mean.len(),
+            |i| mean[i] - before[i],
+            |i, bound| {
+                let reach = bound * (nn as f64 - 1.0);
+                let mut sum = 0.0;
+                for x in &xs[i * nn..(i + 1) * nn] {
+                    sum += (x - mean[i]) * (x - mean[i]);
+                    if sum >= reach {
+                        return None;
+                    }
+                }
+                Some(sum / (nn as f64 - 1.0))
+            },
+        )
     }
 }

@@ -82,6 +82,8 @@ pub(super) struct Workspace {
     pub log_det_m: f64,
     /// Running sums, one per output of an innermost loop (`max(n, m, N)`).
     pub sums: Vec<f64>,
+    /// The forecast mean, before the analysis moved it, for the resolution check (`n`).
+    pub forecast_mean: Vec<f64>,
     /// Forecast spread (std) of each estimated parameter before the analysis, for the
     /// relaxation in `relax.rs` (`n` − model states).
     pub forecast_spread: Vec<f64>,
@@ -124,6 +126,7 @@ impl Workspace {
             reflector: vec![0.0; nn],
             log_det_m: 0.0,
             sums: vec![0.0; n.max(m).max(nn)],
+            forecast_mean: vec![0.0; n],
             forecast_spread: vec![0.0; parameters],
         }
     }

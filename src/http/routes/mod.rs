@@ -4,6 +4,7 @@
 mod calibrate;
 mod estimate;
 mod health;
+mod identify;
 mod info;
 mod metrics;
 mod model;
@@ -21,6 +22,7 @@ pub mod groups {
     pub use super::calibrate::router as calibrate;
     pub use super::estimate::router as estimate;
     pub use super::health::router as health;
+    pub use super::identify::router as identify;
     pub use super::info::router as info;
     pub use super::metrics::router as metrics;
     pub use super::model::router as model;

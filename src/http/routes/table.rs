@@ -4,7 +4,9 @@
 //! route cannot be served without being documented, nor documented without being served.
 
 use super::route::Route;
-use super::{calibrate, estimate, health, info, metrics, model, openapi, problems, stream};
+use super::{
+    calibrate, estimate, health, identify, info, metrics, model, openapi, problems, stream,
+};
 
 /// Every route group of the service.
 pub const ALL: &[&[Route]] = &[
@@ -17,6 +19,7 @@ pub const ALL: &[&[Route]] = &[
     stream::ROUTES,
     calibrate::ROUTES,
     model::ROUTES,
+    identify::ROUTES,
 ];
 
 /// Every route, flattened.
