@@ -15,6 +15,10 @@ pub struct Limits {
     pub max_line_bytes: usize,
     /// Most states (model states plus estimated parameters).
     pub max_states: usize,
+    /// Most states of a model written as state families (`model.families`), all
+    /// families together; such a model is analysed element by element, so it has its own
+    /// limit, far above `max_states`.
+    pub max_family_states: usize,
     /// Most sensors in one model.
     pub max_sensors: usize,
     /// Most ensemble members.
@@ -94,6 +98,7 @@ impl Default for Limits {
             max_body_bytes: 256 * 1024 * 1024,
             max_line_bytes: 1024 * 1024,
             max_states: 256,
+            max_family_states: 1_000_000,
             max_sensors: 256,
             max_members: 4096,
             max_lines: 5_000_000,

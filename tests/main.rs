@@ -13,6 +13,7 @@ mod http_bomb;
 mod http_calibrate;
 mod http_core;
 mod http_errors;
+mod http_families;
 mod http_hardening;
 mod http_identify;
 mod http_logs;

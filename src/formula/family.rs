@@ -259,6 +259,59 @@ impl FamilyKernel {
     }
 }
 
+/// The formula `text` of a family of `size` elements written out for one `element` as a
+/// plain formula: each `name[i±K]` becomes `state(column)` (the state-vector index it
+/// reads, wrapped on a periodic family) or the fixed boundary's constant in parentheses,
+/// and each `a[i]` of a parameter array becomes that element's value in parentheses
+/// (shortest round-trip form, so the same number). Used to lower a family model of a few
+/// hundred states into the plain model the Gaussian filters run on. `None` where the text
+/// does not compile as a family formula ([`FamilyKernel::compile`] reports why).
+pub fn element_text(
+    text: &str,
+    set: &FamilySet,
+    size: usize,
+    arrays: &[(&str, &[f64])],
+    element: usize,
+    state: &dyn Fn(usize) -> String,
+) -> Option<String> {
+    let names: Vec<&str> = arrays.iter().map(|a| a.0).collect();
+    let (slotted, loads) = rewrite(text, set, size, &names).ok()?;
+    let slots: Vec<String> = loads.iter().map(|l| slot_name(set, *l)).collect();
+    let mut out = String::with_capacity(slotted.len() + 16);
+    let chars: Vec<char> = slotted.chars().collect();
+    let mut k = 0;
+    while k < chars.len() {
+        let c = chars[k];
+        if !(c.is_alphabetic() || c == '_') {
+            if !c.is_whitespace() || !out.ends_with(' ') {
+                out.push(c);
+            }
+            k += 1;
+            continue;
+        }
+        let start = k;
+        while k < chars.len() && (chars[k].is_alphanumeric() || chars[k] == '_') {
+            k += 1;
+        }
+        let word: String = chars[start..k].iter().collect();
+        if let Some(s) = slots.iter().position(|n| *n == word) {
+            let l = loads[s];
+            match set.column(l.family, element, l.offset) {
+                Some(col) => out.push_str(&state(col)),
+                None => match set.shapes[l.family].boundary {
+                    Boundary::Fixed(v) => out.push_str(&format!("({v:?})")),
+                    Boundary::Periodic => return None,
+                },
+            }
+        } else if let Some(a) = arrays.iter().find(|a| a.0 == word) {
+            out.push_str(&format!("({:?})", a.1[element]));
+        } else {
+            out.push_str(&word);
+        }
+    }
+    Some(out)
+}
+
 /// The internal slot name of a load (what `rewrite` writes into the text).
 fn slot_name(set: &FamilySet, l: Load) -> String {
     let name = &set.shapes[l.family].name;

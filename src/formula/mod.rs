@@ -55,7 +55,9 @@ mod tests;
 pub use affine::AffineForm;
 pub use error::FormulaError;
 pub use eval::{BatchWorkspace, Workspace};
-pub use family::{Boundary, FamilyKernel, FamilySet, FamilyShape, FamilyWorkspace, Load};
+pub use family::{
+    element_text, Boundary, FamilyKernel, FamilySet, FamilyShape, FamilyWorkspace, Load,
+};
 pub use parser::MAX_DEPTH_CEILING;
 pub use program::{FormulaLimits, Program, Source};
 

@@ -4,7 +4,7 @@
 
 use crate::config::Limits;
 use crate::model::Stop;
-use crate::model::{FilterConfig, Model, OutputConfig, Prior, Zone};
+use crate::model::{FamilyModel, FilterConfig, Model, OutputConfig, Prior, Zone};
 use crate::problem::{FieldError, Problem, ProblemKind};
 use crate::request::envelope::{self, Envelope};
 use crate::request::validate;
@@ -37,9 +37,23 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
     let output_v = envelope::optional_section(env.output, "output")?;
     let zone = envelope::time_zone(env)?;
     let mut errors: Vec<FieldError> = Vec::new();
+    let (model_v, prior_v, family) = if validate::has_families(&model_v) {
+        let (m, p, fm) = lowered(&model_v, &prior_v, limits)?;
+        (m, p, Some(fm))
+    } else {
+        (model_v, prior_v, None)
+    };
     let model = validate::model(&model_v, "/model", limits)
         .map_err(|e| errors.extend(e))
-        .ok();
+        .ok()
+        .map(|mut m| {
+            if let Some(fm) = &family {
+                for (s, name) in m.states.iter_mut().enumerate() {
+                    *name = fm.state_name(s);
+                }
+            }
+            m
+        });
     let cfg = validate::filter(&filter_v, "/filter", limits)
         .map_err(|e| errors.extend(e))
         .ok();
@@ -65,6 +79,32 @@ pub(super) fn setup(env: &Envelope<'_>, limits: &Limits) -> Result<Setup, Proble
         output,
         zone,
     })
+}
+
+/// A family model (`model.families`) and its prior written out state by state, for the
+/// filters that run on plain models; a model over `max_states` states is refused here
+/// (it runs with the local ensemble update only).
+fn lowered(
+    model_v: &serde_json::Value,
+    prior_v: &serde_json::Value,
+    limits: &Limits,
+) -> Result<(serde_json::Value, serde_json::Value, FamilyModel), Problem> {
+    let invalid = |e: Vec<crate::request::error::SpecError>| {
+        Problem::invalid(e.into_iter().map(FieldError::from).collect())
+    };
+    let fm = validate::check_families(model_v, "/model", limits).map_err(invalid)?;
+    if fm.n() > limits.max_states {
+        return Err(Problem::field(
+            "/model/families",
+            format!(
+                "{} family states exceed the limit of {} for this filter; a larger family model runs with filter.method \"enkf\" and ensemble.update \"local\"",
+                fm.n(),
+                limits.max_states
+            ),
+        ));
+    }
+    let prior = validate::lower_prior(&fm, prior_v, "/prior").map_err(invalid)?;
+    Ok((validate::lower_model(&fm, model_v), prior, fm))
 }
 
 /// Looks at the request's [`Stop`] between lines: the cancel flag on every line, the clock

@@ -2,12 +2,14 @@
 //! and parsed measurement lines. They are built only by [`crate::request`], so every value
 //! here has passed validation once and the filters never re-check it.
 
+mod family;
 mod plant;
 mod reading;
 mod settings;
 mod stop;
 pub mod time;
 
+pub use family::{FamilyModel, FamilySensor};
 pub use plant::*;
 pub use reading::Reading;
 pub use settings::*;

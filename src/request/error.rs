@@ -276,6 +276,8 @@ pub enum SpecErrorKind {
         /// The upper bound given.
         max: f64,
     },
+    /// A fault of a family model (`model.families` and what reads it), in words.
+    Family(String),
     /// A starting value outside the bounds given for it.
     OutsideBounds {
         /// The field's name (`initial`).
@@ -335,6 +337,7 @@ impl fmt::Display for SpecErrorKind {
             K::BoundsOrder { min, max } => {
                 write!(f, "min must be below max, got min {min} and max {max}")
             }
+            K::Family(detail) => f.write_str(detail),
             K::OutsideBounds {
                 what,
                 value,

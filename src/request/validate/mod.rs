@@ -9,14 +9,18 @@
 
 mod common;
 mod dynamics;
+mod families;
 mod filter;
+mod lower;
 mod model;
 mod output;
 mod prior;
 mod sensors;
 
 pub use common::time_value;
+pub use families::{check_families, has_families};
 pub use filter::{check_filter, filter};
+pub use lower::{lower_model, lower_prior};
 pub use model::{check_model, model};
 pub use output::{check_output, output};
 pub use prior::{check_prior, check_prior_in, prior, prior_in};
