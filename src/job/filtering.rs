@@ -126,6 +126,32 @@ impl PieceSink for Headed<'_> {
     }
 }
 
+/// A family model with `filter.ensemble.update: "local"` ([`super::family`]); `None`
+/// for every other request.
+fn local_family(
+    env: &Envelope<'_>,
+    limits: &Limits,
+    stop: &Stop,
+) -> Option<Result<Pieces, Problem>> {
+    let model = envelope::section(env.model, "model").ok()?;
+    let filter = envelope::section(env.filter, "filter").ok()?;
+    if !super::family::wants_local(&model, &filter) {
+        return None;
+    }
+    Some((|| {
+        let prior = envelope::section(env.prior, "prior")?;
+        let output = envelope::optional_section(env.output, "output")?;
+        let lines = measurement_list(env, limits)?;
+        super::family::estimate(
+            [&model, &filter, &prior],
+            output.as_ref(),
+            &lines,
+            limits,
+            stop,
+        )
+    })())
+}
+
 /// [`run_batch_overlapping`], streaming the answer to `out` when it qualifies.
 fn run_batch_to(
     body: &[u8],
@@ -136,6 +162,11 @@ fn run_batch_to(
     out: Option<Streaming<'_>>,
 ) -> Result<BatchAnswer, Problem> {
     let env = envelope::envelope(body)?;
+    if !smooth {
+        if let Some(p) = local_family(&env, limits, stop) {
+            return p.map(BatchAnswer::Pieces);
+        }
+    }
     let Setup {
         model,
         cfg,

@@ -18,6 +18,7 @@ pub mod budget;
 mod calibrate;
 mod check;
 mod failure;
+mod family;
 mod filtering;
 mod identify;
 mod pipeline;
