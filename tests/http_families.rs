@@ -455,3 +455,46 @@ async fn a_full_covariance_of_a_local_family_run_is_refused_at_its_field() {
     assert_eq!(a.body["errors"][0]["pointer"], "/output/covariance");
     s.shutdown().await.unwrap();
 }
+
+// The stream runs the same local family run: its lines are the batch's estimates and its
+// last line the batch's posterior, bit for bit.
+#[tokio::test]
+async fn the_local_family_stream_answers_like_the_batch() {
+    let (_, lines, start) = l96_truth(40, 12);
+    let s = start_default().await;
+    let header = json!({"model": l96_model(40, 1), "filter": local_filter(6, Some(4.0)),
+                        "prior": {"t": 0.0, "mean": {"x": start}, "std": {"x": 1.0}}});
+    let mut text = serde_json::to_string(&header).unwrap();
+    for l in &lines {
+        text.push('\n');
+        text.push_str(&serde_json::to_string(l).unwrap());
+    }
+    text.push('\n');
+    let res = s
+        .client
+        .post(s.url("/v1/estimate/stream"))
+        .header("content-type", "application/x-ndjson")
+        .body(text)
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(res.status(), 200);
+    let out: Vec<Value> = res
+        .text()
+        .await
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    let mut body = header.clone();
+    body["measurements"] = json!(lines);
+    let batch = post_json(&s, "/v1/estimate", &body).await;
+    assert_eq!(batch.status, 200, "{}", batch.text);
+    assert_eq!(out.len(), lines.len() + 1);
+    assert_eq!(
+        Value::Array(out[..lines.len()].to_vec()),
+        batch.body["estimates"]
+    );
+    assert_eq!(out[lines.len()]["posterior"], batch.body["posterior"]);
+    s.shutdown().await.unwrap();
+}

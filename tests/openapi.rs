@@ -412,6 +412,47 @@ async fn real_requests_and_answers_match_the_contract_file() {
     assert_documented(&d, "Info", &info.body);
 }
 
+/// A family model (issue 13), lowered for `ekf` and run with the local update, in batch
+/// and on the stream: requests and answers match the contract file.
+#[tokio::test]
+async fn family_requests_and_answers_match_the_contract_file() {
+    use crate::support::{answer, start_default};
+    let d = doc();
+    let s = start_default().await;
+    let model = json!({
+        "families": {"x": {"size": 12, "boundary": "periodic"}},
+        "parameters": {"F": 8.0, "damp": [1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0]},
+        "dynamics": {"rates": {"x[i]": "(x[i+1] - x[i-2])*x[i-1] - damp[i]*x[i] + F"}},
+        "process_noise": {"density": {"x": 0.01}},
+        "sensors": {"obs": {"measures": "x[i]", "every": 3, "std": 1.0},
+                    "two": {"measures": "x[i]", "elements": [1, 5], "std": 0.5}}
+    });
+    let lines = json!([
+        {"t": 0.05, "values": {"obs": [8.1, 7.9, 8.3, 8.0], "two": [8.2, 7.7]}},
+        {"t": 0.1, "values": {"obs": [8.0, 8.1, 8.2, 7.9]}}
+    ]);
+    let post = |path: &'static str, body: Value| {
+        let c = s.client.clone();
+        let url = s.url(path);
+        async move { answer(c.post(url).json(&body).send().await.unwrap()).await }
+    };
+    let prior = json!({"t": 0.0, "mean": {"x": 8.0}, "std": {"x": 1.0}});
+    let local = json!({"method": "enkf", "ensemble": {"members": 6, "seed": 2, "inflation": 1.02, "update": "local", "radius": 3},
+        "integration": {"fixed_step": 0.05}});
+    for filter in [json!({"method": "ekf"}), local] {
+        let req = json!({"model": model, "filter": filter, "prior": prior, "measurements": lines});
+        assert_documented(&d, "EstimateRequest", &req);
+        let a = post("/v1/estimate", req).await;
+        assert_eq!(a.status, 200, "{}", a.text);
+        assert_documented(&d, "EstimateResponse", &a.body);
+        if a.body["posterior"].get("members").is_some() {
+            let again =
+                json!({"t": a.body["posterior"]["t"], "members": a.body["posterior"]["members"]});
+            assert_documented(&d, "FamilyPrior", &again);
+        }
+    }
+}
+
 /// Relative tolerance for numbers in an example answer against the live answer. Examples
 /// carry the answer's digits, so only a changed number (or a printing change beyond the
 /// sixth significant digit) trips it.

@@ -22,7 +22,7 @@ use crate::dynamics::FamilyRates;
 use crate::filter::enkf::{FamilyEnsemble, LocalReadings, LocalSettings};
 use crate::model::{FamilyModel, Stop};
 use crate::problem::{FieldError, Problem, ProblemKind};
-use crate::request::validate;
+use crate::request::{envelope, validate};
 use rand::SeedableRng;
 use rand_chacha::ChaCha20Rng;
 use rand_distr::{Distribution, StandardNormal};
@@ -355,8 +355,7 @@ impl LocalRun {
                 format!("the request stopped before {at} (cancelled or past its compute deadline)"),
             ));
         }
-        let v: Value =
-            serde_json::from_slice(line).map_err(crate::request::envelope::json_problem)?;
+        let v: Value = serde_json::from_slice(line).map_err(envelope::json_problem)?;
         let t = match v.get("t").and_then(Value::as_f64) {
             Some(t) if t.is_finite() => t,
             _ => {
@@ -529,6 +528,15 @@ impl LocalRun {
         out.push(b'}');
     }
 
+    /// The stream's last line `{posterior, summary}` with its newline. A line is read
+    /// whole before the members move, so only a numerical failure (members no longer
+    /// finite) leaves them part-way through a line.
+    pub(super) fn closing_line(&mut self, out: &mut Vec<u8>) {
+        out.push(b'{');
+        self.tail(out);
+        out.extend_from_slice(b"}\n");
+    }
+
     /// Work counters so far.
     pub(super) fn stats(&self) -> RunStats {
         self.stats
@@ -537,6 +545,27 @@ impl LocalRun {
 
 fn numerical(at: &str, what: &str) -> Problem {
     Problem::new(ProblemKind::NumericalFailure, format!("at {at}: {what} (the members left the finite numbers; a smaller integration.fixed_step or more inflation may help)"))
+}
+
+/// The stream's header line `{model, filter, prior, output?}` of a family model with the
+/// local update as its run; `None` for every other header.
+pub(super) fn stream_start(header: &[u8], limits: &Limits) -> Result<Option<LocalRun>, Problem> {
+    let env = envelope::envelope(header)?;
+    let (Ok(model), Ok(filter)) = (
+        envelope::section(env.model, "model"),
+        envelope::section(env.filter, "filter"),
+    ) else {
+        return Ok(None);
+    };
+    if !wants_local(&model, &filter) {
+        return Ok(None);
+    }
+    if env.measurements.is_some() {
+        return Err(Problem::field("/measurements", "the stream's first line holds model, filter, prior and output; readings follow one per line"));
+    }
+    let prior = envelope::section(env.prior, "prior")?;
+    let output = envelope::optional_section(env.output, "output")?;
+    LocalRun::start(&model, &filter, &prior, output.as_ref(), limits).map(Some)
 }
 
 /// `POST /v1/estimate` for a family model with the local update: the whole answer.

@@ -206,7 +206,13 @@ pub fn info(limits: &Limits) -> serde_json::Value {
 /// arrive one line at a time and each answer line is appended to the caller's buffer.
 /// Memory does not grow with the number of lines.
 pub struct StreamSession {
-    inner: stream::Stream,
+    inner: Session,
+}
+
+/// The plain stream, or a family model's run with the local update.
+enum Session {
+    Plain(Box<stream::Stream>),
+    Family(Box<family::LocalRun>, Stop),
 }
 
 impl StreamSession {
@@ -223,23 +229,49 @@ impl StreamSession {
                 "the header line is too large",
             ));
         }
-        stream::Stream::start(header, limits, stop).map(|inner| Self { inner })
+        if let Some(run) = family::stream_start(header, limits)? {
+            return Ok(Self {
+                inner: Session::Family(Box::new(run), stop.clone()),
+            });
+        }
+        stream::Stream::start(header, limits, stop).map(|s| Self {
+            inner: Session::Plain(Box::new(s)),
+        })
     }
 
     /// Apply one measurement line (1-based `line_no` for error pointers) and append its
     /// estimate as one NDJSON line (with `\n`) to `out`.
     pub fn push(&mut self, line: &[u8], line_no: u64, out: &mut Vec<u8>) -> Result<(), Problem> {
-        self.inner.push(line, line_no, out)
+        match &mut self.inner {
+            Session::Plain(s) => s.push(line, line_no, out),
+            Session::Family(run, stop) => {
+                run.push(line, "", stop, out).map_err(|mut p| {
+                    p.detail = format!("line {line_no}: {}", p.detail);
+                    p
+                })?;
+                out.push(b'\n');
+                Ok(())
+            }
+        }
     }
 
     /// Append the `{posterior, summary}` line of the last line that went through (the
     /// prior, when none did), for a stream that fails and ends: the client resumes from it.
     pub fn last_good(&mut self, out: &mut Vec<u8>) {
-        self.inner.last_good(out)
+        match &mut self.inner {
+            Session::Plain(s) => s.last_good(out),
+            Session::Family(run, _) => run.closing_line(out),
+        }
     }
 
     /// Append the last line `{posterior, summary}` to `out`.
     pub fn finish(self, out: &mut Vec<u8>) -> Result<RunStats, Problem> {
-        Ok(self.inner.finish(out))
+        match self.inner {
+            Session::Plain(s) => Ok(s.finish(out)),
+            Session::Family(mut run, _) => {
+                run.closing_line(out);
+                Ok(run.stats())
+            }
+        }
     }
 }
