@@ -498,3 +498,29 @@ async fn the_local_family_stream_answers_like_the_batch() {
     assert_eq!(out[lines.len()]["posterior"], batch.body["posterior"]);
     s.shutdown().await.unwrap();
 }
+
+// /v1/check on a family model: dimensions, and the elements no reading reaches within
+// the radius, counted by hand: 30 elements in a row (fixed ends) read at 0, 10 and 11,
+// radius 3 reaches distances 0..2: 0..2 and 8..13; unreached 3..7 and 14..29.
+#[tokio::test]
+async fn check_names_the_elements_no_sensor_reaches_within_the_radius() {
+    let s = start_default().await;
+    let model = json!({
+        "families": {"T": {"size": 30, "boundary": "fixed", "value": 290.0}},
+        "dynamics": {"rates": {"T[i]": "0.1*(T[i+1] - 2*T[i] + T[i-1])"}},
+        "sensors": {"probe": {"measures": "T[i]", "elements": [0, 10, 11], "std": 0.5}}
+    });
+    let a = post_json(
+        &s,
+        "/v1/check",
+        &json!({"model": model, "filter": {"method": "enkf", "ensemble": {"update": "local", "radius": 3}}}),
+    )
+    .await;
+    assert_eq!(a.status, 200, "{}", a.text);
+    assert_eq!(a.body["dimensions"]["states"], 30);
+    assert_eq!(a.body["dimensions"]["measurement_size"], 3);
+    assert_eq!(a.body["reach"]["unreached"], json!([[3, 7], [14, 29]]));
+    assert_eq!(a.body["reach"]["reached"], 9);
+    assert_eq!(a.body["warnings"].as_array().unwrap().len(), 1);
+    s.shutdown().await.unwrap();
+}

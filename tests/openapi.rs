@@ -446,6 +446,9 @@ async fn family_requests_and_answers_match_the_contract_file() {
         assert_eq!(a.status, 200, "{}", a.text);
         assert_documented(&d, "EstimateResponse", &a.body);
         if a.body["posterior"].get("members").is_some() {
+            let chk = post("/v1/check", json!({"model": model, "filter": {"method": "enkf", "ensemble": {"update": "local", "radius": 2}}})).await;
+            assert_eq!(chk.status, 200, "{}", chk.text);
+            assert_documented(&d, "FamilyCheckResponse", &chk.body);
             let again =
                 json!({"t": a.body["posterior"]["t"], "members": a.body["posterior"]["members"]});
             assert_documented(&d, "FamilyPrior", &again);

@@ -80,6 +80,9 @@ mod indexmap_like {
 pub(super) fn check(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     let env = envelope::envelope(body)?;
     let model_v = envelope::section(env.model, "model")?;
+    if validate::has_families(&model_v) {
+        return super::family_check::check(&env, &model_v, limits);
+    }
     let model = validate::model(&model_v, "/model", limits).map_err(Problem::invalid)?;
     let zone = envelope::time_zone(&env)?;
     let (x, u, t) = match envelope::optional_section(env.prior, "prior")? {

@@ -19,6 +19,7 @@ mod calibrate;
 mod check;
 mod failure;
 mod family;
+mod family_check;
 mod filtering;
 mod identify;
 mod pipeline;
