@@ -141,3 +141,108 @@ fn unreadable(e: axum::Error) -> Problem {
         "the request body could not be read to its end",
     )
 }
+
+/// What a batch route (`/v1/estimate`, `/v1/smooth`, `/v1/calibrate`) was sent.
+#[derive(Debug)]
+pub(crate) enum Posted {
+    /// `application/json`: the request as usual.
+    Json(Bytes),
+    /// `multipart/form-data`: the `request` part (JSON without `measurements`, with a `csv`
+    /// section) and the `readings` part (a historian CSV).
+    Csv {
+        /// The `request` part.
+        request: Bytes,
+        /// The `readings` part.
+        readings: Bytes,
+    },
+}
+
+/// A JSON or multipart body and its job slot, with [`JsonBody`]'s rules for both: the slot
+/// is taken before a byte is read and the whole body (every part) is within
+/// `max_body_bytes`. Any other media type is a 415.
+#[derive(Debug)]
+pub(crate) struct BatchBody(pub(crate) Posted, pub(crate) JobSlot);
+
+impl FromRequest<AppState> for BatchBody {
+    type Rejection = Response;
+
+    async fn from_request(req: Request, state: &AppState) -> Result<Self, Self::Rejection> {
+        require_media_type(
+            req.headers(),
+            &["application/json", "multipart/form-data"],
+            "application/json, or multipart/form-data with request and readings parts",
+        )
+        .map_err(|p| problem_response(&p))?;
+        let multipart = media_type(req.headers()).as_deref() == Some("multipart/form-data");
+        let route = req.uri().path().to_string();
+        let id = req
+            .headers()
+            .get(super::app::REQUEST_ID)
+            .and_then(|v| v.to_str().ok());
+        let slot = take_slot(state, &route, id).map_err(|r| *r)?;
+        let limit = state.limits().max_body_bytes;
+        let declared = content_length(req.headers());
+        let (parts, body) = req.into_parts();
+        let bytes = read_limited(body, limit, declared)
+            .await
+            .map_err(|p| problem_response(&p))?;
+        if !multipart {
+            return Ok(Self(Posted::Json(bytes), slot));
+        }
+        let req = Request::from_parts(parts, Body::from(bytes));
+        let posted = read_parts(req, state)
+            .await
+            .map_err(|p| problem_response(&p))?;
+        Ok(Self(posted, slot))
+    }
+}
+
+/// The `request` and `readings` parts of a multipart body already in memory.
+async fn read_parts(req: Request, state: &AppState) -> Result<Posted, Problem> {
+    let bad = |e: axum::extract::multipart::MultipartError| {
+        Problem::new(
+            ProblemKind::MalformedJson,
+            format!("the multipart body could not be read: {}", e.body_text()),
+        )
+    };
+    let mut form = axum::extract::Multipart::from_request(req, state)
+        .await
+        .map_err(|e| {
+            Problem::new(
+                ProblemKind::MalformedJson,
+                format!("the multipart body could not be read: {}", e.body_text()),
+            )
+        })?;
+    let (mut request, mut readings) = (None, None);
+    while let Some(field) = form.next_field().await.map_err(bad)? {
+        let name = field.name().unwrap_or("").to_string();
+        let slot = match name.as_str() {
+            "request" => &mut request,
+            "readings" => &mut readings,
+            other => {
+                return Err(Problem::field(
+                    "",
+                    format!("unknown part '{other}': send a 'request' part (JSON) and a 'readings' part (CSV)"),
+                ))
+            }
+        };
+        if slot.is_some() {
+            return Err(Problem::field(
+                format!("/{name}"),
+                format!("the '{name}' part is given twice"),
+            ));
+        }
+        *slot = Some(field.bytes().await.map_err(bad)?);
+    }
+    match (request, readings) {
+        (Some(request), Some(readings)) => Ok(Posted::Csv { request, readings }),
+        (None, _) => Err(Problem::field(
+            "",
+            "missing the 'request' part: the JSON request without measurements, with a csv section",
+        )),
+        (_, None) => Err(Problem::field(
+            "/readings",
+            "missing the 'readings' part: the CSV file of readings",
+        )),
+    }
+}

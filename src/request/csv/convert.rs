@@ -346,7 +346,7 @@ impl Ctx<'_, '_> {
     }
 }
 
-/// Wide: one line per row with at least one reading, in file order.
+/// Wide: one line per row, in file order.
 fn wide(
     ctx: &mut Ctx<'_, '_>,
     spec: &CsvSpec,
@@ -438,10 +438,10 @@ fn wide(
                 Err(e) => faults.push(cell_error(line, c + 1, e)),
             }
         }
+        // A row whose cells are all blank is still a line: its estimate is a prediction,
+        // as for a JSON line without values.
         if let (Some(t), true) = (t, faults.list.is_empty()) {
-            if !values.is_empty() {
-                ctx.line(out, t, &values, line)?;
-            }
+            ctx.line(out, t, &values, line)?;
         }
     }
     faults.into_result()

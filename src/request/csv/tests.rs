@@ -52,10 +52,11 @@ fn a_wide_file_becomes_one_line_per_row_with_blanks_left_out() {
             json!({"t": 0.0, "values": {"trolley_position": 1.5, "hook_angle": 0.25}}),
             json!({"t": 0.5, "values": {"hook_angle": 0.125}}),
             json!({"t": 1.0, "values": {"trolley_position": 0.00175}}),
+            json!({"t": 1.5, "values": {}}),
         ]
     );
-    // The row with no reading makes no line; lines remember their CSV line.
-    assert_eq!(c.origin, vec![2, 3, 4]);
+    // A row with no reading is a line all the same; lines remember their CSV line.
+    assert_eq!(c.origin, vec![2, 3, 4, 5]);
     assert_eq!(c.time_column, 1);
     assert_eq!(c.notes.len(), 1);
     assert_eq!(c.notes[0].kind, "csv_unused");
