@@ -410,3 +410,63 @@ async fn the_contract_files_csv_examples_are_answered() {
     assert_eq!(answers[0]["summary"]["warnings"][0]["kind"], "csv_unused");
     assert_eq!(answers[1]["summary"]["warnings"][0]["kind"], "csv_dropped");
 }
+
+/// The text of `text` between `start` and the next `end`.
+fn between<'a>(text: &'a str, start: &str, end: &str) -> &'a str {
+    let from = text
+        .find(start)
+        .unwrap_or_else(|| panic!("README lacks {start:?}"))
+        + start.len();
+    let len = text[from..]
+        .find(end)
+        .unwrap_or_else(|| panic!("README lacks {end:?}"));
+    &text[from..from + len]
+}
+
+/// The README's section "Readings from a historian CSV": its two uploads, as its shell
+/// lines make them, get the answers it shows (times and warning details).
+#[tokio::test]
+async fn the_readme_csv_examples_are_the_live_answers() {
+    let readme = include_str!("../README.md");
+    let section = between(readme, "## Readings from a historian CSV", "\n## ");
+    let request: Value =
+        serde_json::from_str(between(section, "cat > request.json <<'JSON'\n", "\nJSON")).unwrap();
+    let csv_of =
+        |file: &str| between(section, "printf '", &format!("' > {file}")).replace("\\n", "\n");
+    let wide_csv = csv_of("wide.csv");
+    let long_csv = between(
+        &section[section.find("> wide.csv").unwrap()..],
+        "printf '",
+        "' > long.csv",
+    )
+    .replace("\\n", "\n");
+    let mut long = request.clone();
+    let long_section =
+        between(section, "s/\"csv\": {.*/\"csv\": ", "}/; /\"columns\"/d").replace("\\/", "/");
+    long["csv"] = serde_json::from_str(&long_section).unwrap();
+    let shown: Vec<&str> = section
+        .split("```text\n")
+        .skip(1)
+        .map(|b| b.split("```").next().unwrap())
+        .collect();
+    assert_eq!(shown.len(), 2);
+    let s = start_default().await;
+    for ((req, csv), shown) in [(&request, wide_csv.as_str()), (&long, long_csv.as_str())]
+        .into_iter()
+        .zip(shown)
+    {
+        let a = post(&s, "/v1/estimate", &content_type(), multipart(req, csv)).await;
+        assert_eq!(a.status, 200, "{}", a.text);
+        let times: Vec<Value> = a.body["estimates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|e| e["t"].clone())
+            .collect();
+        let mut live = serde_json::to_string(&times).unwrap() + "\n";
+        for w in a.body["summary"]["warnings"].as_array().unwrap() {
+            live.push_str(&format!("{}\n", w["detail"]));
+        }
+        assert_eq!(live, shown);
+    }
+}
