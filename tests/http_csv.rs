@@ -470,3 +470,29 @@ async fn the_readme_csv_examples_are_the_live_answers() {
         assert_eq!(live, shown);
     }
 }
+
+/// An upload past axum's own 2 MB default (the body limit is the service's
+/// `max_body_bytes`, counted over the whole multipart body).
+#[tokio::test]
+async fn an_upload_of_several_megabytes_is_read_whole() {
+    let mut r = request();
+    r["prior"]["t"] = json!(0.0);
+    r["output"] = json!({"covariance": "none"});
+    r["csv"] = json!({"layout": "wide"});
+    let n = 200_000;
+    let mut csv = String::with_capacity(n * 24);
+    csv.push_str("time,encoder\n");
+    for k in 1..=n {
+        csv.push_str(&format!(
+            "{}.{:02},{}\n",
+            k / 100,
+            k % 100,
+            0.5 + (k % 17) as f64 * 1e-3
+        ));
+    }
+    assert!(csv.len() > 2 << 20, "{} bytes", csv.len());
+    let s = start_default().await;
+    let a = post(&s, "/v1/estimate", &content_type(), multipart(&r, &csv)).await;
+    assert_eq!(a.status, 200, "{}", &a.text[..a.text.len().min(400)]);
+    assert_eq!(a.body["estimates"].as_array().unwrap().len(), n);
+}

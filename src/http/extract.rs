@@ -11,11 +11,12 @@ use super::problem::problem_response;
 use super::state::{AppState, JobSlot};
 use crate::problem::{Problem, ProblemKind};
 use axum::body::Body;
-use axum::extract::{FromRequest, Request};
+use axum::extract::{DefaultBodyLimit, FromRequest, Request};
 use axum::http::{header, HeaderMap};
 use axum::response::Response;
 use bytes::{Bytes, BytesMut};
 use futures_util::StreamExt;
+use tower::{Layer, ServiceExt};
 
 /// A request body of media type `application/json`, read whole within the body limit,
 /// and the job slot it runs under. The slot is taken first: when none is free (or the
@@ -204,6 +205,15 @@ async fn read_parts(req: Request, state: &AppState) -> Result<Posted, Problem> {
             ProblemKind::MalformedJson,
             format!("the multipart body could not be read: {}", e.body_text()),
         )
+    };
+    // The body is already read within `max_body_bytes`: axum's own 2 MB default for
+    // multipart bodies is lifted (its layer only marks the request).
+    let unlimited = DefaultBodyLimit::disable().layer(tower::service_fn(|r: Request| async move {
+        Ok::<_, std::convert::Infallible>(r)
+    }));
+    let req = match unlimited.oneshot(req).await {
+        Ok(r) => r,
+        Err(never) => match never {},
     };
     let mut form = axum::extract::Multipart::from_request(req, state)
         .await
