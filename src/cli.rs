@@ -188,6 +188,11 @@ pub struct RunArgs {
     /// Smooth the whole batch (as POST /v1/smooth) instead of filtering.
     #[arg(long)]
     pub smooth: bool,
+    /// Readings from a historian CSV file (`-` for standard input): the request is then
+    /// one JSON document without `measurements`, with a `csv` section saying how to read
+    /// the file, as the `request` part of a multipart POST /v1/estimate.
+    #[arg(long, value_name = "CSV")]
+    pub readings: Option<String>,
     /// Request limits.
     #[command(flatten)]
     pub limits: LimitArgs,
@@ -514,6 +519,19 @@ pub fn classify(first_line: &[u8]) -> InputKind {
 
 fn run(a: &RunArgs) -> Result<(), CliError> {
     let limits = a.limits.to_limits().map_err(CliError::Other)?;
+    if let Some(csv) = &a.readings {
+        if csv == "-" && a.file == "-" {
+            return Err(CliError::Other(
+                "the request and the readings cannot both come from standard input".into(),
+            ));
+        }
+        let (mut request, mut readings) = (Vec::new(), Vec::new());
+        open(&a.file)?.read_to_end(&mut request)?;
+        open(csv)?.read_to_end(&mut readings)?;
+        let stop = Stop::within(limits.deadline);
+        let done = job::batch_csv(&request, &readings, &limits, &stop, a.smooth)?;
+        return print_pieces(&done.parts);
+    }
     let mut input = open(&a.file)?;
     let mut first = Vec::new();
     let mut line_no = 0u64;

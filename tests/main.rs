@@ -12,6 +12,7 @@ mod http_api;
 mod http_bomb;
 mod http_calibrate;
 mod http_core;
+mod http_csv;
 mod http_errors;
 mod http_hardening;
 mod http_identify;
