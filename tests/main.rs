@@ -20,5 +20,6 @@ mod http_simulate;
 mod http_time;
 mod no_alloc;
 mod openapi;
+mod page;
 mod request_keys;
 mod stream_no_alloc;

@@ -4,7 +4,7 @@
 //! route cannot be served without being documented, nor documented without being served.
 
 use super::route::Route;
-use super::{calibrate, estimate, health, info, metrics, model, openapi, problems, stream};
+use super::{calibrate, estimate, health, info, metrics, model, openapi, page, problems, stream};
 
 /// Every route group of the service.
 pub const ALL: &[&[Route]] = &[
@@ -17,6 +17,7 @@ pub const ALL: &[&[Route]] = &[
     stream::ROUTES,
     calibrate::ROUTES,
     model::ROUTES,
+    page::ROUTES,
 ];
 
 /// Every route, flattened.
