@@ -508,7 +508,7 @@
     add("all together", o);
     for (const [s, r] of Object.entries(o.by_sensor || {})) add(s + " alone", r);
     box.appendChild(tbl);
-    if ((ans.warnings || []).length) { const p = document.createElement("p"); p.textContent = "Warnings: " + ans.warnings.map((w) => w.detail || w.kind).join("; "); box.appendChild(p); }
+    if ((ans.warnings || []).length) { const p = document.createElement("p"); p.textContent = "Warnings: " + ans.warnings.map((w) => (typeof w === "string" ? w : w.detail || w.message || JSON.stringify(w))).join("; "); box.appendChild(p); }
     box.scrollIntoView({ block: "nearest" });
   }
 

@@ -9,7 +9,7 @@
 //! `demo-data/crane/measurements.json`, and the readings the gate refused in the answer of
 //! the same request posted straight to `/v1/estimate`. Screenshots go to a temporary
 //! folder (its path is printed); `TACIT_PAGE_SHOTS=dir` writes them there instead, which
-//! is how `docs/page-crane.png` was made. Click-to-plot times are printed, never asserted.
+//! is how `docs/page-crane-zoom.png` was made. Click-to-plot times are printed, never asserted.
 
 use crate::support;
 use fantoccini::{Client, ClientBuilder, Locator};
@@ -40,8 +40,11 @@ impl Drop for Driver {
 struct TempDir(PathBuf);
 
 impl TempDir {
+    /// A fresh folder: each browser needs its own profile, and the tests run in parallel.
     fn new(tag: &str) -> TempDir {
-        let p = std::env::temp_dir().join(format!("tacit-{tag}-{}", std::process::id()));
+        static NEXT: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+        let n = NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        let p = std::env::temp_dir().join(format!("tacit-{tag}-{}-{n}", std::process::id()));
         let _ = std::fs::remove_dir_all(&p);
         std::fs::create_dir_all(&p).expect("temp dir");
         TempDir(p)
@@ -345,7 +348,16 @@ fn million_csv(n: usize) -> String {
 #[ignore = "a measurement: run by hand"]
 async fn million_readings_from_csv_are_plotted_whole() {
     let n = 1_000_000;
-    let server = support::start_default().await;
+    // A debug build needs more than the default minute for a million lines.
+    let limits = tacit::config::Limits {
+        deadline: Some(Duration::from_secs(900)),
+        ..Default::default()
+    };
+    let server = support::start(tacit::http::ServerConfig {
+        limits,
+        ..Default::default()
+    })
+    .await;
     let driver = start_driver().await;
     let c = browser(&driver).await;
     c.goto(&server.url("/")).await.expect("open the page");
