@@ -261,7 +261,10 @@
     if (conv.count > 20000 && !req.output && kind !== "calibrate") req.output = { covariance: "std" };
     const head = JSON.stringify(req);
     const bodyText = head.slice(0, -1) + (head.length > 2 ? "," : "") + '"measurements":' + conv.json + "}";
-    return { body: bodyText, json: true, req: Object.assign({}, req, { measurementsText: conv.json }), conv };
+    const notes = [];
+    if (conv.unused.length) notes.push("left the unmapped columns " + conv.unused.join(", ") + " unused");
+    if (conv.dropped) notes.push("dropped " + conv.dropped + " rows whose quality was not good");
+    return { body: bodyText, json: true, req: Object.assign({}, req, { measurementsText: conv.json }), conv, note: notes.join("; ") || undefined };
   }
 
   async function call(path, b) {
