@@ -421,6 +421,7 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
             tracing::info!(keys = config.api_keys.len(), "API keys required on /v1/*");
         }
         tracing::info!(addr = %local, limits = ?config.limits, cors = ?config.cors_origins, "tacit {} listening", env!("CARGO_PKG_VERSION"));
+        tracing::info!(page = %format!("http://{local}/"), "open the page in a browser");
         let state = AppState::new(config);
         http::serve(listener, state, http::shutdown_signal()).await?;
         tracing::info!("stopped");

@@ -23,5 +23,6 @@ mod http_time;
 mod identify;
 mod no_alloc;
 mod openapi;
+mod page;
 mod request_keys;
 mod stream_no_alloc;
