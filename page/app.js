@@ -15,7 +15,7 @@
   document.addEventListener("securitypolicyviolation", (e) => page.errors.push("csp: " + e.violatedDirective + " " + e.blockedURI));
 
   const group = new P.ZoomGroup();
-  const st = { truth: null, units: {}, simulate: null, csv: null, answer: null, series: null, busy: false };
+  const st = { truth: null, units: {}, simulate: null, csv: null, answer: null, series: null, busy: false, identified: null };
 
   // ---- the editor and the pointer highlight --------------------------------------------
   const editor = $("editor"), backdrop = $("backdrop");
@@ -288,7 +288,7 @@
     try {
       status("Running " + kind + "…");
       let b;
-      try { b = kind === "simulate" ? simulateBody() : kind === "check" ? checkBody() : body(kind); }
+      try { b = kind === "simulate" ? simulateBody() : kind === "check" ? checkBody() : kind === "identify" ? { body: editor.value, json: true } : body(kind); }
       catch (e) {
         const ptr = e.line ? "/readings/" + e.line + "/" + e.column : undefined;
         showProblem({ title: "cannot read the readings", detail: String(e.message), errors: ptr ? [{ pointer: ptr, detail: e.message }] : [] }, 0);
@@ -309,7 +309,10 @@
         status("Simulated " + r.data.measurements.length + " reading lines (seed " + r.data.seed + "); estimating them…");
         await run("estimate");
         return;
-      } else renderRaw(kind, r.data);
+      } else {
+        renderRaw(kind, r.data);
+        if (kind === "identify") { st.identified = r.data.model ? r.data : null; $("use-identified").disabled = !st.identified; }
+      }
       await frame();
       const ms = performance.now() - t0;
       page.timings.push({ kind, ms, fetch_ms: tFetch - t0, points, bytes: r.bytes });
@@ -320,6 +323,7 @@
     } finally {
       st.busy = false;
       document.querySelectorAll("#actions button").forEach((x) => { x.disabled = false; });
+      $("use-identified").disabled = !st.identified;
     }
   }
 
@@ -521,6 +525,20 @@
     if (ans.posterior) { st.answer = ans; $("export-posterior").disabled = false; }
   }
 
+  /** An estimate request from an identify answer: its model, its prior when it gave one
+   *  (subspace, reduced), else a prior at the first sample's time with mean 0 and std 1
+   *  for every state, to be edited; no readings yet. */
+  function useIdentified(ans) {
+    let t = 0;
+    try { const s = JSON.parse(editor.value).series; if (s && s.length && typeof s[0].t === "number") t = s[0].t; } catch (_) { /* keep 0 */ }
+    const states = ans.model.states || [];
+    const prior = ans.prior || { t, mean: Object.fromEntries(states.map((n) => [n, 0])), std: Object.fromEntries(states.map((n) => [n, 1])) };
+    editor.value = formatRequest({ model: ans.model, filter: { method: "ekf" }, prior, measurements: [] });
+    st.truth = null; st.simulate = null;
+    clearProblem(); refreshMapping();
+    status("The identified model is in the editor: add readings (or load a CSV), then Estimate.");
+  }
+
   // ---- zoom fields and exports -------------------------------------------------------------
   function syncZoomFields([a, b]) { $("zoom-from").value = Number(a.toPrecision(6)); $("zoom-to").value = Number(b.toPrecision(6)); }
   group.listeners.push(syncZoomFields);
@@ -557,7 +575,8 @@
     page.clickAt = performance.now();
     if (await loadDemo(b.dataset.demo)) await run("estimate");
   }));
-  for (const k of ["estimate", "smooth", "check", "simulate", "calibrate"]) $("run-" + k).addEventListener("click", () => run(k));
+  for (const k of ["estimate", "smooth", "check", "simulate", "calibrate", "identify"]) $("run-" + k).addEventListener("click", () => run(k));
+  $("use-identified").addEventListener("click", () => { if (st.identified) useIdentified(st.identified); });
   editor.addEventListener("change", refreshMapping);
   page.loadCsvText = csvLoaded; // lets the browser test hand the page a generated file
   page.ready = true;

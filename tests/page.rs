@@ -305,6 +305,80 @@ async fn page_crane_demo_plots_every_state_marks_refusals_and_shows_a_bad_pointe
     )
     .expect("write shot");
 
+    // Identify from the page: a kiln's temperature under a switched heater, sampled from
+    // the exact solution of T' = −0.02 T + 0.4 h with h held between samples
+    // (T(t+Δ) = 20h + (T − 20h)·e^(−0.02Δ); common practice for a linear ODE).
+    let series: Vec<Value> = {
+        let (mut temp, mut out) = (20.0f64, Vec::new());
+        for k in 0..200 {
+            let heater = if (k / 25) % 2 == 0 { 1.5 } else { 0.5 };
+            out.push(json!({"t": k as f64 * 5.0, "values": {"temperature": temp},
+                            "inputs": {"heater": heater}}));
+            temp = 20.0 * heater + (temp - 20.0 * heater) * (-0.02f64 * 5.0).exp();
+        }
+        out
+    };
+    let identify = json!({"form": "linear", "states": ["temperature"], "inputs": ["heater"],
+                          "series": series});
+    let direct: Value = server
+        .client
+        .post(server.url("/v1/identify"))
+        .bearer_auth(KEY)
+        .json(&identify)
+        .send()
+        .await
+        .expect("post")
+        .json()
+        .await
+        .expect("answer");
+    let a_direct = direct["model"]["dynamics"]["linear"]["A"][0][0]
+        .as_f64()
+        .expect("A");
+    // The integral form's trapezoid rule is O(Δt²): within 1 % of the true −0.02.
+    assert!((a_direct + 0.02).abs() < 2e-4, "{direct}");
+    c.execute(
+        "const e = document.getElementById('editor'); e.value = arguments[0];\
+         e.dispatchEvent(new Event('input'));",
+        vec![Value::String(identify.to_string())],
+    )
+    .await
+    .expect("put the identify request in the editor");
+    c.find(Locator::Id("run-identify"))
+        .await
+        .expect("identify button")
+        .click()
+        .await
+        .expect("click");
+    wait_for(
+        &c,
+        "return !document.getElementById('use-identified').disabled",
+        30,
+    )
+    .await;
+    c.find(Locator::Id("use-identified"))
+        .await
+        .expect("use button")
+        .click()
+        .await
+        .expect("click");
+    let edited = c
+        .execute(
+            "return JSON.parse(document.getElementById('editor').value)",
+            vec![],
+        )
+        .await
+        .expect("editor");
+    assert_eq!(
+        edited["model"], direct["model"],
+        "the page's model is the service's"
+    );
+    assert_eq!(edited["filter"]["method"], json!("ekf"));
+    assert_eq!(
+        edited["prior"]["t"].as_f64(),
+        Some(0.0),
+        "the first sample's time"
+    );
+
     let errors = c
         .execute("return window.tacitPage.errors", vec![])
         .await
