@@ -56,6 +56,11 @@ pub(crate) fn to_x(maps: &[Map], u: &[f64]) -> Vec<f64> {
     maps.iter().zip(u).map(|(m, &u)| m.x(u)).collect()
 }
 
+/// Cores to run on: the most runs of the objective going at once.
+pub(crate) fn cores() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
 /// Run the objective at every point of `us` (search coordinates), in parallel on all
 /// cores; each result is −ln L (+∞ for a failed run).
 pub(crate) fn costs(
@@ -64,10 +69,7 @@ pub(crate) fn costs(
     us: &[Vec<f64>],
     budgeted: bool,
 ) -> Result<Vec<f64>, Stop> {
-    let threads = std::thread::available_parallelism()
-        .map_or(1, |n| n.get())
-        .min(us.len())
-        .max(1);
+    let threads = cores().min(us.len()).max(1);
     let next = AtomicUsize::new(0);
     let out = Mutex::new(vec![f64::INFINITY; us.len()]);
     let stop: Mutex<Option<Stop>> = Mutex::new(None);
