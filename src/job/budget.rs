@@ -4,10 +4,12 @@
 //! allowed to take the process down.
 //!
 //! The estimates are upper bounds of what is held at once: the body, what the run keeps
-//! per line (the smoother's stored steps), the ensemble's workspace, and the answer's
-//! bytes, counting each number at its longest shortest-round-trip form (24 bytes) plus a
-//! separator, and a buffer that grows by doubling at twice its contents. The test
-//! `the_memory_estimate_bounds_what_a_request_allocates` holds them to the bytes a
+//! per line (the smoother's stored steps, a calibration's parsed readings), the
+//! ensemble's workspace, and the answer's bytes, counting each number at its longest
+//! shortest-round-trip form (24 bytes) plus a separator, and a buffer that grows by
+//! doubling at twice its contents. The tests
+//! `the_memory_estimate_bounds_what_a_request_allocates` and
+//! `the_calibrate_memory_estimate_bounds_what_it_allocates` hold them to the bytes a
 //! counting allocator measures.
 
 use crate::config::Limits;
