@@ -338,4 +338,21 @@ mod tests {
         assert_eq!(size(999), "999 bytes");
         assert_eq!(size(1_500), "1.5 kB");
     }
+
+    #[test]
+    fn the_echo_bound_holds_what_serde_json_writes_back() {
+        // serde_json (float_roundtrip) is the independent writer: parse and write back.
+        for text in [
+            r#"[{"t": 1, "values": {"g": 0.125}}, {"t":2,"values":{"g":null}}]"#,
+            r#"[{"t":1e15,"values":{"g":[1e-7,5E2,-0.000001234]}}]"#,
+            r#"[{"t":"2026-12-03T04:00:00\u002B01:00","values":{"g":10000000000000001.0}}]"#,
+            r#"[{"t":123456789012345678901234,"values":{"g":1.0}}]"#,
+        ] {
+            let v: serde_json::Value = serde_json::from_str(text).unwrap();
+            let written = serde_json::to_vec(&v).unwrap().len() as u64;
+            let bound = echo_bytes(text);
+            assert!(bound >= written, "{text}: {bound} < {written}");
+            assert!(bound <= written + 96, "{text}: {bound} vs {written}");
+        }
+    }
 }

@@ -16,7 +16,6 @@
 //! random numbers) and the objective is a deterministic function of the values, though
 //! still a noisy estimate of the true likelihood.
 
-use super::search::cores;
 use super::spec::Free;
 use crate::config::Limits;
 use crate::filter::run::Run;
@@ -35,6 +34,11 @@ use serde_json::value::RawValue;
 use serde_json::Value;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Mutex;
+
+/// Cores to run on: the most runs of the objective going at once.
+pub(crate) fn cores() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
 
 /// An envelope holding only `measurements`, for [`measurement_list`].
 pub(crate) fn readings_only(measurements: Option<&RawValue>) -> Envelope<'_> {

@@ -11,7 +11,7 @@
 //! differences (common practice); the runs of one gradient or one curvature go in
 //! parallel on all cores.
 
-use super::objective::{Objective, Stop};
+use super::objective::{cores, Objective, Stop};
 use super::spec::Map;
 use crate::problem::Problem;
 use argmin::core::{CostFunction, Error, Executor, Gradient, State, TerminationReason};
@@ -54,11 +54,6 @@ pub(crate) fn curve_step(map: Map, u: f64) -> f64 {
 /// The values at search coordinates `u`.
 pub(crate) fn to_x(maps: &[Map], u: &[f64]) -> Vec<f64> {
     maps.iter().zip(u).map(|(m, &u)| m.x(u)).collect()
-}
-
-/// Cores to run on: the most runs of the objective going at once.
-pub(crate) fn cores() -> usize {
-    std::thread::available_parallelism().map_or(1, |n| n.get())
 }
 
 /// Run the objective at every point of `us` (search coordinates), in parallel on all
