@@ -197,6 +197,12 @@ pub fn calibrate_csv(
     upload::calibrate(request, readings, limits, stop, progress)
 }
 
+/// The memory a calibrate request would need at its peak, bytes: the estimate checked
+/// against `limits.max_request_bytes` before its readings are parsed.
+pub fn calibrate_memory(body: &[u8], limits: &Limits) -> Result<u64, Problem> {
+    calibrate::memory(body, limits)
+}
+
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     simulate_pieces(body, limits, stop).map(Pieces::into_done)
