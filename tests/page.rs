@@ -143,6 +143,21 @@ fn shots_dir() -> PathBuf {
     d
 }
 
+/// The service's own answer to `body` at `path`, posted with the key (not through the page).
+async fn post_direct(server: &support::Server, path: &str, body: &Value) -> Value {
+    server
+        .client
+        .post(server.url(path))
+        .bearer_auth(KEY)
+        .json(body)
+        .send()
+        .await
+        .expect("post")
+        .json()
+        .await
+        .expect("answer")
+}
+
 fn demo_file(name: &str) -> Value {
     let p = Path::new(env!("CARGO_MANIFEST_DIR"))
         .join("demo-data/crane")
@@ -173,17 +188,7 @@ async fn page_crane_demo_plots_every_state_marks_refusals_and_shows_a_bad_pointe
         "model": demo_file("model.json"), "filter": demo_file("filter.json"),
         "prior": demo_file("prior.json"), "measurements": lines,
     });
-    let direct: Value = server
-        .client
-        .post(server.url("/v1/estimate"))
-        .bearer_auth(KEY)
-        .json(&request)
-        .send()
-        .await
-        .expect("post")
-        .json()
-        .await
-        .expect("answer");
+    let direct: Value = post_direct(&server, "/v1/estimate", &request).await;
     let refused = direct["estimates"]
         .as_array()
         .expect("estimates")
@@ -320,17 +325,7 @@ async fn page_crane_demo_plots_every_state_marks_refusals_and_shows_a_bad_pointe
     };
     let identify = json!({"form": "linear", "states": ["temperature"], "inputs": ["heater"],
                           "series": series});
-    let direct: Value = server
-        .client
-        .post(server.url("/v1/identify"))
-        .bearer_auth(KEY)
-        .json(&identify)
-        .send()
-        .await
-        .expect("post")
-        .json()
-        .await
-        .expect("answer");
+    let direct: Value = post_direct(&server, "/v1/identify", &identify).await;
     let a_direct = direct["model"]["dynamics"]["linear"]["A"][0][0]
         .as_f64()
         .expect("A");
