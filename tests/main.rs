@@ -21,6 +21,7 @@ mod http_memory;
 mod http_simulate;
 mod http_time;
 mod identify;
+mod identify_memory;
 mod no_alloc;
 mod openapi;
 mod page;

@@ -288,6 +288,76 @@ pub fn echo_bytes(text: &str) -> u64 {
     out
 }
 
+/// Bytes of an identify request's JSON tree per byte of its body: 14 measured for
+/// series entries by name and as arrays (a counting allocator over whole requests of
+/// 20,000 samples), with room to spare.
+const IDENTIFY_TREE: u64 = 16;
+
+/// What one `/v1/identify` request asks for, once parsed.
+#[derive(Debug, Clone, Copy)]
+pub struct IdentifyShape {
+    /// Which kernel runs.
+    pub work: IdentifyWork,
+    /// Samples in the series.
+    pub samples: usize,
+    /// Values per sample (states, or outputs for `subspace`, then inputs).
+    pub slots: usize,
+    /// States (outputs for `subspace`).
+    pub states: usize,
+    /// Library terms (regression forms).
+    pub terms: usize,
+    /// Bytes of the request body (held while the request runs).
+    pub body: usize,
+}
+
+/// The kernel an identify request runs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum IdentifyWork {
+    /// `linear`, `sparse`, `known`: windowed least squares over library columns.
+    Regression,
+    /// `subspace` with this many block rows at most (the horizon).
+    Subspace {
+        /// Block rows `i` of the past and future Hankel matrices.
+        horizon: usize,
+    },
+    /// `reduced`: a thin SVD of the snapshots.
+    Reduced,
+}
+
+/// Bytes an identify request holds at its peak: the larger of the parse (the body and
+/// its JSON tree, [`IDENTIFY_TREE`] per byte, and the series filling up) and the fit (the
+/// body, the series, the kernel's matrices and the answer). The kernels' matrices:
+/// - regression: the series with its inputs held (two copies), the library columns at
+///   each sample and with the inputs held, the known rates twice, and three sets of
+///   window rows (training, twice as wide, held out) of terms + states numbers each;
+/// - subspace: the transposed Hankel matrix (samples × 2i(inputs + outputs)), the copy
+///   its QR factorisation consumes and the product of the same size;
+/// - reduced: the snapshot matrix, the SVD's workspace (a copy), its V
+///   (snapshots × min(states, snapshots)) and the one-step prediction errors.
+pub fn identify_bytes(s: &IdentifyShape) -> u64 {
+    let m = s.samples as u64;
+    let slots = s.slots as u64;
+    let series = F64 * m * slots + 16 * m;
+    let parse = s.body as u64 * (1 + IDENTIFY_TREE) + series;
+    let work = match s.work {
+        IdentifyWork::Regression => {
+            let (k, n) = (s.terms as u64, s.states as u64);
+            F64 * m * (slots + 2 * k + 2 * n + 3 * (k + n))
+        }
+        IdentifyWork::Subspace { horizon } => {
+            let cols = 2 * horizon as u64 * slots;
+            3 * F64 * m * cols
+        }
+        IdentifyWork::Reduced => {
+            let n = s.states as u64;
+            F64 * (3 * n * m + m * n.min(m))
+        }
+    };
+    // The answer: a number per state and sample at most (the reduced basis, fit figures).
+    let answer = 2 * NUM * (s.states as u64 * 64 + 4096);
+    parse.max(s.body as u64 + series + work + answer)
+}
+
 /// Refuse `need` bytes over the budget, with both in the detail.
 pub fn within(need: u64, limits: &Limits) -> Result<(), Problem> {
     if need <= limits.max_request_bytes {

@@ -219,6 +219,12 @@ pub fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Probl
     identify::identify(body, limits, stop)
 }
 
+/// The memory an identify request would need at its peak, bytes: the estimate checked
+/// against `limits.max_request_bytes` once the request is parsed.
+pub fn identify_memory(body: &[u8], limits: &Limits) -> Result<u64, Problem> {
+    identify::memory(body, limits)
+}
+
 /// `POST /v1/check`: `{model, prior?}`.
 pub fn check(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     check::check(body, limits, stop)
