@@ -188,6 +188,11 @@ pub struct RunArgs {
     /// Smooth the whole batch (as POST /v1/smooth) instead of filtering.
     #[arg(long)]
     pub smooth: bool,
+    /// Readings from a historian CSV file (`-` for standard input): the request is then
+    /// one JSON document without `measurements`, with a `csv` section saying how to read
+    /// the file, as the `request` part of a multipart POST /v1/estimate.
+    #[arg(long, value_name = "CSV")]
+    pub readings: Option<String>,
     /// Request limits.
     #[command(flatten)]
     pub limits: LimitArgs,
@@ -416,6 +421,7 @@ fn serve(a: ServeArgs) -> Result<(), CliError> {
             tracing::info!(keys = config.api_keys.len(), "API keys required on /v1/*");
         }
         tracing::info!(addr = %local, limits = ?config.limits, cors = ?config.cors_origins, "tacit {} listening", env!("CARGO_PKG_VERSION"));
+        tracing::info!(page = %format!("http://{local}/"), "open the page in a browser");
         let state = AppState::new(config);
         http::serve(listener, state, http::shutdown_signal()).await?;
         tracing::info!("stopped");
@@ -514,6 +520,19 @@ pub fn classify(first_line: &[u8]) -> InputKind {
 
 fn run(a: &RunArgs) -> Result<(), CliError> {
     let limits = a.limits.to_limits().map_err(CliError::Other)?;
+    if let Some(csv) = &a.readings {
+        if csv == "-" && a.file == "-" {
+            return Err(CliError::Other(
+                "the request and the readings cannot both come from standard input".into(),
+            ));
+        }
+        let (mut request, mut readings) = (Vec::new(), Vec::new());
+        open(&a.file)?.read_to_end(&mut request)?;
+        open(csv)?.read_to_end(&mut readings)?;
+        let stop = Stop::within(limits.deadline);
+        let done = job::batch_csv(&request, &readings, &limits, &stop, a.smooth)?;
+        return print_pieces(&done.parts);
+    }
     let mut input = open(&a.file)?;
     let mut first = Vec::new();
     let mut line_no = 0u64;

@@ -15,8 +15,11 @@ const JOB_ROUTES: &[&str] = &["/v1/estimate", "/v1/smooth", "/v1/simulate", "/v1
 #[tokio::test]
 async fn unknown_route_is_404_problem() {
     let s = start_default().await;
+    // `/` is the page now; what it does not serve is still a problem.
     for path in [
-        "/",
+        "/index.html",
+        "/page/missing.js",
+        "/page/demo/boiler",
         "/v1",
         "/v1/estimates",
         "/v2/estimate",

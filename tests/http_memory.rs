@@ -62,7 +62,7 @@ pub(crate) fn batch(n: usize, lines: usize, every: usize) -> Vec<u8> {
 }
 
 /// The number of bytes in a detail's "needs about 25 GB" (powers of 1000).
-fn needed_bytes(detail: &str) -> f64 {
+pub(crate) fn needed_bytes(detail: &str) -> f64 {
     let rest = &detail[detail.find("needs about ").expect(detail) + "needs about ".len()..];
     let mut words = rest.split_whitespace();
     let x: f64 = words.next().unwrap().parse().unwrap();

@@ -11,11 +11,12 @@ use super::problem::problem_response;
 use super::state::{AppState, JobSlot};
 use crate::problem::{Problem, ProblemKind};
 use axum::body::Body;
-use axum::extract::{FromRequest, Request};
+use axum::extract::{DefaultBodyLimit, FromRequest, Request};
 use axum::http::{header, HeaderMap};
 use axum::response::Response;
 use bytes::{Bytes, BytesMut};
 use futures_util::StreamExt;
+use tower::{Layer, ServiceExt};
 
 /// A request body of media type `application/json`, read whole within the body limit,
 /// and the job slot it runs under. The slot is taken first: when none is free (or the
@@ -140,4 +141,118 @@ fn unreadable(e: axum::Error) -> Problem {
         ProblemKind::MalformedJson,
         "the request body could not be read to its end",
     )
+}
+
+/// What a batch route (`/v1/estimate`, `/v1/smooth`, `/v1/calibrate`) was sent.
+#[derive(Debug)]
+pub(crate) enum Posted {
+    /// `application/json`: the request as usual.
+    Json(Bytes),
+    /// `multipart/form-data`: the `request` part (JSON without `measurements`, with a `csv`
+    /// section) and the `readings` part (a historian CSV).
+    Csv {
+        /// The `request` part.
+        request: Bytes,
+        /// The `readings` part.
+        readings: Bytes,
+    },
+}
+
+/// A JSON or multipart body and its job slot, with [`JsonBody`]'s rules for both: the slot
+/// is taken before a byte is read and the whole body (every part) is within
+/// `max_body_bytes`. Any other media type is a 415.
+#[derive(Debug)]
+pub(crate) struct BatchBody(pub(crate) Posted, pub(crate) JobSlot);
+
+impl FromRequest<AppState> for BatchBody {
+    type Rejection = Response;
+
+    async fn from_request(req: Request, state: &AppState) -> Result<Self, Self::Rejection> {
+        require_media_type(
+            req.headers(),
+            &["application/json", "multipart/form-data"],
+            "application/json, or multipart/form-data with request and readings parts",
+        )
+        .map_err(|p| problem_response(&p))?;
+        let multipart = media_type(req.headers()).as_deref() == Some("multipart/form-data");
+        let route = req.uri().path().to_string();
+        let id = req
+            .headers()
+            .get(super::app::REQUEST_ID)
+            .and_then(|v| v.to_str().ok());
+        let slot = take_slot(state, &route, id).map_err(|r| *r)?;
+        let limit = state.limits().max_body_bytes;
+        let declared = content_length(req.headers());
+        let (parts, body) = req.into_parts();
+        let bytes = read_limited(body, limit, declared)
+            .await
+            .map_err(|p| problem_response(&p))?;
+        if !multipart {
+            return Ok(Self(Posted::Json(bytes), slot));
+        }
+        let req = Request::from_parts(parts, Body::from(bytes));
+        let posted = read_parts(req, state)
+            .await
+            .map_err(|p| problem_response(&p))?;
+        Ok(Self(posted, slot))
+    }
+}
+
+/// The `request` and `readings` parts of a multipart body already in memory.
+async fn read_parts(req: Request, state: &AppState) -> Result<Posted, Problem> {
+    let bad = |e: axum::extract::multipart::MultipartError| {
+        Problem::new(
+            ProblemKind::MalformedJson,
+            format!("the multipart body could not be read: {}", e.body_text()),
+        )
+    };
+    // The body is already read within `max_body_bytes`: axum's own 2 MB default for
+    // multipart bodies is lifted (its layer only marks the request).
+    let unlimited = DefaultBodyLimit::disable().layer(tower::service_fn(|r: Request| async move {
+        Ok::<_, std::convert::Infallible>(r)
+    }));
+    let req = match unlimited.oneshot(req).await {
+        Ok(r) => r,
+        Err(never) => match never {},
+    };
+    let mut form = axum::extract::Multipart::from_request(req, state)
+        .await
+        .map_err(|e| {
+            Problem::new(
+                ProblemKind::MalformedJson,
+                format!("the multipart body could not be read: {}", e.body_text()),
+            )
+        })?;
+    let (mut request, mut readings) = (None, None);
+    while let Some(field) = form.next_field().await.map_err(bad)? {
+        let name = field.name().unwrap_or("").to_string();
+        let slot = match name.as_str() {
+            "request" => &mut request,
+            "readings" => &mut readings,
+            other => {
+                return Err(Problem::field(
+                    "",
+                    format!("unknown part '{other}': send a 'request' part (JSON) and a 'readings' part (CSV)"),
+                ))
+            }
+        };
+        if slot.is_some() {
+            return Err(Problem::field(
+                format!("/{name}"),
+                format!("the '{name}' part is given twice"),
+            ));
+        }
+        *slot = Some(field.bytes().await.map_err(bad)?);
+    }
+    match (request, readings) {
+        (Some(request), Some(readings)) => Ok(Posted::Csv { request, readings }),
+        (None, _) => Err(Problem::field(
+            "",
+            "missing the 'request' part: the JSON request without measurements, with a csv section",
+        )),
+        (_, None) => Err(Problem::field(
+            "/readings",
+            "missing the 'readings' part: the CSV file of readings",
+        )),
+    }
 }

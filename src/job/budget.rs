@@ -4,10 +4,12 @@
 //! allowed to take the process down.
 //!
 //! The estimates are upper bounds of what is held at once: the body, what the run keeps
-//! per line (the smoother's stored steps), the ensemble's workspace, and the answer's
-//! bytes, counting each number at its longest shortest-round-trip form (24 bytes) plus a
-//! separator, and a buffer that grows by doubling at twice its contents. The test
-//! `the_memory_estimate_bounds_what_a_request_allocates` holds them to the bytes a
+//! per line (the smoother's stored steps, a calibration's parsed readings), the
+//! ensemble's workspace, and the answer's bytes, counting each number at its longest
+//! shortest-round-trip form (24 bytes) plus a separator, and a buffer that grows by
+//! doubling at twice its contents. The tests
+//! `the_memory_estimate_bounds_what_a_request_allocates` and
+//! `the_calibrate_memory_estimate_bounds_what_it_allocates` hold them to the bytes a
 //! counting allocator measures.
 
 use crate::config::Limits;
@@ -166,6 +168,196 @@ pub fn simulate_bytes(model: &Model, times: usize, changes: usize, body: usize) 
     body as u64 + 2 * lines * (truth + meas) + 64 * times as u64
 }
 
+/// What one `/v1/calibrate` request asks for.
+#[derive(Debug, Clone, Copy)]
+pub struct CalibrateShape<'a> {
+    /// The checked model.
+    pub model: &'a Model,
+    /// The filter settings.
+    pub cfg: &'a FilterConfig,
+    /// Measurement lines.
+    pub lines: usize,
+    /// Bytes of the request body (held while the request runs).
+    pub body: usize,
+    /// Bytes of the request without its measurements: kept as a JSON tree, copied for
+    /// every run and written back in the answer.
+    pub head: usize,
+    /// Upper bound of the measurements' bytes when written back ([`echo_bytes`]).
+    pub echo: u64,
+    /// Whether some line may carry `noise_std` (each reading then keeps its overrides).
+    pub overrides: bool,
+    /// Filter runs going at once (one per core in a gradient or a curvature).
+    pub threads: usize,
+}
+
+/// Bytes of a JSON tree (`serde_json::Value`, ordered maps) per byte of its text: at
+/// most about 50 for the smallest object `{"a":1}` (a map's entry vector of four 64-byte
+/// slots, its index table and a key block), less for anything larger.
+const TREE: u64 = 64;
+
+/// Bytes of one heap block of `b` bytes: the allocator's 8-byte header, rounded up to
+/// 16 bytes, 32 at least (glibc malloc's chunk sizes, from memory); none for 0.
+fn heap(b: u64) -> u64 {
+    if b == 0 {
+        0
+    } else {
+        (b + 8).next_multiple_of(16).max(32)
+    }
+}
+
+/// Bytes of one parsed reading kept for every run: the `Reading` itself and its lists
+/// (trimmed to their length), with every sensor read, and every input set when the
+/// model has inputs.
+fn reading_bytes(model: &Model, overrides: bool) -> u64 {
+    let s = model.sensors.len() as u64;
+    let m: u64 = model.sensors.iter().map(|s| s.dim as u64).sum();
+    let mut b = std::mem::size_of::<crate::model::Reading>() as u64 + heap(16 * s) + heap(F64 * m);
+    if overrides {
+        b += heap(16 * s) + heap(F64 * m);
+    }
+    b + heap(16 * model.inputs.len() as u64)
+}
+
+/// Bytes a `/v1/calibrate` request will hold at its peak: the body; the list of each
+/// line's text (kept while the readings are parsed, and again while they are written
+/// back); every parsed reading, kept for all runs; per run going at once, the filter's
+/// buffers and a copy of the request without its measurements as a tree; and the
+/// answer, which echoes the whole request, in a buffer growing by doubling.
+pub fn calibrate_bytes(s: &CalibrateShape<'_>) -> u64 {
+    let lines = s.lines as u64;
+    let head = s.head as u64;
+    let threads = s.threads.max(1) as u64;
+    let mut b = s.body as u64 + 16 * lines;
+    b += lines * reading_bytes(s.model, s.overrides);
+    // The head as a tree once, the fitted copy, and one copy (tree and text) per run.
+    b += 2 * TREE * head + threads * (filter_bytes(s.model, s.cfg) + (TREE + 1) * head);
+    // The answer: the echoed measurements, the head written back (a number can grow to
+    // 24 bytes), and the fitted values, correlations, warnings and two summaries.
+    b += 2 * (s.echo + 8 * head + (64 << 10));
+    b
+}
+
+/// Upper bound of the bytes `text` (JSON) takes when parsed and written back compactly by
+/// serde_json: whitespace goes, strings come back as long or shorter (escapes only
+/// shrink), an integer of up to 19 digits comes back as it was, and any other number as
+/// its shortest round-trip form, which has no more significant digits than the text but
+/// may be laid out positionally (`1e15` is `1000000000000000.0`): at most 24 bytes, or
+/// 4 more than a positional text (an exponent replacing zeros).
+pub fn echo_bytes(text: &str) -> u64 {
+    let b = text.as_bytes();
+    let mut out = 0u64;
+    let mut i = 0;
+    while i < b.len() {
+        match b[i] {
+            b' ' | b'\t' | b'\n' | b'\r' => i += 1,
+            b'"' => {
+                let start = i;
+                i += 1;
+                while i < b.len() && b[i] != b'"' {
+                    i += if b[i] == b'\\' { 2 } else { 1 };
+                }
+                i += 1;
+                out += (i.min(b.len()) - start) as u64;
+            }
+            b'-' | b'0'..=b'9' => {
+                let start = i;
+                let (mut dot, mut exp) = (false, false);
+                while i < b.len() && matches!(b[i], b'-' | b'+' | b'.' | b'e' | b'E' | b'0'..=b'9')
+                {
+                    dot |= b[i] == b'.';
+                    exp |= matches!(b[i], b'e' | b'E');
+                    i += 1;
+                }
+                let len = (i - start) as u64;
+                out += if exp {
+                    len.max(24)
+                } else if dot {
+                    (len + 4).min(len.max(24))
+                } else if len <= 19 {
+                    len
+                } else {
+                    len.max(24)
+                };
+            }
+            _ => {
+                out += 1;
+                i += 1;
+            }
+        }
+    }
+    out
+}
+
+/// Bytes of an identify request's JSON tree per byte of its body: 14 measured for
+/// series entries by name and as arrays (a counting allocator over whole requests of
+/// 20,000 samples), with room to spare.
+const IDENTIFY_TREE: u64 = 16;
+
+/// What one `/v1/identify` request asks for, once parsed.
+#[derive(Debug, Clone, Copy)]
+pub struct IdentifyShape {
+    /// Which kernel runs.
+    pub work: IdentifyWork,
+    /// Samples in the series.
+    pub samples: usize,
+    /// Values per sample (states, or outputs for `subspace`, then inputs).
+    pub slots: usize,
+    /// States (outputs for `subspace`).
+    pub states: usize,
+    /// Library terms (regression forms).
+    pub terms: usize,
+    /// Bytes of the request body (held while the request runs).
+    pub body: usize,
+}
+
+/// The kernel an identify request runs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum IdentifyWork {
+    /// `linear`, `sparse`, `known`: windowed least squares over library columns.
+    Regression,
+    /// `subspace` with this many block rows at most (the horizon).
+    Subspace {
+        /// Block rows `i` of the past and future Hankel matrices.
+        horizon: usize,
+    },
+    /// `reduced`: a thin SVD of the snapshots.
+    Reduced,
+}
+
+/// Bytes an identify request holds at its peak: the larger of the parse (the body and
+/// its JSON tree, [`IDENTIFY_TREE`] per byte, and the series filling up) and the fit (the
+/// body, the series, the kernel's matrices and the answer). The kernels' matrices:
+/// - regression: the series with its inputs held (two copies), the library columns at
+///   each sample and with the inputs held, the known rates twice, and three sets of
+///   window rows (training, twice as wide, held out) of terms + states numbers each;
+/// - subspace: the transposed Hankel matrix (samples × 2i(inputs + outputs)), the copy
+///   its QR factorisation consumes and the product of the same size;
+/// - reduced: the snapshot matrix, the SVD's workspace (a copy), its V
+///   (snapshots × min(states, snapshots)) and the one-step prediction errors.
+pub fn identify_bytes(s: &IdentifyShape) -> u64 {
+    let m = s.samples as u64;
+    let slots = s.slots as u64;
+    let series = F64 * m * slots + 16 * m;
+    let parse = s.body as u64 * (1 + IDENTIFY_TREE) + series;
+    let work = match s.work {
+        IdentifyWork::Regression => {
+            let (k, n) = (s.terms as u64, s.states as u64);
+            F64 * m * (slots + 2 * k + 2 * n + 3 * (k + n))
+        }
+        IdentifyWork::Subspace { horizon } => {
+            let cols = 2 * horizon as u64 * slots;
+            3 * F64 * m * cols
+        }
+        IdentifyWork::Reduced => {
+            let n = s.states as u64;
+            F64 * (3 * n * m + m * n.min(m))
+        }
+    };
+    // The answer: a number per state and sample at most (the reduced basis, fit figures).
+    let answer = 2 * NUM * (s.states as u64 * 64 + 4096);
+    parse.max(s.body as u64 + series + work + answer)
+}
+
 /// Refuse `need` bytes over the budget, with both in the detail.
 pub fn within(need: u64, limits: &Limits) -> Result<(), Problem> {
     if need <= limits.max_request_bytes {
@@ -215,5 +407,22 @@ mod tests {
         assert_eq!(size(6_170_000_000), "6.2 GB");
         assert_eq!(size(999), "999 bytes");
         assert_eq!(size(1_500), "1.5 kB");
+    }
+
+    #[test]
+    fn the_echo_bound_holds_what_serde_json_writes_back() {
+        // serde_json (float_roundtrip) is the independent writer: parse and write back.
+        for text in [
+            r#"[{"t": 1, "values": {"g": 0.125}}, {"t":2,"values":{"g":null}}]"#,
+            r#"[{"t":1e15,"values":{"g":[1e-7,5E2,-0.000001234]}}]"#,
+            r#"[{"t":"2026-12-03T04:00:00\u002B01:00","values":{"g":10000000000000001.0}}]"#,
+            r#"[{"t":123456789012345678901234,"values":{"g":1.0}}]"#,
+        ] {
+            let v: serde_json::Value = serde_json::from_str(text).unwrap();
+            let written = serde_json::to_vec(&v).unwrap().len() as u64;
+            let bound = echo_bytes(text);
+            assert!(bound >= written, "{text}: {bound} < {written}");
+            assert!(bound <= written + 96, "{text}: {bound} vs {written}");
+        }
     }
 }

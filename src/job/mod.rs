@@ -9,7 +9,8 @@
 //! (parse, filter step, record), which `pipeline.rs` runs with parsing and writing on two
 //! more threads for large batches; `smooth.rs` adds the backward pass; `stream.rs` is the
 //! stream session; `check.rs` and `simulate.rs` answer `/v1/check` and `/v1/simulate` over
-//! [`crate::diagnostics::observability`] and [`crate::simulate`]; `records.rs` and
+//! [`crate::diagnostics::observability`] and [`crate::simulate`]; `upload.rs` turns a
+//! historian CSV upload into a batch or calibration request; `records.rs` and
 //! `write.rs` turn estimates into the JSON bytes. Modules here call down into the filters,
 //! diagnostics and dynamics; nothing below imports this module.
 
@@ -29,6 +30,7 @@ mod setup;
 mod simulate;
 mod smooth;
 mod stream;
+mod upload;
 pub mod write;
 
 pub use crate::model::{Halt, Stop};
@@ -172,6 +174,37 @@ pub fn calibrate(
     calibrate::calibrate(body, limits, stop, progress)
 }
 
+/// `POST /v1/estimate` (`smooth`: `/v1/smooth`) with its readings as a historian CSV:
+/// `request` is the JSON request without `measurements`, with a `csv` section saying how
+/// to read `readings`. The answer is the one the same readings sent as JSON would get,
+/// with the conversion's notes in `summary.warnings`.
+pub fn batch_csv(
+    request: &[u8],
+    readings: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+    smooth: bool,
+) -> Result<Pieces, Problem> {
+    upload::batch(request, readings, limits, stop, smooth)
+}
+
+/// `POST /v1/calibrate` with its readings as a historian CSV (see [`batch_csv`]).
+pub fn calibrate_csv(
+    request: &[u8],
+    readings: &[u8],
+    limits: &Limits,
+    stop: &Stop,
+    progress: &(dyn Fn(u64, Option<f64>) + Sync),
+) -> Result<Done, Problem> {
+    upload::calibrate(request, readings, limits, stop, progress)
+}
+
+/// The memory a calibrate request would need at its peak, bytes: the estimate checked
+/// against `limits.max_request_bytes` before its readings are parsed.
+pub fn calibrate_memory(body: &[u8], limits: &Limits) -> Result<u64, Problem> {
+    calibrate::memory(body, limits)
+}
+
 /// `POST /v1/simulate`: `{model, prior, times, inputs?, seed}`.
 pub fn simulate(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     simulate_pieces(body, limits, stop).map(Pieces::into_done)
@@ -186,6 +219,12 @@ pub fn simulate_pieces(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Piec
 /// `/v1/estimate` accepts, the fitted terms and the fit on a held-out tail.
 pub fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     identify::identify(body, limits, stop)
+}
+
+/// The memory an identify request would need at its peak, bytes: the estimate checked
+/// against `limits.max_request_bytes` once the request is parsed.
+pub fn identify_memory(body: &[u8], limits: &Limits) -> Result<u64, Problem> {
+    identify::memory(body, limits)
 }
 
 /// `POST /v1/check`: `{model, prior?}`.

@@ -2,8 +2,10 @@
 //! envelope (`envelope`) and serde mirror types of each section (`raw`), then one
 //! validation step (`validate`) producing the checked [`crate::model`] types that the
 //! filters consume, with typed errors (`error`). Measurement lines have their own reader
-//! (`reading`), with a byte cursor for the usual line (`line_scan`).
+//! (`reading`), with a byte cursor for the usual line (`line_scan`). A historian CSV upload
+//! becomes measurement-line text in `csv`.
 
+pub mod csv;
 pub mod envelope;
 pub mod error;
 mod line_scan;

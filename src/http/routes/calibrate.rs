@@ -6,7 +6,7 @@
 //! deadline applies and the work stops when the client goes away.
 
 use super::route::{mount, Route};
-use crate::http::extract::JsonBody;
+use crate::http::extract::{BatchBody, Posted};
 use crate::http::jobs::{run_job_in, CancelOnDrop};
 use crate::http::problem::public;
 use crate::http::state::AppState;
@@ -52,14 +52,29 @@ fn progress_line(run: u64, ll: Option<f64>) -> Vec<u8> {
     line
 }
 
+/// The calibration of a JSON request or of a CSV upload.
+fn fit(
+    posted: &Posted,
+    limits: &crate::config::Limits,
+    stop: &Stop,
+    progress: &(dyn Fn(u64, Option<f64>) + Sync),
+) -> Result<job::Done, crate::problem::Problem> {
+    match posted {
+        Posted::Json(body) => job::calibrate(body, limits, stop, progress),
+        Posted::Csv { request, readings } => {
+            job::calibrate_csv(request, readings, limits, stop, progress)
+        }
+    }
+}
+
 async fn calibrate(
     State(state): State<AppState>,
     headers: HeaderMap,
-    JsonBody(body, slot): JsonBody,
+    BatchBody(posted, slot): BatchBody,
 ) -> Response {
     if !wants_progress(&headers) {
         return run_job_in(&state, slot, usize::MAX, move |limits, stop| {
-            job::calibrate(&body, limits, stop, &|_, _| {})
+            fit(&posted, limits, stop, &|_, _| {})
         })
         .await;
     }
@@ -84,7 +99,7 @@ async fn calibrate(
                 p(k, ll);
             }
         };
-        let last = match job::calibrate(&body, st.limits(), &stop, &report) {
+        let last = match fit(&posted, st.limits(), &stop, &report) {
             Ok(done) => {
                 st.metrics().record_run(&done.stats);
                 let mut b = done.body;

@@ -1,7 +1,7 @@
 //! `POST /v1/estimate` and `POST /v1/smooth`: one whole batch in, one JSON answer out.
 
 use super::route::{mount, Route};
-use crate::http::extract::JsonBody;
+use crate::http::extract::{BatchBody, Posted};
 use crate::http::jobs::run_job_in;
 use crate::http::lane::SMALL_BODY;
 use crate::http::state::AppState;
@@ -33,7 +33,13 @@ pub fn router() -> Router<AppState> {
     mount(ROUTES)
 }
 
-async fn estimate(State(state): State<AppState>, JsonBody(body, slot): JsonBody) -> Response {
+async fn estimate(State(state): State<AppState>, BatchBody(posted, slot): BatchBody) -> Response {
+    let body = match posted {
+        Posted::Json(body) => body,
+        Posted::Csv { request, readings } => {
+            return csv(&state, slot, request, readings, false).await
+        }
+    };
     // A body on the compute lane is too small to need streaming (and the budget has
     // counted its whole answer); a larger one may send its answer as it is written.
     if body.len() <= SMALL_BODY {
@@ -49,7 +55,28 @@ async fn estimate(State(state): State<AppState>, JsonBody(body, slot): JsonBody)
     .await
 }
 
-async fn smooth(State(state): State<AppState>, JsonBody(body, slot): JsonBody) -> Response {
+/// A CSV upload: converted and run as one batch (its answer is not streamed).
+async fn csv(
+    state: &AppState,
+    slot: crate::http::state::JobSlot,
+    request: bytes::Bytes,
+    readings: bytes::Bytes,
+    smooth: bool,
+) -> Response {
+    let len = request.len() + readings.len();
+    run_job_in(state, slot, len, move |limits, stop| {
+        job::batch_csv(&request, &readings, limits, stop, smooth)
+    })
+    .await
+}
+
+async fn smooth(State(state): State<AppState>, BatchBody(posted, slot): BatchBody) -> Response {
+    let body = match posted {
+        Posted::Json(body) => body,
+        Posted::Csv { request, readings } => {
+            return csv(&state, slot, request, readings, true).await
+        }
+    };
     run_job_in(&state, slot, body.len(), move |limits, stop| {
         job::smooth_pieces(&body, limits, stop)
     })

@@ -9,6 +9,7 @@ mod info;
 mod metrics;
 mod model;
 mod openapi;
+mod page;
 mod problems;
 mod route;
 mod stream;
@@ -27,6 +28,7 @@ pub mod groups {
     pub use super::metrics::router as metrics;
     pub use super::model::router as model;
     pub use super::openapi::router as openapi;
+    pub use super::page::router as page;
     pub use super::problems::router as problems;
     pub use super::stream::router as stream;
 }

@@ -5,7 +5,7 @@
 
 use super::route::Route;
 use super::{
-    calibrate, estimate, health, identify, info, metrics, model, openapi, problems, stream,
+    calibrate, estimate, health, identify, info, metrics, model, openapi, page, problems, stream,
 };
 
 /// Every route group of the service.
@@ -20,6 +20,7 @@ pub const ALL: &[&[Route]] = &[
     calibrate::ROUTES,
     model::ROUTES,
     identify::ROUTES,
+    page::ROUTES,
 ];
 
 /// Every route, flattened.

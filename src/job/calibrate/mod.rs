@@ -10,22 +10,21 @@
 //! request with the fitted values substituted, ready for /v1/estimate.
 
 mod objective;
+mod parts;
 mod search;
 mod spec;
 mod stats;
 
 use crate::config::Limits;
+use crate::job::filtering::measurement_list;
+use crate::job::setup::cancelled;
 use crate::job::{Done, RunStats};
-use crate::model::Stop as RequestStop;
+use crate::model::{Halt, Stop as RequestStop};
 use crate::problem::Problem;
 use crate::request::envelope;
-use objective::{Objective, Progress, Stop};
+use objective::{readings_only, Objective, Progress, Stop};
+use serde_json::value::RawValue;
 use serde_json::{json, Map as JsonMap, Value};
-
-/// Take an optional top-level section out of the request.
-fn take(req: &mut Value, key: &str) -> Option<Value> {
-    req.as_object_mut().and_then(|o| o.remove(key))
-}
 
 /// The summary object a run wrote (`"summary":{...}`) as JSON.
 fn summary_value(bytes: &[u8]) -> Value {
@@ -38,6 +37,42 @@ fn num(x: f64) -> Value {
     serde_json::Number::from_f64(x).map_or(Value::Null, Value::Number)
 }
 
+/// The sections of a calibrate request: `free` (required), `likelihood`, `search`, the
+/// measurements' raw text, and the rest as a tree (see [`parts::Members::head`]).
+#[allow(clippy::type_complexity)]
+fn sections<'b>(
+    members: &mut parts::Members<'b>,
+) -> Result<
+    (
+        Value,
+        Option<Value>,
+        Option<Value>,
+        Option<&'b RawValue>,
+        Value,
+    ),
+    Problem,
+> {
+    let section = |raw: Option<&RawValue>| -> Result<Option<Value>, Problem> {
+        raw.map(|r| serde_json::from_str(r.get()).map_err(envelope::json_problem))
+            .transpose()
+    };
+    let free_v = section(members.take("free"))?
+        .ok_or_else(|| Problem::field("/free", "missing required field 'free'"))?;
+    let likelihood = section(members.take("likelihood"))?;
+    let search_v = section(members.take("search"))?;
+    let measurements = members.get("measurements");
+    let head = Value::Object(members.head()?);
+    Ok((free_v, likelihood, search_v, measurements, head))
+}
+
+/// The memory a calibrate request would need at its peak, bytes, as [`calibrate`]
+/// estimates it before parsing its readings.
+pub(super) fn memory(body: &[u8], limits: &Limits) -> Result<u64, Problem> {
+    let mut members = parts::members(body)?;
+    let (_, _, _, measurements, head) = sections(&mut members)?;
+    objective::checked(&head, measurements, body.len(), limits).map(|(_, _, need)| need)
+}
+
 /// `POST /v1/calibrate`. `progress` hears of every run (its number from 1 and its
 /// log-likelihood, None for a run that failed).
 pub(super) fn calibrate(
@@ -46,19 +81,16 @@ pub(super) fn calibrate(
     stop: &RequestStop,
     progress: Progress<'_>,
 ) -> Result<Done, Problem> {
-    let mut req: Value = serde_json::from_slice(body).map_err(envelope::json_problem)?;
-    if !req.is_object() {
-        return Err(Problem::field("", "the request is a JSON object"));
-    }
-    let free_v = take(&mut req, "free")
-        .ok_or_else(|| Problem::field("/free", "missing required field 'free'"))?;
-    let likelihood = take(&mut req, "likelihood");
-    let search_v = take(&mut req, "search");
+    let mut members = parts::members(body)?;
+    let (free_v, likelihood, search_v, measurements, head) = sections(&mut members)?;
     let settings = spec::settings(likelihood.as_ref(), search_v.as_ref())?;
-    let frees = spec::free(&free_v, &req)?;
+    let frees = spec::free(&free_v, &head)?;
+
     let maps: Vec<spec::Map> = frees.iter().map(|f| f.map).collect();
     let obj = Objective::new(
-        &req,
+        head,
+        measurements,
+        body.len(),
         &frees,
         settings.skip,
         settings.max_runs,
@@ -92,7 +124,7 @@ pub(super) fn calibrate(
     let before = obj.run(&x0, true, true)?;
     let after = obj.run(&best_x, true, true)?;
     let mut fitted = obj
-        .substituted(&req, &best_x, true)
+        .substituted(obj.head(), &best_x, true)
         .ok_or_else(|| Problem::field("/free", "a fitted value is not a finite number"))?;
     drop_absent(&mut fitted);
 
@@ -146,11 +178,11 @@ pub(super) fn calibrate(
         "detail": ended.detail,
         "correlation": correlation,
         "warnings": warnings,
-        "request": fitted,
+        "request": Value::Null,
         "summary_before": summary_value(&before.summary),
         "summary_after": summary_value(&after.summary),
     });
-    let body = serde_json::to_vec(&answer).map_err(|e| Problem::field("", e.to_string()))?;
+    let body = answer_bytes(&answer, &fitted, measurements, limits, stop)?;
     Ok(Done {
         body,
         stats: RunStats {
@@ -159,6 +191,43 @@ pub(super) fn calibrate(
             updates: 0,
             rejected: 0,
         },
+    })
+}
+
+/// The answer's bytes: `answer` with `request` written as the fitted request `head` with
+/// the measurements put back in their place.
+fn answer_bytes(
+    answer: &Value,
+    head: &Value,
+    measurements: Option<&RawValue>,
+    limits: &Limits,
+    stop: &RequestStop,
+) -> Result<Vec<u8>, Problem> {
+    let (Value::Object(answer), Value::Object(head)) = (answer, head) else {
+        return Err(Problem::field("", "the answer is an object"));
+    };
+    let lines = measurement_list(&readings_only(measurements), limits)?;
+    let echo = parts::Spliced {
+        map: head,
+        key: "measurements",
+        value: parts::Echoed {
+            lines: &lines,
+            stop,
+        },
+    };
+    let whole = parts::Spliced {
+        map: answer,
+        key: "request",
+        value: echo,
+    };
+    serde_json::to_vec(&whole).map_err(|e| match stop.halted() {
+        Some(Halt::Cancelled) => cancelled(),
+        Some(Halt::Deadline) => Problem::new(
+            crate::problem::ProblemKind::DeadlineExceeded,
+            "the request needed more than the compute deadline (counted from its \
+             arrival); it stopped while writing the answer",
+        ),
+        None => Problem::field("", e.to_string()),
     })
 }
 

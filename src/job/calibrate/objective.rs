@@ -19,19 +19,61 @@
 use super::spec::Free;
 use crate::config::Limits;
 use crate::filter::run::Run;
+use crate::job::budget::{self, CalibrateShape};
 use crate::job::failure::step_problem;
 use crate::job::filtering::measurement_list;
 use crate::job::plain::{line_pointer, line_problem, problem_under};
-use crate::job::setup::{setup, Guard};
+use crate::job::setup::{setup, Guard, Setup};
 use crate::job::write::Writer;
 use crate::model::Reading;
 use crate::model::Stop as RequestStop;
 use crate::problem::{Problem, ProblemKind};
-use crate::request::envelope;
+use crate::request::envelope::{self, Envelope};
 use crate::request::reading::ReadingParser;
+use serde_json::value::RawValue;
 use serde_json::Value;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Mutex;
+
+/// Cores to run on: the most runs of the objective going at once.
+pub(crate) fn cores() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
+/// An envelope holding only `measurements`, for [`measurement_list`].
+pub(crate) fn readings_only(measurements: Option<&RawValue>) -> Envelope<'_> {
+    Envelope {
+        measurements,
+        ..Envelope::default()
+    }
+}
+
+/// The request without its measurements (`head`) parsed and checked, each line's text,
+/// and the bytes the whole request will need at its peak with a body of `body` bytes.
+pub(crate) fn checked<'m>(
+    head: &Value,
+    measurements: Option<&'m RawValue>,
+    body: usize,
+    limits: &Limits,
+) -> Result<(Setup, Vec<&'m str>, u64), Problem> {
+    let bytes = serde_json::to_vec(head).map_err(|e| Problem::field("", e.to_string()))?;
+    let env = envelope::envelope(&bytes)?;
+    let s = setup(&env, limits)?;
+    let lines = measurement_list(&readings_only(measurements), limits)?;
+    let text = measurements.map_or("", RawValue::get);
+    let need = budget::calibrate_bytes(&CalibrateShape {
+        model: &s.model,
+        cfg: &s.cfg,
+        lines: lines.len(),
+        body,
+        head: bytes.len(),
+        echo: budget::echo_bytes(text),
+        // A `noise_std` key, or keys with escapes that could spell it.
+        overrides: text.contains("noise_std") || text.contains('\\'),
+        threads: cores(),
+    });
+    Ok((s, lines, need))
+}
 
 /// Why the search must stop now.
 #[derive(Debug)]
@@ -79,9 +121,14 @@ pub(crate) struct Outcome {
 }
 
 impl<'a> Objective<'a> {
-    /// Parse and check `req` (an estimate request) once, readings included.
+    /// Parse and check `head` (an estimate request without its measurements) and the
+    /// `measurements` once; refuse the request over the memory budget (counting a body
+    /// of `body` bytes) before its readings are parsed.
+    #[allow(clippy::too_many_arguments)]
     pub(crate) fn new(
-        req: &Value,
+        head: Value,
+        measurements: Option<&RawValue>,
+        body: usize,
         frees: &'a [Free],
         skip: u64,
         max_runs: u64,
@@ -89,42 +136,42 @@ impl<'a> Objective<'a> {
         stop: &'a RequestStop,
         progress: Progress<'a>,
     ) -> Result<Self, Problem> {
-        let bytes = serde_json::to_vec(req).map_err(|e| Problem::field("", e.to_string()))?;
-        let env = envelope::envelope(&bytes)?;
-        let s = setup(&env, limits)?;
-        let lines = measurement_list(&env, limits)?;
+        let (s, lines, need) = checked(&head, measurements, body, limits)?;
+        budget::within(need, limits)?;
+        let guard = Guard::new(stop);
         let parser = ReadingParser::new(&s.model, s.prior.mode, &s.zone);
         let mut readings = Vec::with_capacity(lines.len());
         for (i, text) in lines.iter().enumerate() {
+            guard.check(i)?;
             let mut r = Reading::default();
             parser
                 .parse(text, &mut r)
                 .map_err(|e| line_problem(e.under(&line_pointer(i))))?;
+            // Held for every run: no spare capacity.
+            r.sensors.shrink_to_fit();
+            r.z.shrink_to_fit();
+            r.std_overrides.shrink_to_fit();
+            r.std.shrink_to_fit();
+            r.inputs.shrink_to_fit();
             readings.push(r);
         }
-        // Everything but the readings (which can be millions of lines), once.
-        let head = Value::Object(
-            req.as_object()
-                .map(|o| {
-                    o.iter()
-                        .filter(|(k, _)| k.as_str() != "measurements")
-                        .map(|(k, v)| (k.clone(), v.clone()))
-                        .collect()
-                })
-                .unwrap_or_default(),
-        );
         Ok(Self {
             head,
             frees,
             readings,
             skip,
             limits,
-            guard: Guard::new(stop),
+            guard,
             runs: AtomicU64::new(0),
             max_runs,
             progress,
             best: Mutex::new(None),
         })
+    }
+
+    /// The request without its measurements, as sent.
+    pub(crate) fn head(&self) -> &Value {
+        &self.head
     }
 
     /// The request's `model`, `filter`, `prior` (and `time_zone`, `output`) with `x` at

@@ -11,7 +11,7 @@
 //! differences (common practice); the runs of one gradient or one curvature go in
 //! parallel on all cores.
 
-use super::objective::{Objective, Stop};
+use super::objective::{cores, Objective, Stop};
 use super::spec::Map;
 use crate::problem::Problem;
 use argmin::core::{CostFunction, Error, Executor, Gradient, State, TerminationReason};
@@ -64,10 +64,7 @@ pub(crate) fn costs(
     us: &[Vec<f64>],
     budgeted: bool,
 ) -> Result<Vec<f64>, Stop> {
-    let threads = std::thread::available_parallelism()
-        .map_or(1, |n| n.get())
-        .min(us.len())
-        .max(1);
+    let threads = cores().min(us.len()).max(1);
     let next = AtomicUsize::new(0);
     let out = Mutex::new(vec![f64::INFINITY; us.len()]);
     let stop: Mutex<Option<Stop>> = Mutex::new(None);

@@ -10,13 +10,15 @@ mod answer;
 mod modal;
 mod parse;
 
+use super::budget::{self, IdentifyShape, IdentifyWork};
 use super::setup::cancelled;
 use super::{Done, RunStats};
 use crate::config::Limits;
 use crate::formula::Program;
-use crate::identify::library::{evaluate, Library};
+use crate::identify::library::{evaluate, monomial_count, Library};
 use crate::identify::noise::{mean, mean_square, split, Spread};
 use crate::identify::regress::{discrete, integral, residual_rms, residuals, stlsq, Columns};
+use crate::identify::subspace::DEFAULT_HORIZON;
 use crate::identify::{moving_inputs, Coefficients, Fit, IdentifyError, Series};
 use crate::model::{Halt, Stop};
 use crate::problem::{Problem, ProblemKind};
@@ -25,6 +27,7 @@ use parse::{Form, Request};
 /// Parse, fit and answer one identify request.
 pub(crate) fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done, Problem> {
     let req = parse::request(body, limits)?;
+    budget::within(need(&req, body.len()), limits)?;
     let body = match req.form {
         Form::Subspace => return modal::answer_subspace(&req, stop),
         Form::Reduced => return modal::answer_reduced(&req, stop),
@@ -36,6 +39,41 @@ pub(crate) fn identify(body: &[u8], limits: &Limits, stop: &Stop) -> Result<Done
     Ok(Done {
         body,
         stats: RunStats::default(),
+    })
+}
+
+/// The memory estimate of a request, bytes (parsed first; for tests and sizing).
+pub(crate) fn memory(body: &[u8], limits: &Limits) -> Result<u64, Problem> {
+    Ok(need(&parse::request(body, limits)?, body.len()))
+}
+
+/// [`budget::identify_bytes`] of a parsed request.
+fn need(req: &Request, body: usize) -> u64 {
+    let s = &req.series;
+    let slots = s.states + s.inputs;
+    let (work, terms) = match req.form {
+        Form::Subspace => {
+            let order = match req.order {
+                parse::Order::Fixed(n) => n,
+                parse::Order::Auto => 0,
+            };
+            let horizon = DEFAULT_HORIZON.max(order / s.states.max(1) + 1);
+            (IdentifyWork::Subspace { horizon }, 0)
+        }
+        Form::Reduced => (IdentifyWork::Reduced, 0),
+        Form::Linear { .. } => (IdentifyWork::Regression, slots + 1),
+        Form::Sparse | Form::Known => (
+            IdentifyWork::Regression,
+            monomial_count(slots, 0, req.degree).saturating_add(req.terms.len()),
+        ),
+    };
+    budget::identify_bytes(&IdentifyShape {
+        work,
+        samples: s.len(),
+        slots,
+        states: s.states,
+        terms,
+        body,
     })
 }
 
