@@ -7,6 +7,7 @@ mod cli;
 mod demo;
 mod deploy;
 mod estimation;
+mod family_memory;
 mod fuzz;
 mod http_api;
 mod http_bomb;

@@ -75,3 +75,51 @@ fn a_warm_stream_line_allocates_nothing_whatever_its_time_form() {
         }
     }
 }
+
+#[test]
+fn a_warm_family_stream_line_allocates_nothing() {
+    // A cooling channel of 2,000 cells, probes on every second cell (one line carries
+    // 1,000 readings), 12 members with the local update. The lines run inside a pool of
+    // one thread, so the forecast and analysis that rayon would spread over workers are
+    // counted here too.
+    let n = 2_000;
+    let header = json!({
+        "model": {"families": {"cell": {"size": n, "boundary": "periodic"}},
+                  "parameters": {"k": 0.3},
+                  "dynamics": {"rates": {"cell[i]": "k*(cell[i+1] - 2*cell[i] + cell[i-1])"}},
+                  "sensors": {"probe": {"measures": "cell[i]", "every": 2, "std": 0.5}}},
+        "filter": {"method": "enkf", "integration": {"fixed_step": 0.05},
+                   "ensemble": {"members": 12, "seed": 4, "update": "local", "radius": 5}},
+        "prior": {"t": 0, "mean": {"cell": 20.0}, "std": {"cell": 1.0}}
+    });
+    let lines: Vec<String> = (1..=40)
+        .map(|k| {
+            let z: Vec<f64> = (0..n / 2)
+                .map(|i| 20.0 + ((i * 7 + k * 3) % 11) as f64 * 0.1)
+                .collect();
+            json!({"t": k as f64 * 0.1, "values": {"probe": z}}).to_string()
+        })
+        .collect();
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(1)
+        .build()
+        .unwrap();
+    let count = pool.install(|| {
+        let header = serde_json::to_vec(&header).unwrap();
+        let mut session =
+            StreamSession::start(&header, &Limits::default(), &tacit::job::Stop::never()).unwrap();
+        let mut out = Vec::with_capacity(8 << 20);
+        for (i, l) in lines[..8].iter().enumerate() {
+            session.push(l.as_bytes(), i as u64 + 2, &mut out).unwrap();
+        }
+        out.clear();
+        let info = allocation_counter::measure(|| {
+            for (i, l) in lines[8..].iter().enumerate() {
+                session.push(l.as_bytes(), i as u64 + 10, &mut out).unwrap();
+            }
+        });
+        assert!(out.len() < 8 << 20, "the output buffer had to grow");
+        info.count_total
+    });
+    assert_eq!(count, 0, "{count} allocations in 32 family lines");
+}

@@ -358,6 +358,61 @@ pub fn identify_bytes(s: &IdentifyShape) -> u64 {
     parse.max(s.body as u64 + series + work + answer)
 }
 
+/// Bytes of a parsed JSON section's tree per byte of its text (the model and prior of a
+/// family request: parameter arrays, a posterior's members), as for identify.
+pub const FAMILY_TREE: u64 = IDENTIFY_TREE;
+
+/// States the local transform analyses with one scratch set (`CHUNK` in
+/// `filter::enkf::local`).
+const LOCAL_CHUNK: u64 = 128;
+
+/// What one family-model run with the local ensemble update asks for.
+#[derive(Debug, Clone, Copy)]
+pub struct FamilyShape {
+    /// States over all families.
+    pub states: usize,
+    /// Elements in one family (the boundary table of the transform).
+    pub size: usize,
+    /// Ensemble members.
+    pub members: usize,
+    /// Most readings in one line (every element every sensor reads).
+    pub readings: usize,
+    /// Threads that forecast members at once (one RK4 buffer set each).
+    pub threads: usize,
+    /// Answer lines held at once: every line for a batch, one for a stream.
+    pub lines: usize,
+    /// Whether each line carries `std` as well as `mean`.
+    pub std: bool,
+    /// Bytes of the sections parsed into trees (model, filter, prior, output).
+    pub sections: usize,
+    /// Bytes of the request body (a stream's header), held while the run lasts.
+    pub body: usize,
+}
+
+/// Bytes a family run with the local update holds at its peak: the body and its parsed
+/// sections ([`FAMILY_TREE`] per byte), the members and the transform's output copy
+/// (N·n numbers each), one RK4 set of five state vectors per thread, the transform's
+/// scratch (per 128 states four N×N matrices and a few N-vectors), the readings'
+/// buffers (N + 8 numbers each), a reading line's text as it gathers (26 bytes a value,
+/// at twice its contents) and parsed (64 bytes a value), the mean and
+/// std, and the answer (n or 2n numbers per line held, and the posterior's N·n + 2n
+/// numbers) at twice its contents.
+pub fn family_bytes(s: &FamilyShape) -> u64 {
+    let (n, nn, r) = (s.states as u64, s.members as u64, s.readings as u64);
+    let chunks = n.div_ceil(LOCAL_CHUNK).max(1);
+    let run = F64
+        * (2 * n * nn
+            + 5 * n * s.threads.clamp(1, s.members.max(1)) as u64
+            + chunks * (4 * nn * nn + 8 * nn)
+            + r * (2 * nn + 8)
+            + 2 * n
+            + s.size as u64)
+        + (64 + 2 * 26) * r;
+    let per_line = NUM * n * if s.std { 2 } else { 1 };
+    let answer = 2 * (s.lines as u64 * per_line + NUM * n * (nn + 2));
+    s.body as u64 + FAMILY_TREE * s.sections as u64 + run + answer
+}
+
 /// Refuse `need` bytes over the budget, with both in the detail.
 pub fn within(need: u64, limits: &Limits) -> Result<(), Problem> {
     if need <= limits.max_request_bytes {

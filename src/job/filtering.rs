@@ -126,32 +126,6 @@ impl PieceSink for Headed<'_> {
     }
 }
 
-/// A family model with `filter.ensemble.update: "local"` ([`super::family`]); `None`
-/// for every other request.
-fn local_family(
-    env: &Envelope<'_>,
-    limits: &Limits,
-    stop: &Stop,
-) -> Option<Result<Pieces, Problem>> {
-    let model = envelope::section(env.model, "model").ok()?;
-    let filter = envelope::section(env.filter, "filter").ok()?;
-    if !super::family::wants_local(&model, &filter) {
-        return None;
-    }
-    Some((|| {
-        let prior = envelope::section(env.prior, "prior")?;
-        let output = envelope::optional_section(env.output, "output")?;
-        let lines = measurement_list(env, limits)?;
-        super::family::estimate(
-            [&model, &filter, &prior],
-            output.as_ref(),
-            &lines,
-            limits,
-            stop,
-        )
-    })())
-}
-
 /// [`run_batch_overlapping`], streaming the answer to `out` when it qualifies.
 fn run_batch_to(
     body: &[u8],
@@ -163,8 +137,9 @@ fn run_batch_to(
 ) -> Result<BatchAnswer, Problem> {
     let env = envelope::envelope(body)?;
     if !smooth {
-        if let Some(p) = local_family(&env, limits, stop) {
-            return p.map(BatchAnswer::Pieces);
+        let lines = || measurement_list(&env, limits);
+        if let Some(p) = super::family::estimate(&env, body.len(), lines, limits, stop)? {
+            return Ok(BatchAnswer::Pieces(p));
         }
     }
     let Setup {
@@ -316,6 +291,12 @@ fn shape<'a>(
 /// before running (for tests and operators sizing `max_request_bytes`).
 pub(super) fn batch_need(body: &[u8], limits: &Limits, smooth: bool) -> Result<u64, Problem> {
     let env = envelope::envelope(body)?;
+    if !smooth {
+        let lines = measurement_list(&env, limits)?.len();
+        if let Some(need) = super::family::batch_need(&env, body.len(), lines, limits)? {
+            return Ok(need);
+        }
+    }
     let s = setup(&env, limits)?;
     let lines = measurement_list(&env, limits)?;
     let overlap = !smooth && lines.len() >= OVERLAP_MIN_LINES;

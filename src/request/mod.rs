@@ -8,7 +8,7 @@
 pub mod csv;
 pub mod envelope;
 pub mod error;
-mod line_scan;
+pub(crate) mod line_scan;
 pub mod raw;
 pub mod reader;
 pub mod reading;

@@ -15,6 +15,7 @@
 //! members' spread with multiplicative inflation (`ensemble.inflation`), the usual
 //! practice for this filter (Hunt, Kostelich & Szunyogh 2007, §2.4).
 
+use super::budget;
 use super::write::num;
 use super::RunStats;
 use crate::config::Limits;
@@ -22,11 +23,15 @@ use crate::dynamics::FamilyRates;
 use crate::filter::enkf::{FamilyEnsemble, LocalReadings, LocalSettings};
 use crate::model::{FamilyModel, Stop};
 use crate::problem::{FieldError, Problem, ProblemKind};
-use crate::request::{envelope, validate};
+use crate::request::envelope::{self, Envelope};
+use crate::request::validate;
 use rand::SeedableRng;
 use rand_chacha::ChaCha20Rng;
 use rand_distr::{Distribution, StandardNormal};
-use serde_json::{Map, Value};
+use serde_json::Value;
+use std::fmt::Write as _;
+
+mod line;
 
 /// RK4 step of the forecast when `integration.fixed_step` is not given.
 pub(super) const DEFAULT_STEP: f64 = 0.01;
@@ -284,6 +289,10 @@ pub(super) struct LocalRun {
     cfg: Settings,
     t: f64,
     readings: LocalReadings,
+    /// Which sensors the line being read has named (the one-pass reader's duplicate check).
+    seen: Vec<bool>,
+    /// Each family's name as a JSON string, written once.
+    names: Vec<Vec<u8>>,
     mean: Vec<f64>,
     std: Vec<f64>,
     stats: RunStats,
@@ -293,22 +302,18 @@ pub(super) struct LocalRun {
 
 impl LocalRun {
     /// Check `model`, `filter`, `prior` and `output` and draw (or take) the members.
-    pub(super) fn start(
+    /// The memory the run will hold is checked against the budget before any member is
+    /// drawn.
+    fn start(
         model: &Value,
         filter: &Value,
         prior: &Value,
         output: Option<&Value>,
+        held: Held,
         limits: &Limits,
     ) -> Result<LocalRun, Problem> {
-        let fm = validate::check_families(model, "/model", limits)
-            .map_err(|e| invalid(e.into_iter().map(FieldError::from).collect()))?;
-        let cfg = settings(filter, output, limits)?;
-        let need = (fm.n() as u64)
-            .saturating_mul(cfg.members as u64)
-            .saturating_mul(8 * 4);
-        if need > limits.max_request_bytes {
-            return Err(Problem::new(ProblemKind::OverMemoryBudget, format!("{} states × {} members need about {need} bytes of members and buffers, over this server's {} per request", fm.n(), cfg.members, limits.max_request_bytes)));
-        }
+        let (fm, cfg) = plan(model, filter, output, limits)?;
+        budget::within(budget::family_bytes(&shape(&fm, &cfg, held)), limits)?;
         let (t, members) = start_members(&fm, prior, &cfg)?;
         let rates = FamilyRates {
             set: fm.set.clone(),
@@ -323,12 +328,21 @@ impl LocalRun {
         readings.state.reserve(max_readings);
         readings.z.reserve(max_readings);
         readings.inv_var.reserve(max_readings);
+        let seen = vec![false; fm.sensors.len()];
+        let names = fm
+            .set
+            .shapes
+            .iter()
+            .map(|s| serde_json::to_vec(&s.name).unwrap_or_default())
+            .collect();
         Ok(LocalRun {
             fm,
             ens,
             cfg,
             t,
             readings,
+            seen,
+            names,
             mean: vec![0.0; n],
             std: vec![0.0; n],
             stats: RunStats {
@@ -350,36 +364,21 @@ impl LocalRun {
         out: &mut Vec<u8>,
     ) -> Result<(), Problem> {
         if stop.halted().is_some() {
-            return Err(Problem::new(
-                ProblemKind::DeadlineExceeded,
-                format!("the request stopped before {at} (cancelled or past its compute deadline)"),
-            ));
+            return Err(stopped(at));
         }
-        let v: Value = serde_json::from_slice(line).map_err(envelope::json_problem)?;
-        let t = match v.get("t").and_then(Value::as_f64) {
-            Some(t) if t.is_finite() => t,
-            _ => {
-                return Err(Problem::field(
-                    format!("{at}/t"),
-                    "expected the line's time as a number of seconds",
-                ))
-            }
+        self.readings.clear();
+        let scanned = std::str::from_utf8(line)
+            .ok()
+            .and_then(|l| self.scan_line(l));
+        let t = match scanned {
+            Some(t) => t,
+            None => self.read_tree(line, at)?,
         };
         if t < self.t {
             return Err(Problem::field(
                 format!("{at}/t"),
                 format!("time {t} comes before the previous {}", self.t),
             ));
-        }
-        self.readings.clear();
-        if let Some(values) = v.get("values") {
-            let Some(values) = values.as_object() else {
-                return Err(Problem::field(
-                    format!("{at}/values"),
-                    "expected an object of sensor readings",
-                ));
-            };
-            self.gather(values, at)?;
         }
         let gap = t - self.t;
         if gap > 0.0 {
@@ -396,6 +395,9 @@ impl LocalRun {
             let steps = steps.max(1.0) as u64;
             let h = gap / steps as f64;
             for k in 0..steps {
+                if k > 0 && stop.halted().is_some() {
+                    return Err(stopped(at));
+                }
                 self.ens
                     .forecast(self.t + k as f64 * h, h)
                     .map_err(|e| numerical(at, &e.to_string()))?;
@@ -418,55 +420,20 @@ impl LocalRun {
         Ok(())
     }
 
-    /// The line's readings into `self.readings`, each value at its element.
-    fn gather(&mut self, values: &Map<String, Value>, at: &str) -> Result<(), Problem> {
-        for (name, x) in values {
-            let p = format!("{at}/values/{name}");
-            let Some(k) = self.fm.sensor_index(name) else {
-                return Err(Problem::field(
-                    p,
-                    format!("'{name}' is not a sensor of this model"),
-                ));
-            };
-            let s = &self.fm.sensors[k];
-            let list = x.as_array().filter(|a| a.len() == s.elements.len());
-            let Some(list) = list else {
-                return Err(Problem::field(
-                    p,
-                    format!(
-                        "expected an array of {} values, one per element read, in index order",
-                        s.elements.len()
-                    ),
-                ));
-            };
-            let start = self.fm.set.starts[s.family];
-            for (i, (z, &e)) in list.iter().zip(&s.elements).enumerate() {
-                match z.as_f64() {
-                    Some(z) if z.is_finite() => self.readings.push(e, start + e, z, s.std),
-                    _ => {
-                        return Err(Problem::field(
-                            format!("{p}/{i}"),
-                            "expected a finite number",
-                        ))
-                    }
-                }
-            }
-        }
-        Ok(())
-    }
-
     /// `,"mean":{"x":[...]}` and, with `std`, `,"std":{...}` from the last moments.
     fn families(&self, out: &mut Vec<u8>, mean: bool, std: bool) {
         for (part, on, v) in [("mean", mean, &self.mean), ("std", std, &self.std)] {
             if !on {
                 continue;
             }
-            out.extend_from_slice(format!(",\"{part}\":{{").as_bytes());
+            out.extend_from_slice(b",\"");
+            out.extend_from_slice(part.as_bytes());
+            out.extend_from_slice(b"\":{");
             for (f, shape) in self.fm.set.shapes.iter().enumerate() {
                 if f > 0 {
                     out.push(b',');
                 }
-                out.extend_from_slice(&serde_json::to_vec(&shape.name).unwrap_or_default());
+                out.extend_from_slice(&self.names[f]);
                 out.extend_from_slice(b":[");
                 let start = self.fm.set.starts[f];
                 for (k, &x) in v[start..start + shape.size].iter().enumerate() {
@@ -537,64 +504,173 @@ impl LocalRun {
         out.extend_from_slice(b"}\n");
     }
 
+    /// Most readings one line can carry (every element every sensor reads).
+    pub(super) fn max_readings(&self) -> usize {
+        self.fm.max_readings()
+    }
+
     /// Work counters so far.
     pub(super) fn stats(&self) -> RunStats {
         self.stats
     }
 }
 
+fn stopped(at: &str) -> Problem {
+    Problem::new(
+        ProblemKind::DeadlineExceeded,
+        format!("the request stopped at {at} (cancelled or past its compute deadline)"),
+    )
+}
+
 fn numerical(at: &str, what: &str) -> Problem {
     Problem::new(ProblemKind::NumericalFailure, format!("at {at}: {what} (the members left the finite numbers; a smaller integration.fixed_step or more inflation may help)"))
+}
+
+/// What a run holds besides its members: the answer lines kept at once and the bytes of
+/// the body (a stream's header).
+#[derive(Debug, Clone, Copy)]
+struct Held {
+    lines: usize,
+    sections: usize,
+    body: usize,
+}
+
+/// The model checked into its family form and the settings read, the members not drawn.
+fn plan(
+    model: &Value,
+    filter: &Value,
+    output: Option<&Value>,
+    limits: &Limits,
+) -> Result<(FamilyModel, Settings), Problem> {
+    let fm = validate::check_families(model, "/model", limits)
+        .map_err(|e| invalid(e.into_iter().map(FieldError::from).collect()))?;
+    let cfg = settings(filter, output, limits)?;
+    Ok((fm, cfg))
+}
+
+/// The shape [`budget::family_bytes`] reads.
+fn shape(fm: &FamilyModel, cfg: &Settings, held: Held) -> budget::FamilyShape {
+    budget::FamilyShape {
+        states: fm.n(),
+        size: fm.set.shapes.first().map_or(0, |s| s.size),
+        members: cfg.members,
+        readings: fm.max_readings(),
+        threads: rayon::current_num_threads(),
+        lines: held.lines,
+        std: cfg.std,
+        sections: held.sections,
+        body: held.body,
+    }
+}
+
+/// The parsed `model`, `filter`, `prior` and `output` of a request whose filter asks for
+/// the local update over a family model; `None` for every other request (the plain
+/// path then reports any fault in its sections). The sections' trees are counted
+/// against the budget before they are built.
+fn local_sections(
+    env: &Envelope<'_>,
+    body: usize,
+    limits: &Limits,
+) -> Result<Option<([Value; 3], usize)>, Problem> {
+    let Ok(filter) = envelope::section(env.filter, "filter") else {
+        return Ok(None);
+    };
+    if filter["ensemble"]["update"].as_str() != Some("local") {
+        return Ok(None);
+    }
+    let text: usize = [env.model, env.prior, env.output]
+        .iter()
+        .flatten()
+        .map(|r| r.get().len())
+        .sum();
+    budget::within(body as u64 + budget::FAMILY_TREE * text as u64, limits)?;
+    let Ok(model) = envelope::section(env.model, "model") else {
+        return Ok(None);
+    };
+    if !wants_local(&model, &filter) {
+        return Ok(None);
+    }
+    let prior = envelope::section(env.prior, "prior")?;
+    Ok(Some(([model, filter, prior], text)))
 }
 
 /// The stream's header line `{model, filter, prior, output?}` of a family model with the
 /// local update as its run; `None` for every other header.
 pub(super) fn stream_start(header: &[u8], limits: &Limits) -> Result<Option<LocalRun>, Problem> {
     let env = envelope::envelope(header)?;
-    let (Ok(model), Ok(filter)) = (
-        envelope::section(env.model, "model"),
-        envelope::section(env.filter, "filter"),
-    ) else {
+    let Some(([model, filter, prior], sections)) = local_sections(&env, header.len(), limits)?
+    else {
         return Ok(None);
     };
-    if !wants_local(&model, &filter) {
-        return Ok(None);
-    }
     if env.measurements.is_some() {
         return Err(Problem::field("/measurements", "the stream's first line holds model, filter, prior and output; readings follow one per line"));
     }
-    let prior = envelope::section(env.prior, "prior")?;
     let output = envelope::optional_section(env.output, "output")?;
-    LocalRun::start(&model, &filter, &prior, output.as_ref(), limits).map(Some)
+    let held = Held {
+        lines: 1,
+        sections,
+        body: header.len(),
+    };
+    LocalRun::start(&model, &filter, &prior, output.as_ref(), held, limits).map(Some)
 }
 
-/// `POST /v1/estimate` for a family model with the local update: the whole answer.
-pub(super) fn estimate(
-    sections: [&Value; 3],
-    output: Option<&Value>,
-    lines: &[&str],
+/// The memory a batch request of a family model with the local update would need at its
+/// peak, bytes; `None` for every other request.
+pub(super) fn batch_need(
+    env: &Envelope<'_>,
+    body: usize,
+    lines: usize,
+    limits: &Limits,
+) -> Result<Option<u64>, Problem> {
+    let Some(([model, filter, _], sections)) = local_sections(env, body, limits)? else {
+        return Ok(None);
+    };
+    let output = envelope::optional_section(env.output, "output")?;
+    let (fm, cfg) = plan(&model, &filter, output.as_ref(), limits)?;
+    let held = Held {
+        lines,
+        sections,
+        body,
+    };
+    Ok(Some(budget::family_bytes(&shape(&fm, &cfg, held))))
+}
+
+/// `POST /v1/estimate` for a family model with the local update: the whole answer,
+/// its memory checked against the budget first; `None` for every other request.
+pub(super) fn estimate<'a>(
+    env: &Envelope<'a>,
+    body: usize,
+    lines: impl FnOnce() -> Result<Vec<&'a str>, Problem>,
     limits: &Limits,
     stop: &Stop,
-) -> Result<super::Pieces, Problem> {
-    let [model, filter, prior] = sections;
-    let mut run = LocalRun::start(model, filter, prior, output, limits)?;
+) -> Result<Option<super::Pieces>, Problem> {
+    let Some(([model, filter, prior], sections)) = local_sections(env, body, limits)? else {
+        return Ok(None);
+    };
+    let output = envelope::optional_section(env.output, "output")?;
+    let lines = lines()?;
+    let held = Held {
+        lines: lines.len(),
+        sections,
+        body,
+    };
+    let mut run = LocalRun::start(&model, &filter, &prior, output.as_ref(), held, limits)?;
     let mut out = b"{\"estimates\":[".to_vec();
+    // One pointer buffer for every line: a line's pointer costs no allocation.
+    let mut at = String::with_capacity(32);
     for (i, line) in lines.iter().enumerate() {
         if i > 0 {
             out.push(b',');
         }
-        run.push(
-            line.as_bytes(),
-            &format!("/measurements/{i}"),
-            stop,
-            &mut out,
-        )?;
+        at.clear();
+        let _ = write!(at, "/measurements/{i}");
+        run.push(line.as_bytes(), &at, stop, &mut out)?;
     }
     out.extend_from_slice(b"],");
     run.tail(&mut out);
     out.push(b'}');
-    Ok(super::Pieces {
+    Ok(Some(super::Pieces {
         parts: vec![out],
         stats: run.stats(),
-    })
+    }))
 }
