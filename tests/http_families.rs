@@ -524,3 +524,58 @@ async fn check_names_the_elements_no_sensor_reaches_within_the_radius() {
     assert_eq!(a.body["warnings"].as_array().unwrap().len(), 1);
     s.shutdown().await.unwrap();
 }
+
+/// The NDJSON answer lines of a stream of `header` and `lines` posted to `s`.
+async fn stream_lines(s: &crate::support::Server, header: &Value, lines: &[Value]) -> Vec<Value> {
+    let mut text = serde_json::to_string(header).unwrap();
+    for l in lines {
+        text.push('\n');
+        text.push_str(&serde_json::to_string(l).unwrap());
+    }
+    text.push('\n');
+    let res = s
+        .client
+        .post(s.url("/v1/estimate/stream"))
+        .header("content-type", "application/x-ndjson")
+        .body(text)
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(res.status(), 200);
+    res.text()
+        .await
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
+// A chain of two streams, the second's header carrying the first's posterior (its
+// members), gives one stream's lines bit for bit, though the header (10 members × 6,000
+// elements as JSON, about 1.1 MB) and every reading line (6,000 values) are longer than
+// the server's line limit for plain streams (64 KiB here).
+#[tokio::test]
+async fn a_chain_of_two_local_streams_with_long_lines_equals_one() {
+    let n = 6_000;
+    let (_, lines, start) = l96_truth(n, 6);
+    let mut c = tacit::http::ServerConfig::default();
+    c.limits.max_line_bytes = 64 * 1024;
+    let s = crate::support::start(c).await;
+    let header = |prior: Value| json!({"model": l96_model(n, 1), "filter": local_filter(10, Some(4.0)), "prior": prior});
+    let prior = json!({"t": 0.0, "mean": {"x": start}, "std": {"x": 1.0}});
+    assert!(serde_json::to_string(&lines[0]).unwrap().len() > 64 * 1024);
+    let whole = stream_lines(&s, &header(prior.clone()), &lines).await;
+    assert_eq!(whole.len(), lines.len() + 1, "{:?}", whole.last());
+    let first = stream_lines(&s, &header(prior), &lines[..3]).await;
+    let post = &first[3]["posterior"];
+    let resumed = header(json!({"t": post["t"], "members": post["members"]}));
+    assert!(serde_json::to_string(&resumed).unwrap().len() > 1_000_000);
+    let second = stream_lines(&s, &resumed, &lines[3..]).await;
+    assert_eq!(second.len(), 4, "{:?}", second.last());
+    let chained: Vec<&Value> = first[..3].iter().chain(&second[..3]).collect();
+    for (k, (a, b)) in whole[..6].iter().zip(chained).enumerate() {
+        assert_eq!(a, b, "line {k}");
+    }
+    assert_eq!(whole[6]["posterior"], second[3]["posterior"]);
+    s.shutdown().await.unwrap();
+}

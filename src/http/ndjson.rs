@@ -45,6 +45,13 @@ impl LineSplitter {
         }
     }
 
+    /// Refuse lines longer than `max_line_bytes` from now on (a stream's header may be
+    /// longer than the lines that follow it, and a family run's lines longer than a
+    /// plain one's).
+    pub fn set_max(&mut self, max_line_bytes: usize) {
+        self.max = max_line_bytes;
+    }
+
     /// Number of the next line to be completed.
     pub fn line_no(&self) -> u64 {
         self.line_no

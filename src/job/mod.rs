@@ -259,11 +259,7 @@ impl StreamSession {
     /// Parse the first line `{model, filter, prior, output?}`. Each line's filter step
     /// gives up when `stop` fires (the client went away, or a deadline passed).
     pub fn start(header: &[u8], limits: &Limits, stop: &Stop) -> Result<Self, Problem> {
-        if header.len()
-            > limits
-                .max_line_bytes
-                .max(limits.max_body_bytes.min(64 << 20))
-        {
+        if header.len() > Self::header_limit(limits) {
             return Err(Problem::new(
                 crate::problem::ProblemKind::TooLarge,
                 "the header line is too large",
@@ -277,6 +273,24 @@ impl StreamSession {
         stream::Stream::start(header, limits, stop).map(|s| Self {
             inner: Session::Plain(Box::new(s)),
         })
+    }
+
+    /// The longest header line a stream may send: `max_line_bytes`, or more up to the
+    /// body limit (at most 64 MiB), so that a posterior carrying a family run's members
+    /// can start the next stream.
+    pub fn header_limit(limits: &Limits) -> usize {
+        limits
+            .max_line_bytes
+            .max(limits.max_body_bytes.min(64 << 20))
+    }
+
+    /// The longest reading line this stream takes: `max_line_bytes`, or for a family run
+    /// room for every element its sensors read (26 bytes a number) when that is more.
+    pub fn line_limit(&self, limits: &Limits) -> usize {
+        match &self.inner {
+            Session::Plain(_) => limits.max_line_bytes,
+            Session::Family(run, _) => limits.max_line_bytes.max(26 * run.max_readings() + 4096),
+        }
     }
 
     /// Apply one measurement line (1-based `line_no` for error pointers) and append its

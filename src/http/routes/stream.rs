@@ -89,7 +89,7 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
         return overloaded(state.config().retry_after_secs);
     }
     let mut body = req.into_body().into_data_stream();
-    let mut splitter = LineSplitter::new(state.limits().max_line_bytes);
+    let mut splitter = LineSplitter::new(StreamSession::header_limit(state.limits()));
     let mut pending: Vec<(u64, Bytes)> = Vec::new();
 
     // Read up to the first non-blank line: the header.
@@ -156,6 +156,7 @@ async fn stream(State(state): State<AppState>, req: Request) -> Response {
     let (in_tx, in_rx) = mpsc::channel::<Input>(INPUT_DEPTH);
     let (out_tx, out_rx) = mpsc::channel::<Bytes>(OUTPUT_DEPTH);
 
+    splitter.set_max(session.line_limit(state.limits()));
     let leftover: Vec<_> = pending.into_iter().collect();
     let idle = state.config().stream_idle;
     let waits = Waits {
