@@ -464,28 +464,7 @@ async fn the_local_family_stream_answers_like_the_batch() {
     let s = start_default().await;
     let header = json!({"model": l96_model(40, 1), "filter": local_filter(6, Some(4.0)),
                         "prior": {"t": 0.0, "mean": {"x": start}, "std": {"x": 1.0}}});
-    let mut text = serde_json::to_string(&header).unwrap();
-    for l in &lines {
-        text.push('\n');
-        text.push_str(&serde_json::to_string(l).unwrap());
-    }
-    text.push('\n');
-    let res = s
-        .client
-        .post(s.url("/v1/estimate/stream"))
-        .header("content-type", "application/x-ndjson")
-        .body(text)
-        .send()
-        .await
-        .unwrap();
-    assert_eq!(res.status(), 200);
-    let out: Vec<Value> = res
-        .text()
-        .await
-        .unwrap()
-        .lines()
-        .map(|l| serde_json::from_str(l).unwrap())
-        .collect();
+    let out = stream_lines(&s, &header, &lines).await;
     let mut body = header.clone();
     body["measurements"] = json!(lines);
     let batch = post_json(&s, "/v1/estimate", &body).await;
