@@ -274,6 +274,19 @@ async fn an_idle_stream_holds_no_job_slot_and_is_ended_after_the_idle_time() {
         .await
         .unwrap();
     assert_eq!(res.status(), 200);
+    // Once the first estimate line has arrived the stream is silent (its worker gives
+    // the slot back before it sends what it computed); before that, the line's own
+    // computation holds the only slot and a batch would rightly be told 503.
+    let mut res = res;
+    let mut got = Vec::new();
+    while !got.contains(&b'\n') {
+        let chunk = tokio::time::timeout(Duration::from_secs(20), res.chunk())
+            .await
+            .expect("no first estimate line")
+            .unwrap()
+            .expect("the stream ended before its first line");
+        got.extend_from_slice(&chunk);
+    }
     let mut batch = tower(0.01);
     batch["measurements"] = json!([{"t": 1.0, "values": {"gauge": 0.9}}]);
     let a = post_json(&s, "/v1/estimate", &batch).await;
@@ -282,10 +295,15 @@ async fn an_idle_stream_holds_no_job_slot_and_is_ended_after_the_idle_time() {
         "a silent stream held the only slot: {}",
         a.text
     );
-    let got = tokio::time::timeout(Duration::from_secs(20), res.text())
+    let rest = async {
+        while let Some(chunk) = res.chunk().await.unwrap() {
+            got.extend_from_slice(&chunk);
+        }
+        String::from_utf8(got).unwrap()
+    };
+    let got = tokio::time::timeout(Duration::from_secs(20), rest)
         .await
-        .expect("the silent stream was never ended")
-        .unwrap();
+        .expect("the silent stream was never ended");
     let lines: Vec<Value> = got
         .lines()
         .map(|l| serde_json::from_str(l).unwrap())
