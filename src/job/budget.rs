@@ -291,7 +291,7 @@ pub fn echo_bytes(text: &str) -> u64 {
 /// Bytes of an identify request's JSON tree per byte of its body: 14 measured for
 /// series entries by name and as arrays (a counting allocator over whole requests of
 /// 20,000 samples), with room to spare.
-const IDENTIFY_TREE: u64 = 16;
+pub const IDENTIFY_TREE: u64 = 16;
 
 /// What one `/v1/identify` request asks for, once parsed.
 #[derive(Debug, Clone, Copy)]
